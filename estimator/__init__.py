@@ -1,0 +1,1 @@
+"""Pure computation: constants, sphere geometry, response model, calibration, inverse, tracker."""

@@ -1,0 +1,1 @@
+"""The simulated sensor: Bloch physics, digital lock-in, scenarios and a frame emitter."""

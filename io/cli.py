@@ -1,0 +1,74 @@
+"""The `fieldvane` command line: one subcommand per module in fieldvane.io.commands."""
+
+from __future__ import annotations
+
+import argparse
+import importlib
+import sys
+
+from fieldvane import __version__
+from fieldvane.io.errors import EXIT_BAD_INPUT, EXIT_FAILURE, EXIT_INTERRUPTED, InputError, JobError
+
+# name -> (module, one-line help). Modules are imported only when their command runs, so the
+# live loop (`run`) never pays for plotting or fitting imports.
+COMMANDS = {
+    "demo": ("demo", "run the whole job on the built-in simulated sensor, end to end"),
+    "simulate": ("simulate", "write a simulated recording CSV from a scenario TOML"),
+    "emit": ("emit", "stream a simulated sensor as wire frames or CSV lines to a pty, TCP or a file"),
+    "calibrate": ("calibrate", "fit a calibration from a scan recording"),
+    "replay": ("replay", "estimate field directions from a recording CSV or a capture"),
+    "map": ("map", "map the Cramer-Rao bound over the sphere for a calibration"),
+    "run": ("run", "live: read a serial port, estimate, stream to loggers, capture raw bytes"),
+    "tune": ("tune", "fit filter noise settings to a recording by innovation likelihood"),
+    "report": ("report", "plots and a summary of an estimates CSV"),
+}
+
+
+def build_parser() -> argparse.ArgumentParser:
+    """Return the top-level argument parser with every subcommand registered."""
+    parser = argparse.ArgumentParser(
+        prog="fieldvane",
+        description="Field direction and magnitude from the lock-in outputs of a two-isotope "
+                    "all-optical vector atomic magnetometer. Not a safety or navigation "
+                    "instrument by itself.",
+    )
+    parser.add_argument("--version", action="version", version=f"fieldvane {__version__}")
+    sub = parser.add_subparsers(dest="command", metavar="COMMAND")
+    for name, (module_name, help_text) in COMMANDS.items():
+        module = _load(module_name)
+        p = sub.add_parser(name, help=help_text, description=getattr(module, "DESCRIPTION", help_text),
+                           formatter_class=argparse.RawDescriptionHelpFormatter)
+        module.add_arguments(p)
+        p.set_defaults(_module=module_name)
+    return parser
+
+
+def _load(module_name: str):
+    return importlib.import_module(f"fieldvane.io.commands.{module_name}")
+
+
+def main(argv: list[str] | None = None) -> int:
+    """Entry point of the `fieldvane` console command; returns the process exit code."""
+    parser = build_parser()
+    args = parser.parse_args(argv)
+    if not getattr(args, "command", None):
+        parser.print_help()
+        return EXIT_BAD_INPUT
+    module = _load(args._module)
+    try:
+        return int(module.run(args) or 0)
+    except InputError as exc:
+        print(f"fieldvane {args.command}: error: {exc}", file=sys.stderr)
+        return EXIT_BAD_INPUT
+    except JobError as exc:
+        print(f"fieldvane {args.command}: failed: {exc}", file=sys.stderr)
+        return EXIT_FAILURE
+    except KeyboardInterrupt:
+        print(f"fieldvane {args.command}: interrupted", file=sys.stderr)
+        return EXIT_INTERRUPTED
+    except BrokenPipeError:
+        return EXIT_FAILURE
+
+
+if __name__ == "__main__":
+    raise SystemExit(main())
