@@ -95,7 +95,7 @@ class RecordingReader:
 
     def __iter__(self) -> Iterator[SampleBlock]:
         try:
-            fh = open(self.path, "r", encoding="utf-8", newline="")
+            fh = open(self.path, "r", encoding="utf-8", errors="replace", newline="")
         except OSError as exc:
             raise InputError(f"cannot open recording: {exc.strerror}", self.path) from None
         with fh:
@@ -109,6 +109,8 @@ class RecordingReader:
             s = raw.strip()
             if not s:
                 continue
+            if "\x00" in s or "\ufffd" in s:
+                raise InputError("not text (binary bytes where a CSV line was expected)", self.path, lineno)
             if s.startswith("#"):
                 body = s[1:].strip()
                 if ":" in body:
