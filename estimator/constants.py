@@ -59,9 +59,10 @@ ISOTOPES = {
 }
 
 # Cells hold two isotopes of one element; identification only chooses within the cell's pair.
+# Potassium is absent on purpose: 39K and 41K both have I = 3/2, so their Larmor frequencies differ
+# by about 1e-4 and two pumps cannot be told apart by frequency.
 CELL_PAIRS = {
     "Rb": ("87Rb", "85Rb"),
-    "K": ("39K", "41K"),
 }
 
 

@@ -22,7 +22,7 @@ def add_arguments(parser) -> None:
     parser.add_argument("scan", help="calibration scan recording CSV (with bx_nT, by_nT, bz_nT)")
     parser.add_argument("-o", "--output", required=True, help="calibration JSON to write (CAL.npz is written beside it)")
     parser.add_argument("--sensor", help="sensor TOML: names, nominal axes, mounting rotation")
-    parser.add_argument("--cell", default=None, help="alkali of the cell: Rb (default) or K")
+    parser.add_argument("--cell", default=None, help="alkali of the cell (default Rb: 87Rb and 85Rb)")
     parser.add_argument("--max-degree", type=int, default=6,
                         help="highest spherical-harmonic degree tried for the corrections (default 6)")
     parser.add_argument("--folds", type=int, default=5, help="folds for the held-out residual (default 5)")

@@ -1,0 +1,1 @@
+"""Benchmarks run with `pytest benchmarks --benchmark-enable`; they are outside the default test run."""
