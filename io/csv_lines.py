@@ -1,0 +1,196 @@
+"""Text input mode: recording-CSV lines arriving over a serial link, decoded into Samples."""
+
+from __future__ import annotations
+
+import math
+from collections.abc import Sequence
+
+import numpy as np
+
+from fieldvane.estimator.samples import CHANNELS_ONE_PROBE, CHANNELS_TWO_PROBES, Sample
+from fieldvane.io.errors import InputError
+
+MAX_LINE_LEN = 4096          # a longer line is garbage: dropped up to the next newline
+MAX_METADATA_KEYS = 256      # '# key: value' comments kept (the rest are counted only)
+
+COUNTER_NAMES = ("lines_ok", "bad_lines", "comment_lines", "header_lines", "bytes_discarded",
+                 "bytes_fed")
+
+
+class CsvLayout:
+    """Where each needed field sits in a row: built from a header (column names)."""
+
+    def __init__(self, columns: Sequence[str], source: str = "<input>", line: int | None = None):
+        cols = [c.strip() for c in columns]
+        self.columns = tuple(cols)
+        index = {}
+        for i, name in enumerate(cols):
+            if name in index:
+                raise InputError(f"column '{name}' appears twice", source, line, name)
+            index[name] = i
+        for name in ("t", "f_a", "f_b"):
+            if name not in index:
+                raise InputError("required column is missing", source, line, name)
+        self.t_i, self.fa_i, self.fb_i = index["t"], index["f_a"], index["f_b"]
+        plan = []
+        for ch in CHANNELS_TWO_PROBES:
+            xy = (f"x_{ch}" in index, f"y_{ch}" in index)
+            rth = (f"r_{ch}" in index, f"th_{ch}" in index)
+            if all(xy):
+                plan.append((ch, False, index[f"x_{ch}"], index[f"y_{ch}"]))
+            elif all(rth):
+                plan.append((ch, True, index[f"r_{ch}"], index[f"th_{ch}"]))
+            elif any(xy) or any(rth):
+                missing = [n for n in (f"x_{ch}", f"y_{ch}") if n not in index] if any(xy) else \
+                          [n for n in (f"r_{ch}", f"th_{ch}") if n not in index]
+                raise InputError(f"channel {ch} needs both columns of its pair", source, line,
+                                 missing[0])
+            elif ch in CHANNELS_ONE_PROBE:
+                raise InputError(f"channel {ch} needs x_{ch},y_{ch} or r_{ch},th_{ch}", source,
+                                 line, f"x_{ch}")
+        if len(plan) == 3:
+            ch = next(c for c in CHANNELS_TWO_PROBES if c not in [p[0] for p in plan])
+            raise InputError(f"probe 2 is incomplete: channel {ch} is missing", source, line,
+                             f"x_{ch}")
+        self.plan = tuple(plan)
+        self.channels = CHANNELS_TWO_PROBES if len(plan) == 4 else CHANNELS_ONE_PROBE
+
+    def parse(self, fields: list[str], source: str, line: int) -> Sample:
+        """Return the Sample in one row's fields (t in s, f in Hz, z = x + i y in volts)."""
+        if len(fields) != len(self.columns):
+            raise InputError(f"expected {len(self.columns)} fields, got {len(fields)}", source,
+                             line)
+        cols = self.columns
+
+        def _num(i: int) -> float:
+            text = fields[i].strip()
+            try:
+                return float(text)
+            except ValueError:
+                raise InputError(f"not a number: {text[:40]!r}", source, line, cols[i]) from None
+
+        t, f_a, f_b = _num(self.t_i), _num(self.fa_i), _num(self.fb_i)
+        z = np.empty(len(self.plan), dtype=np.complex128)
+        for k, (_ch, polar, i1, i2) in enumerate(self.plan):
+            a, b = _num(i1), _num(i2)
+            if polar:
+                th = math.radians(b)
+                z[k] = complex(a * math.cos(th), a * math.sin(th))
+            else:
+                z[k] = complex(a, b)
+        return Sample(t, f_a, f_b, z, self.channels, 0)
+
+
+def _looks_like_header(fields: list[str]) -> bool:
+    """Return True when no field parses as a number (a header row, not a data row)."""
+    for f in fields:
+        try:
+            float(f)
+            return False
+        except ValueError:
+            pass
+    return True
+
+
+class CsvLineDecoder:
+    """Pure text decoder: feed(bytes) returns the Samples of completed lines; counts bad ones."""
+
+    def __init__(self, columns: Sequence[str] | None = None, max_line_len: int = MAX_LINE_LEN,
+                 source: str = "<serial>"):
+        self.source = source
+        self.max_line_len = max_line_len
+        self.layout = CsvLayout(columns, source) if columns is not None else None
+        self.metadata: dict[str, str] = {}
+        self.last_error: str | None = None
+        self._buf = bytearray()
+        self._discarding = False
+        self.line_no = 0
+        self.lines_ok = 0
+        self.bad_lines = 0
+        self.comment_lines = 0
+        self.header_lines = 0
+        self.bytes_discarded = 0
+        self.bytes_fed = 0
+
+    def counters(self) -> dict[str, int]:
+        """Return a snapshot of every counter (ints), including `pending` bytes."""
+        c = {name: getattr(self, name) for name in COUNTER_NAMES}
+        c["pending"] = len(self._buf)
+        return c
+
+    def feed(self, data: bytes) -> list[Sample]:
+        """Return the Samples of the lines completed by data; bad lines are counted, never raised."""
+        if not isinstance(data, (bytes, bytearray)):
+            data = bytes(data)
+        self.bytes_fed += len(data)
+        out: list[Sample] = []
+        start, n = 0, len(data)
+        buf = self._buf
+        while start < n:
+            end = data.find(b"\n", start)
+            if end < 0:
+                rest = n - start
+                if self._discarding:
+                    self.bytes_discarded += rest
+                elif len(buf) + rest > self.max_line_len:
+                    self._bad(f"line longer than {self.max_line_len} bytes", self.line_no + 1)
+                    self.bytes_discarded += len(buf) + rest
+                    buf.clear()
+                    self._discarding = True
+                else:
+                    buf += data[start:]
+                break
+            seg = end - start
+            if self._discarding:
+                self.line_no += 1
+                self.bytes_discarded += seg
+                self._discarding = False
+            elif len(buf) + seg > self.max_line_len:
+                self.line_no += 1
+                self._bad(f"line longer than {self.max_line_len} bytes", self.line_no)
+                self.bytes_discarded += len(buf) + seg
+                buf.clear()
+            else:
+                buf += data[start:end]
+                self._line(bytes(buf), out)
+                buf.clear()
+            start = end + 1
+        return out
+
+    def _bad(self, message: str, line: int, column: str | None = None) -> None:
+        self.bad_lines += 1
+        self.last_error = str(InputError(message, self.source, line, column))
+
+    def _line(self, raw: bytes, out: list[Sample]) -> None:
+        self.line_no += 1
+        text = raw.decode("utf-8", errors="replace").rstrip("\r")
+        stripped = text.strip()
+        if not stripped:
+            return
+        if stripped.startswith("#"):
+            self.comment_lines += 1
+            key, sep, value = stripped[1:].partition(":")
+            if sep and (key.strip() in self.metadata or len(self.metadata) < MAX_METADATA_KEYS):
+                self.metadata[key.strip()] = value.strip()
+            return
+        fields = text.split(",")
+        if _looks_like_header(fields):
+            try:
+                self.layout = CsvLayout(fields, self.source, self.line_no)
+            except InputError as exc:
+                self.bad_lines += 1
+                self.last_error = str(exc)
+                return
+            self.header_lines += 1
+            return
+        if self.layout is None:
+            self._bad("a header line (column names) must come first", self.line_no)
+            return
+        try:
+            sample = self.layout.parse(fields, self.source, self.line_no)
+        except InputError as exc:
+            self.bad_lines += 1
+            self.last_error = str(exc)
+            return
+        self.lines_ok += 1
+        out.append(sample)

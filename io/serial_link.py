@@ -1,0 +1,226 @@
+"""The serial link: a reader thread that only reads bytes, stamps host receive times and queues
+them; reopens with back-off when the port vanishes. Ports are opened by pyserial URL (a device
+path, a pty path, `loop://`, `socket://HOST:PORT`, ...)."""
+
+from __future__ import annotations
+
+import collections
+import select
+import threading
+import time
+from collections.abc import Callable
+
+from fieldvane.io.capture import Chunk
+
+DEFAULT_MAX_QUEUED_BYTES = 16 * 1024 * 1024
+
+
+class ChunkQueue:
+    """A FIFO of Chunks bounded in bytes: a put that would overflow it is refused (and counted)."""
+
+    def __init__(self, max_bytes: int = DEFAULT_MAX_QUEUED_BYTES):
+        self.max_bytes = max_bytes
+        self._items: collections.deque[Chunk] = collections.deque()
+        self._bytes = 0
+        self._cond = threading.Condition()
+        self.chunks_dropped = 0
+        self.bytes_dropped = 0
+
+    @property
+    def queued_bytes(self) -> int:
+        """Return the number of bytes waiting in the queue."""
+        return self._bytes
+
+    def put(self, chunk: Chunk) -> bool:
+        """Queue chunk without blocking; return False (counted as dropped) if it would overflow."""
+        with self._cond:
+            if self._bytes + len(chunk.data) > self.max_bytes:
+                self.chunks_dropped += 1
+                self.bytes_dropped += len(chunk.data)
+                return False
+            self._items.append(chunk)
+            self._bytes += len(chunk.data)
+            self._cond.notify()
+            return True
+
+    def get(self, timeout: float | None = None) -> Chunk | None:
+        """Return the oldest chunk, waiting up to timeout s; None if nothing arrived."""
+        with self._cond:
+            if not self._items and not self._cond.wait_for(lambda: bool(self._items), timeout):
+                return None
+            chunk = self._items.popleft()
+            self._bytes -= len(chunk.data)
+            return chunk
+
+    def __len__(self) -> int:
+        return len(self._items)
+
+
+class SerialLink:
+    """Reads a port in a background thread into a bounded ChunkQueue; reconnects with back-off."""
+
+    def __init__(self, url: str, baudrate: int = 115200, read_timeout: float = 0.05,
+                 chunk_size: int = 4096, max_queued_bytes: int = DEFAULT_MAX_QUEUED_BYTES,
+                 reconnect_min_s: float = 0.05, reconnect_max_s: float = 2.0,
+                 opener: Callable[[], object] | None = None,
+                 clock: Callable[[], int] = time.time_ns, **serial_kwargs):
+        self.url = url
+        self.baudrate = baudrate
+        self.read_timeout = read_timeout
+        self.chunk_size = chunk_size
+        self.reconnect_min_s = reconnect_min_s
+        self.reconnect_max_s = reconnect_max_s
+        self._opener = opener or self._default_opener
+        self._serial_kwargs = serial_kwargs
+        self._clock = clock
+        self.queue = ChunkQueue(max_queued_bytes)
+        self.connected = threading.Event()
+        self._stop = threading.Event()
+        self._state = threading.Condition()
+        self._port = None
+        self._thread: threading.Thread | None = None
+        self.opens = 0
+        self.open_failures = 0
+        self.disconnects = 0
+        self.bytes_read = 0
+        self.chunks_read = 0
+        self.last_error: str | None = None
+
+    def _default_opener(self):
+        import serial
+        return serial.serial_for_url(self.url, baudrate=self.baudrate, timeout=0,
+                                     **self._serial_kwargs)
+
+    def _prepare(self, port) -> int | None:
+        """Return a file descriptor to wait on (port made non-blocking), or None to block in read."""
+        try:
+            fd = port.fileno()
+        except Exception:
+            fd = None
+        if isinstance(fd, int) and fd >= 0:
+            if port.timeout != 0:
+                port.timeout = 0
+            return fd
+        if port.timeout is None or port.timeout == 0:
+            port.timeout = self.read_timeout
+        return None
+
+    def _read_some(self, port, fd: int | None) -> bytes:
+        """Return the bytes available now (waiting at most read_timeout s for the first one)."""
+        if fd is not None:
+            # Wait for readability ourselves, then take everything there in one read: a
+            # socket:// port's in_waiting only says "at least one byte".
+            ready, _, _ = select.select([fd], [], [], self.read_timeout)
+            return port.read(self.chunk_size) if ready else b""
+        data = port.read(1)
+        if data:
+            waiting = port.in_waiting
+            if waiting:
+                data += port.read(min(waiting, self.chunk_size))
+        return data
+
+    def start(self) -> "SerialLink":
+        """Start the reader thread (it opens the port, retrying with back-off); return self."""
+        if self._thread is not None:
+            raise RuntimeError("link already started")
+        self._thread = threading.Thread(target=self._run, name=f"fieldvane-link {self.url}",
+                                        daemon=True)
+        self._thread.start()
+        return self
+
+    @property
+    def started(self) -> bool:
+        """Return True once start() has been called."""
+        return self._thread is not None
+
+    def stop(self, timeout: float = 2.0) -> bool:
+        """Stop the reader thread and close the port; return True if the thread ended in time."""
+        self._stop.set()
+        port = self._port
+        if port is not None:
+            try:
+                port.cancel_read()
+            except Exception:
+                pass
+        if self._thread is None:
+            return True
+        self._thread.join(timeout)
+        return not self._thread.is_alive()
+
+    def get(self, timeout: float | None = None) -> Chunk | None:
+        """Return the next received Chunk (host_time_ns, bytes), or None after timeout s."""
+        return self.queue.get(timeout)
+
+    def wait_for(self, predicate: Callable[["SerialLink"], bool], timeout: float) -> bool:
+        """Return True once predicate(link) holds after an open or disconnect (False on timeout)."""
+        with self._state:
+            return self._state.wait_for(lambda: predicate(self), timeout)
+
+    def counters(self) -> dict[str, int]:
+        """Return opens, open_failures, disconnects, bytes/chunks read, dropped and queued counts."""
+        return {"opens": self.opens, "open_failures": self.open_failures,
+                "disconnects": self.disconnects, "bytes_read": self.bytes_read,
+                "chunks_read": self.chunks_read, "chunks_dropped": self.queue.chunks_dropped,
+                "bytes_dropped": self.queue.bytes_dropped, "queued_bytes": self.queue.queued_bytes,
+                "connected": int(self.connected.is_set())}
+
+    def __enter__(self):
+        return self.start()
+
+    def __exit__(self, *exc):
+        self.stop()
+
+    def _notify(self) -> None:
+        with self._state:
+            self._state.notify_all()
+
+    def _run(self) -> None:
+        delay = self.reconnect_min_s
+        fd = None
+        try:
+            while not self._stop.is_set():
+                if self._port is None:
+                    try:
+                        self._port = self._opener()
+                        fd = self._prepare(self._port)
+                    except Exception as exc:
+                        self._close_port()
+                        self.open_failures += 1
+                        self.last_error = f"open failed: {exc}"
+                        self._notify()
+                        self._stop.wait(delay)
+                        delay = min(delay * 2, self.reconnect_max_s)
+                        continue
+                    self.opens += 1
+                    delay = self.reconnect_min_s
+                    self.connected.set()
+                    self._notify()
+                    if self._stop.is_set():
+                        break
+                try:
+                    data = self._read_some(self._port, fd)
+                except Exception as exc:            # the port vanished (EIO, socket closed...)
+                    if self._stop.is_set():
+                        break
+                    self.disconnects += 1
+                    self.last_error = f"read failed: {exc}"
+                    self._close_port()
+                    self._notify()
+                    self._stop.wait(delay)
+                    continue
+                if data:
+                    self.queue.put(Chunk(self._clock(), bytes(data)))
+                    self.bytes_read += len(data)
+                    self.chunks_read += 1
+        finally:
+            self._close_port()
+            self._notify()
+
+    def _close_port(self) -> None:
+        port, self._port = self._port, None
+        self.connected.clear()
+        if port is not None:
+            try:
+                port.close()
+            except Exception:
+                pass

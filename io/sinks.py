@@ -1,0 +1,787 @@
+"""Logger sinks: estimate records formatted as CSV, JSON lines or NMEA-style sentences, written
+to stdout, a file, a serial port, TCP clients or UDP, each behind a bounded queue and its own
+writer thread so that a slow or absent logger never blocks the caller.
+
+The `--out` grammar (parse_sink_spec) is documented in docs/sinks.md.
+"""
+
+from __future__ import annotations
+
+import json
+import math
+import os
+import queue
+import select
+import socket
+import sys
+import threading
+import time
+from collections.abc import Iterable, Mapping, Sequence
+from dataclasses import dataclass
+
+from fieldvane.estimator.estimate import ESTIMATE_COLUMNS  # one definition of the columns
+from fieldvane.io.errors import InputError
+
+FORMATS = ("csv", "jsonl", "nmea")
+TRANSPORTS = ("stdout", "file", "tcp", "udp", "serial")
+FILE_SUFFIXES = {".csv": "csv", ".jsonl": "jsonl", ".nmea": "nmea"}
+NMEA_SENTENCE = "FVDIR"
+DEFAULT_QUEUE_SIZE = 4096
+DEFAULT_HOST = "127.0.0.1"
+
+
+# ---------------------------------------------------------------- value formatting
+
+def _plain(value):
+    """Return value as a plain Python scalar (numpy scalars unwrapped)."""
+    item = getattr(value, "item", None)
+    if item is not None and not isinstance(value, (str, bytes)):
+        try:
+            return item()
+        except (TypeError, ValueError):
+            return value
+    return value
+
+
+def _csv_field(value) -> str:
+    value = _plain(value)
+    if value is None:
+        return ""
+    if isinstance(value, bool):
+        return "1" if value else "0"
+    if isinstance(value, int):
+        return str(value)
+    if isinstance(value, float):
+        return repr(value)   # shortest text that reads back to the same float
+    text = str(value)
+    if any(c in text for c in ',"\r\n'):
+        return '"' + text.replace('"', '""') + '"'
+    return text
+
+
+def _json_value(value):
+    value = _plain(value)
+    if isinstance(value, float) and not math.isfinite(value):
+        return None
+    if value is None or isinstance(value, (bool, int, float, str)):
+        return value
+    return str(value)
+
+
+_NMEA_FIXED = {"t": "{:.6f}", "ux": "{:.6f}", "uy": "{:.6f}", "uz": "{:.6f}", "b_nT": "{:.3f}",
+               "bx_nT": "{:.3f}", "by_nT": "{:.3f}", "bz_nT": "{:.3f}", "sigma_deg": "{:.4f}"}
+_NMEA_RESERVED = set("$*,!\\^~\r\n")
+
+
+def _nmea_field(value, fmt: str | None = None) -> str:
+    value = _plain(value)
+    if value is None:
+        return ""
+    if isinstance(value, bool):
+        return "1" if value else "0"
+    if isinstance(value, int):
+        return str(value)
+    if isinstance(value, float):
+        if not math.isfinite(value):
+            return ""          # NMEA writes a missing value as an empty field
+        return (fmt or "{:.9g}").format(value)
+    return "".join("_" if c in _NMEA_RESERVED or not (32 <= ord(c) < 127) else c
+                   for c in str(value))
+
+
+def nmea_checksum(body: str) -> str:
+    """Return the NMEA 0183 checksum of body (the text between '$' and '*'): two upper-case hex."""
+    x = 0
+    for b in body.encode("ascii"):
+        x ^= b
+    return f"{x:02X}"
+
+
+def nmea_sentence(body: str) -> str:
+    """Return '$' + body + '*' + checksum (no line ending)."""
+    return f"${body}*{nmea_checksum(body)}"
+
+
+# ---------------------------------------------------------------- formatters
+
+class _Formatter:
+    """Turns records into lines; columns fixed first, extras after them in a stable order."""
+
+    def __init__(self, extras: Sequence[str] | None = None):
+        self.extras: tuple[str, ...] | None = tuple(extras) if extras is not None else None
+
+    def bind(self, record: Mapping) -> None:
+        """Fix the extra columns from the first record (sorted names) unless given explicitly."""
+        if self.extras is None:
+            self.extras = tuple(sorted(k for k in record if k not in ESTIMATE_COLUMNS))
+
+    def header(self) -> str | None:
+        """Return the header line (with line ending) or None when the format has none."""
+        return None
+
+    def format(self, record: Mapping) -> str:
+        """Return one line (with line ending) for record."""
+        raise NotImplementedError
+
+
+class CsvFormatter(_Formatter):
+    """Estimates CSV: `t, ux, uy, uz, b_nT, bx_nT, by_nT, bz_nT, sigma_deg, flags` then extras."""
+
+    def header(self) -> str:
+        """Return the header line: the fixed columns then the extras, comma separated."""
+        return ",".join(ESTIMATE_COLUMNS + tuple(self.extras or ())) + "\n"
+
+    def format(self, record: Mapping) -> str:
+        """Return one CSV line; floats are written as their shortest exact decimal (repr)."""
+        get = record.get
+        cols = ESTIMATE_COLUMNS + self.extras
+        return ",".join(_csv_field(get(c)) for c in cols) + "\n"
+
+
+class JsonlFormatter(_Formatter):
+    """JSON lines: one object per record, fixed keys first, then extras (non-finite -> null)."""
+
+    def format(self, record: Mapping) -> str:
+        """Return one compact JSON object line."""
+        obj = {c: _json_value(record.get(c)) for c in ESTIMATE_COLUMNS}
+        for k in self.extras:
+            if k in record:
+                obj[k] = _json_value(record[k])
+        for k in sorted(k for k in record if k not in obj):
+            obj[k] = _json_value(record[k])
+        return json.dumps(obj, separators=(",", ":"), allow_nan=False) + "\n"
+
+
+class NmeaFormatter(_Formatter):
+    """NMEA 0183-style `$FVDIR,t,ux,uy,uz,b_nT,bx_nT,by_nT,bz_nT,sigma_deg,flags[,extras]*hh`."""
+
+    def format(self, record: Mapping) -> str:
+        """Return one sentence with CR LF; fixed fields use fixed decimals, empty when non-finite."""
+        get = record.get
+        fields = [NMEA_SENTENCE]
+        fields += [_nmea_field(get(c), _NMEA_FIXED.get(c)) for c in ESTIMATE_COLUMNS]
+        fields += [_nmea_field(get(c)) for c in self.extras]
+        return nmea_sentence(",".join(fields)) + "\r\n"
+
+
+def make_formatter(fmt: str, extras: Sequence[str] | None = None) -> _Formatter:
+    """Return the formatter for 'csv', 'jsonl' or 'nmea'."""
+    classes = {"csv": CsvFormatter, "jsonl": JsonlFormatter, "nmea": NmeaFormatter}
+    if fmt not in classes:
+        raise InputError(f"unknown sink format '{fmt}' (use one of {', '.join(FORMATS)})")
+    return classes[fmt](extras)
+
+
+# ---------------------------------------------------------------- transports
+# A transport is used only from its sink's writer thread. write() returns how many lines were
+# delivered (the rest count as write errors); it must not block for long.
+
+class Transport:
+    """Base transport: header handling and no-op poll/close."""
+
+    description = "transport"
+
+    def __init__(self):
+        self.header: str | None = None
+
+    def set_header(self, line: str) -> None:
+        """Remember the header and write it once (stream transports)."""
+        self.header = line
+        self.write([line])
+
+    def write(self, lines: list[str]) -> int:
+        """Write lines; return how many were delivered."""
+        raise NotImplementedError
+
+    def poll(self) -> None:
+        """Do periodic work (accept clients, retry sends, reconnect)."""
+
+    def close(self, deadline: float) -> None:
+        """Flush and release resources, giving up at the monotonic time deadline."""
+
+    def counters(self) -> dict[str, int]:
+        """Return transport-specific counters."""
+        return {}
+
+
+class StreamTransport(Transport):
+    """Lines to a text stream (stdout by default); a broken pipe disables it."""
+
+    description = "stdout"
+
+    def __init__(self, stream=None):
+        super().__init__()
+        self.stream = stream if stream is not None else sys.stdout
+        self.broken = False
+
+    def write(self, lines: list[str]) -> int:
+        """Write and flush lines; return how many were delivered (0 once the stream broke)."""
+        if self.broken:
+            return 0
+        try:
+            self.stream.write("".join(lines))
+            self.stream.flush()
+            return len(lines)
+        except (BrokenPipeError, OSError, ValueError):
+            self.broken = True
+            return 0
+
+
+class FileTransport(StreamTransport):
+    """Lines to a file; an existing file is never overwritten (append only when asked)."""
+
+    def __init__(self, path: str | os.PathLike, append: bool = False):
+        self.path = str(path)
+        self.description = f"file {self.path}"
+        try:
+            stream = open(self.path, "a" if append else "x", encoding="utf-8", newline="")
+        except FileExistsError:
+            raise InputError("output file exists already; choose another name (nothing is "
+                             "overwritten)", self.path) from None
+        except OSError as exc:
+            raise InputError(f"cannot open output file: {exc.strerror}", self.path) from None
+        super().__init__(stream)
+
+    def close(self, deadline: float) -> None:
+        """Flush and close the file."""
+        try:
+            self.stream.close()
+        except OSError:
+            pass
+
+
+class SerialTransport(Transport):
+    """Lines to a serial port (pyserial URL or device); reopens with back-off after a failure."""
+
+    def __init__(self, device: str, baudrate: int, write_timeout: float = 0.5,
+                 reopen_min_s: float = 0.5, reopen_max_s: float = 10.0):
+        super().__init__()
+        import serial
+        self._serial = serial
+        self.device, self.baudrate, self.write_timeout = device, baudrate, write_timeout
+        self.description = f"serial {device} at {baudrate} baud"
+        self._reopen_min, self._reopen_max = reopen_min_s, reopen_max_s
+        self._delay = reopen_min_s
+        self._next_try = 0.0
+        self.reopens = 0
+        try:
+            self.port = self._open()
+        except Exception as exc:
+            raise InputError(f"cannot open logger serial port: {exc}", device) from None
+
+    def _open(self):
+        return self._serial.serial_for_url(self.device, baudrate=self.baudrate,
+                                           write_timeout=self.write_timeout, timeout=0)
+
+    def set_header(self, line: str) -> None:
+        """Remember the header; it is written now and after every reopen."""
+        self.header = line
+        if self.port is not None:
+            self._raw_write([line])
+
+    def _raw_write(self, lines: list[str]) -> bool:
+        try:
+            self.port.write("".join(lines).encode("ascii", errors="replace"))
+            return True
+        except Exception:
+            self._drop_port()
+            return False
+
+    def _reopen(self) -> bool:
+        now = time.monotonic()
+        if now < self._next_try:
+            return False
+        try:
+            self.port = self._open()
+        except Exception:
+            self._next_try = now + self._delay
+            self._delay = min(self._delay * 2, self._reopen_max)
+            return False
+        self.reopens += 1
+        self._delay = self._reopen_min
+        return not self.header or self._raw_write([self.header])
+
+    def write(self, lines: list[str]) -> int:
+        """Write lines; return how many were delivered (0 while the port is down)."""
+        if self.port is None and not self._reopen():
+            return 0
+        return len(lines) if self._raw_write(lines) else 0
+
+    def _drop_port(self) -> None:
+        try:
+            self.port.close()
+        except Exception:
+            pass
+        self.port = None
+        self._next_try = time.monotonic() + self._delay
+
+    def close(self, deadline: float) -> None:
+        """Wait for the output buffer to drain (bounded by write_timeout) and close the port."""
+        if self.port is not None:
+            try:
+                self.port.flush()
+            except Exception:
+                pass
+            self._drop_port()
+
+    def counters(self) -> dict[str, int]:
+        """Return the number of reopens after failures."""
+        return {"reopens": self.reopens}
+
+
+class _Client:
+    __slots__ = ("sock", "pending", "peer")
+
+    def __init__(self, sock: socket.socket, peer):
+        self.sock, self.peer, self.pending = sock, peer, bytearray()
+
+
+class TcpServerTransport(Transport):
+    """A TCP server: every connected client receives every line (CSV header first on connect).
+
+    Sockets are non-blocking; each client has a bounded backlog and lines that would overflow it
+    are dropped for that client only (counted), so a client that never reads costs nothing else.
+    """
+
+    def __init__(self, host: str = DEFAULT_HOST, port: int = 0, max_clients: int = 8,
+                 client_backlog_bytes: int = 1 << 20, client_sndbuf: int | None = None):
+        super().__init__()
+        self.client_sndbuf = client_sndbuf
+        family = socket.AF_INET6 if ":" in host else socket.AF_INET
+        self.server = socket.socket(family, socket.SOCK_STREAM)
+        self.server.setsockopt(socket.SOL_SOCKET, socket.SO_REUSEADDR, 1)
+        try:
+            self.server.bind((host, port))
+        except OSError as exc:
+            self.server.close()
+            raise InputError(f"cannot listen on {host}:{port}: {exc.strerror}") from None
+        self.server.listen(max_clients)
+        self.server.setblocking(False)
+        self.address = self.server.getsockname()[:2]
+        self.description = f"tcp server {self.address[0]}:{self.address[1]}"
+        self.max_clients = max_clients
+        self.backlog = client_backlog_bytes
+        self.clients: list[_Client] = []
+        self.clients_accepted = 0
+        self.clients_refused = 0
+        self.clients_closed = 0
+        self.client_lines_dropped = 0
+        self._client_count = threading.Semaphore(0)   # released once per accepted client
+
+    def wait_clients(self, n: int, timeout: float) -> bool:
+        """Return True once n clients have been accepted in total (False after timeout s)."""
+        deadline = time.monotonic() + timeout
+        for _ in range(n):
+            if not self._client_count.acquire(timeout=max(0.0, deadline - time.monotonic())):
+                return False
+        for _ in range(n):
+            self._client_count.release()
+        return True
+
+    def set_header(self, line: str) -> None:
+        """Remember the header: it goes first to every client, now and on connect."""
+        self.header = line
+        self.poll()
+        data = line.encode("utf-8")
+        for c in self.clients:
+            c.pending[:0] = data
+        self._send_all()
+
+    def poll(self) -> None:
+        """Accept waiting clients, notice closed ones, and push pending bytes."""
+        while True:
+            try:
+                sock, peer = self.server.accept()
+            except (BlockingIOError, InterruptedError):
+                break
+            except OSError:
+                break
+            if len(self.clients) >= self.max_clients:
+                self.clients_refused += 1
+                sock.close()
+                continue
+            sock.setblocking(False)
+            if self.client_sndbuf:
+                sock.setsockopt(socket.SOL_SOCKET, socket.SO_SNDBUF, self.client_sndbuf)
+            client = _Client(sock, peer)
+            if self.header:
+                client.pending += self.header.encode("utf-8")
+            self.clients.append(client)
+            self.clients_accepted += 1
+            self._client_count.release()
+        if self.clients:
+            try:
+                readable, _, _ = select.select([c.sock for c in self.clients], [], [], 0)
+            except (OSError, ValueError):
+                readable = [c.sock for c in self.clients]
+            for c in [c for c in self.clients if c.sock in readable]:
+                try:
+                    if not c.sock.recv(4096):       # orderly close by the client
+                        self._drop(c)
+                except (BlockingIOError, InterruptedError):
+                    pass
+                except OSError:
+                    self._drop(c)
+        self._send_all()
+
+    def _drop(self, c: _Client) -> None:
+        self.client_lines_dropped += c.pending.count(b"\n")   # queued for it, never delivered
+        c.pending.clear()
+        if c in self.clients:
+            self.clients.remove(c)
+            self.clients_closed += 1
+        try:
+            c.sock.close()
+        except OSError:
+            pass
+
+    def _send_all(self) -> None:
+        for c in list(self.clients):
+            if not c.pending:
+                continue
+            try:
+                sent = c.sock.send(c.pending)
+                del c.pending[:sent]
+            except (BlockingIOError, InterruptedError):
+                pass
+            except OSError:
+                self._drop(c)
+
+    def write(self, lines: list[str]) -> int:
+        """Queue lines for every client (dropping whole lines past a client's backlog); send."""
+        if self.clients:
+            encoded = [ln.encode("utf-8") for ln in lines]
+            for c in self.clients:
+                for b in encoded:
+                    if len(c.pending) + len(b) > self.backlog:
+                        self.client_lines_dropped += 1
+                    else:
+                        c.pending += b
+        self.poll()
+        return len(lines)
+
+    def close(self, deadline: float) -> None:
+        """Push what clients will take until deadline (monotonic s), then close every socket."""
+        while any(c.pending for c in self.clients) and time.monotonic() < deadline:
+            socks = [c.sock for c in self.clients if c.pending]
+            try:
+                select.select([], socks, [], max(0.0, min(0.05, deadline - time.monotonic())))
+            except (OSError, ValueError):
+                break
+            self._send_all()
+        for c in list(self.clients):
+            self._drop(c)
+        self.server.close()
+
+    def counters(self) -> dict[str, int]:
+        """Return client counts and the lines dropped for clients that fell behind."""
+        return {"clients": len(self.clients), "clients_accepted": self.clients_accepted,
+                "clients_refused": self.clients_refused, "clients_closed": self.clients_closed,
+                "client_lines_dropped": self.client_lines_dropped}
+
+
+class UdpTransport(Transport):
+    """One datagram per line to host:port (the CSV header is sent once, first)."""
+
+    def __init__(self, host: str, port: int):
+        super().__init__()
+        family = socket.AF_INET6 if ":" in host else socket.AF_INET
+        self.sock = socket.socket(family, socket.SOCK_DGRAM)
+        self.sock.setblocking(False)
+        self.target = (host, port)
+        self.description = f"udp {host}:{port}"
+
+    def write(self, lines: list[str]) -> int:
+        """Send each line as one datagram; return how many were sent."""
+        sent = 0
+        for ln in lines:
+            try:
+                self.sock.sendto(ln.encode("utf-8"), self.target)
+                sent += 1
+            except OSError:      # buffer full, or an earlier datagram was refused (ICMP)
+                pass
+        return sent
+
+    def close(self, deadline: float) -> None:
+        """Close the socket."""
+        self.sock.close()
+
+
+# ---------------------------------------------------------------- the sink
+
+class Sink:
+    """A formatter and a transport behind a bounded queue drained by the sink's own thread."""
+
+    def __init__(self, formatter: _Formatter, transport: Transport,
+                 queue_size: int = DEFAULT_QUEUE_SIZE, name: str | None = None,
+                 max_batch: int = 256, poll_s: float = 0.05):
+        self.formatter = formatter
+        self.transport = transport
+        self.name = name or transport.description
+        self.max_batch = max_batch
+        self.poll_s = poll_s
+        self._q: queue.Queue = queue.Queue(maxsize=queue_size)
+        self._lock = threading.Lock()
+        self._cond = threading.Condition()
+        self._stop = threading.Event()
+        self._closing = False
+        self._header_done = False
+        self.accepted = 0        # records taken into the queue
+        self.dropped = 0         # records refused because the queue was full (or sink closed)
+        self.written = 0         # lines the transport delivered
+        self.write_errors = 0    # lines the transport could not deliver
+        self.format_errors = 0   # records that could not be formatted
+        self._processed = 0      # records taken out of the queue and handled
+        self.last_error: str | None = None
+        self._thread = threading.Thread(target=self._run, name=f"fieldvane-sink {self.name}",
+                                        daemon=True)
+        self._thread.start()
+
+    def emit(self, record: Mapping) -> bool:
+        """Queue a copy of record without blocking; return False (and count a drop) if full."""
+        if not isinstance(record, Mapping):
+            record = record.row()          # an estimator Estimate: its estimates-CSV row
+        with self._lock:
+            if self._closing:
+                self.dropped += 1
+                return False
+            try:
+                self._q.put_nowait(dict(record))
+            except queue.Full:
+                self.dropped += 1
+                return False
+            self.accepted += 1
+            return True
+
+    def emit_wait(self, record: Mapping, timeout: float) -> bool:
+        """Queue a copy of record, waiting up to timeout s for room (for replays, not live)."""
+        if not isinstance(record, Mapping):
+            record = record.row()
+        with self._lock:
+            if self._closing:
+                self.dropped += 1
+                return False
+        try:
+            self._q.put(dict(record), timeout=timeout)
+        except queue.Full:
+            with self._lock:
+                self.dropped += 1
+            return False
+        with self._lock:
+            self.accepted += 1
+        return True
+
+    def flush(self, timeout: float = 5.0) -> bool:
+        """Return True once every record accepted so far has been handed to the transport."""
+        target = self.accepted
+        with self._cond:
+            return self._cond.wait_for(lambda: self._processed >= target or
+                                       not self._thread.is_alive(), timeout) and \
+                self._processed >= target
+
+    def close(self, timeout: float = 5.0) -> bool:
+        """Stop accepting, write what is queued, close the transport; True if done in time."""
+        with self._lock:
+            self._closing = True
+        # The transport gets most of the time; the rest is left for the thread to end.
+        self._deadline = time.monotonic() + 0.8 * timeout
+        self._stop.set()
+        self._thread.join(timeout)
+        return not self._thread.is_alive()
+
+    @property
+    def alive(self) -> bool:
+        """Return True while the writer thread runs."""
+        return self._thread.is_alive()
+
+    def join(self, timeout: float) -> bool:
+        """Wait for the writer thread to end; return True if it did."""
+        self._thread.join(timeout)
+        return not self._thread.is_alive()
+
+    def counters(self) -> dict[str, int]:
+        """Return accepted, dropped, written, write_errors, format_errors, queued and transport counts."""
+        c = {"accepted": self.accepted, "dropped": self.dropped, "written": self.written,
+             "write_errors": self.write_errors, "format_errors": self.format_errors,
+             "queued": self.accepted - self._processed}
+        c.update(self.transport.counters())
+        return c
+
+    def _run(self) -> None:
+        formatter, transport, q = self.formatter, self.transport, self._q
+        if formatter.extras is not None:
+            self._write_header()
+        try:
+            while True:
+                try:
+                    first = q.get(timeout=self.poll_s)
+                except queue.Empty:
+                    try:
+                        transport.poll()
+                    except Exception as exc:           # keep the writer alive on odd errors
+                        self.last_error = repr(exc)
+                    if self._stop.is_set():
+                        break
+                    continue
+                batch = [first]
+                while len(batch) < self.max_batch:
+                    try:
+                        batch.append(q.get_nowait())
+                    except queue.Empty:
+                        break
+                if not self._header_done:
+                    formatter.bind(batch[0])
+                    self._write_header()
+                lines = []
+                for rec in batch:
+                    try:
+                        lines.append(formatter.format(rec))
+                    except Exception as exc:
+                        self.format_errors += 1
+                        self.last_error = repr(exc)
+                try:
+                    n = transport.write(lines) if lines else 0
+                except Exception as exc:
+                    n = 0
+                    self.last_error = repr(exc)
+                self.written += n
+                self.write_errors += len(lines) - n
+                with self._cond:
+                    self._processed += len(batch)
+                    self._cond.notify_all()
+        finally:
+            try:
+                transport.close(getattr(self, "_deadline", time.monotonic() + 1.0))
+            except Exception as exc:
+                self.last_error = repr(exc)
+            with self._cond:
+                self._cond.notify_all()
+
+    def _write_header(self) -> None:
+        self._header_done = True
+        header = self.formatter.header()
+        if header:
+            try:
+                self.transport.set_header(header)
+            except Exception as exc:
+                self.last_error = repr(exc)
+
+
+# ---------------------------------------------------------------- --out specs
+
+@dataclass(frozen=True)
+class SinkSpec:
+    """A parsed `--out` value: format, transport and its target."""
+
+    fmt: str
+    transport: str
+    path: str | None = None
+    host: str | None = None
+    port: int | None = None
+    device: str | None = None
+    baudrate: int | None = None
+
+    def __str__(self) -> str:
+        if self.transport == "file":
+            return f"{self.fmt}:file:{self.path}"
+        if self.transport in ("tcp", "udp"):
+            host = f"[{self.host}]" if ":" in (self.host or "") else self.host
+            return f"{self.fmt}:{self.transport}:{host}:{self.port}"
+        if self.transport == "serial":
+            return f"{self.fmt}:serial:{self.device}:{self.baudrate}"
+        return f"{self.fmt}:{self.transport}"
+
+
+def _port(text: str, spec: str) -> int:
+    try:
+        port = int(text)
+    except ValueError:
+        raise InputError(f"'{text}' is not a port number", column="--out " + spec) from None
+    if not 0 <= port <= 65535:
+        raise InputError(f"port {port} is out of range", column="--out " + spec)
+    return port
+
+
+def _host_port(rest: str, spec: str) -> tuple[str, int]:
+    if rest.startswith("["):
+        host, sep, tail = rest[1:].partition("]")
+        if not sep or not tail.startswith(":"):
+            raise InputError("expected [IPV6]:PORT", column="--out " + spec)
+        return host, _port(tail[1:], spec)
+    if ":" not in rest:
+        return DEFAULT_HOST, _port(rest, spec)
+    host, _, port = rest.rpartition(":")
+    if not host:
+        raise InputError("empty host", column="--out " + spec)
+    return host, _port(port, spec)
+
+
+def parse_sink_spec(spec: str) -> SinkSpec:
+    """Return the SinkSpec of an `--out` value (grammar in docs/sinks.md); raise InputError."""
+    text = spec.strip()
+    head, sep, rest = text.partition(":")
+    if head not in FORMATS:
+        suffix = os.path.splitext(text)[1].lower()
+        if suffix in FILE_SUFFIXES:
+            return SinkSpec(FILE_SUFFIXES[suffix], "file", path=text)
+        raise InputError("expected FORMAT:TRANSPORT[:TARGET] with FORMAT one of "
+                         f"{', '.join(FORMATS)}, or a file path ending "
+                         f"{', '.join(FILE_SUFFIXES)}", column="--out " + spec)
+    kind, _, target = rest.partition(":")
+    if kind == "stdout" and not target:
+        return SinkSpec(head, "stdout")
+    if kind == "file" and target:
+        return SinkSpec(head, "file", path=target)
+    if kind in ("tcp", "udp") and target:
+        host, port = _host_port(target, spec)
+        if kind == "udp" and port == 0:
+            raise InputError("a UDP sink needs a destination port", column="--out " + spec)
+        return SinkSpec(head, kind, host=host, port=port)
+    if kind == "serial" and target:
+        device, _, baud = target.rpartition(":")
+        if not device or not baud.isdigit() or int(baud) <= 0:
+            raise InputError("expected serial:DEVICE:BAUD (the baud rate is required)",
+                             column="--out " + spec)
+        return SinkSpec(head, "serial", device=device, baudrate=int(baud))
+    raise InputError(f"unknown or incomplete transport '{kind}' (use stdout, file:PATH, "
+                     "tcp:[HOST:]PORT, udp:[HOST:]PORT or serial:DEVICE:BAUD)",
+                     column="--out " + spec)
+
+
+def open_transport(spec: SinkSpec, append: bool = False) -> Transport:
+    """Return the transport a SinkSpec names, opened (files created, servers listening)."""
+    if spec.transport == "stdout":
+        return StreamTransport()
+    if spec.transport == "file":
+        return FileTransport(spec.path, append=append)
+    if spec.transport == "tcp":
+        return TcpServerTransport(spec.host, spec.port)
+    if spec.transport == "udp":
+        return UdpTransport(spec.host, spec.port)
+    if spec.transport == "serial":
+        return SerialTransport(spec.device, spec.baudrate)
+    raise InputError(f"unknown transport '{spec.transport}'")
+
+
+def open_sink(spec: str | SinkSpec, extras: Sequence[str] | None = None,
+              queue_size: int = DEFAULT_QUEUE_SIZE, append: bool = False) -> Sink:
+    """Return a started Sink for an `--out` value (or a SinkSpec)."""
+    if isinstance(spec, str):
+        spec = parse_sink_spec(spec)
+    return Sink(make_formatter(spec.fmt, extras), open_transport(spec, append), queue_size,
+                name=str(spec))
+
+
+def close_sinks(sinks: Iterable[Sink], timeout: float = 5.0) -> bool:
+    """Close every sink, sharing one deadline; return True if all finished in time."""
+    deadline = time.monotonic() + timeout
+    sinks = list(sinks)
+    for s in sinks:
+        with s._lock:
+            s._closing = True
+        s._deadline = deadline - 0.2 * timeout
+        s._stop.set()
+    ok = True
+    for s in sinks:
+        ok &= s.join(max(0.0, deadline - time.monotonic()))
+    return ok

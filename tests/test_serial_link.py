@@ -1,0 +1,144 @@
+"""The serial link over loop://, a pty pair and socket://: bytes in order, reconnect, counters."""
+
+from __future__ import annotations
+
+import os
+import random
+import socket
+import threading
+import tty
+
+import serial
+
+from fieldvane.io.capture import Chunk
+from fieldvane.io.serial_link import ChunkQueue, SerialLink
+
+TIMEOUT = 10.0
+
+
+def collect(link, n_bytes, max_chunks=100000):
+    """Return the bytes and chunks of the link until n_bytes arrived (bounded in count and time)."""
+    chunks = []
+    total = 0
+    for _ in range(max_chunks):
+        if total >= n_bytes:
+            break
+        c = link.get(timeout=TIMEOUT)
+        assert c is not None, f"timed out after {total} of {n_bytes} bytes"
+        chunks.append(c)
+        total += len(c.data)
+    return b"".join(c.data for c in chunks), chunks
+
+
+def test_loop_url_delivers_every_byte_in_order():
+    port = serial.serial_for_url("loop://", timeout=0.05)
+    link = SerialLink("loop://", opener=lambda: port).start()
+    try:
+        assert link.connected.wait(TIMEOUT)
+        rng = random.Random(5)
+        sent = bytes(rng.randrange(256) for _ in range(20000))
+        for i in range(0, len(sent), 997):
+            port.write(sent[i:i + 997])
+        data, chunks = collect(link, len(sent))
+        assert data == sent
+        times = [c.host_time_ns for c in chunks]
+        assert times == sorted(times) and all(isinstance(t, int) for t in times)
+        c = link.counters()
+        assert c["bytes_read"] == len(sent) and c["chunks_read"] == len(chunks)
+        assert c["chunks_dropped"] == 0 and c["opens"] == 1
+    finally:
+        assert link.stop(TIMEOUT)
+    assert not link.connected.is_set()
+
+
+def make_pty(link_path):
+    master, slave = os.openpty()
+    tty.setraw(slave)          # no echo or line editing before pyserial configures it
+    if os.path.lexists(link_path):
+        os.unlink(link_path)
+    os.symlink(os.ttyname(slave), link_path)
+    return master, slave
+
+
+def test_pty_vanishes_and_returns(tmp_path):
+    path = str(tmp_path / "sensor")
+    master, slave = make_pty(path)
+    link = SerialLink(path, reconnect_min_s=0.01, reconnect_max_s=0.05).start()
+    try:
+        assert link.wait_for(lambda l: l.opens == 1, TIMEOUT)
+        first = bytes(range(256)) * 20
+        os.write(master, first)
+        data, _ = collect(link, len(first))
+        assert data == first
+        # The port vanishes: the device goes away (master closed, path removed).
+        os.unlink(path)
+        os.close(master)
+        os.close(slave)
+        assert link.wait_for(lambda l: l.disconnects == 1 and not l.connected.is_set(), TIMEOUT)
+        assert link.wait_for(lambda l: l.open_failures >= 1, TIMEOUT)   # retries while absent
+        # ...and returns under the same name.
+        master, slave = make_pty(path)
+        assert link.wait_for(lambda l: l.opens == 2, TIMEOUT)
+        second = b"after the port came back" * 100
+        os.write(master, second)
+        data, _ = collect(link, len(second))
+        assert data == second
+        c = link.counters()
+        assert (c["opens"], c["disconnects"], c["bytes_read"]) == (2, 1, len(first) + len(second))
+    finally:
+        assert link.stop(TIMEOUT)
+        os.close(master)
+        os.close(slave)
+
+
+def test_socket_url_server_restart():
+    server = socket.socket()
+    server.setsockopt(socket.SOL_SOCKET, socket.SO_REUSEADDR, 1)
+    server.bind(("127.0.0.1", 0))
+    server.listen(1)
+    server.settimeout(TIMEOUT)
+    port = server.getsockname()[1]
+    link = SerialLink(f"socket://127.0.0.1:{port}", reconnect_min_s=0.01,
+                      reconnect_max_s=0.05).start()
+    try:
+        conn, _ = server.accept()
+        # pyserial's open() empties the input buffer: send only once the open has completed.
+        assert link.wait_for(lambda l: l.opens == 1, TIMEOUT)
+        conn.sendall(b"one" * 1000)
+        assert collect(link, 3000)[0] == b"one" * 1000
+        conn.close()
+        server.close()                     # the port vanishes entirely (connections refused)
+        assert link.wait_for(lambda l: l.disconnects == 1, TIMEOUT)
+        assert link.wait_for(lambda l: l.open_failures >= 1, TIMEOUT)
+        server = socket.socket()
+        server.setsockopt(socket.SOL_SOCKET, socket.SO_REUSEADDR, 1)
+        server.bind(("127.0.0.1", port))
+        server.listen(1)
+        server.settimeout(TIMEOUT)
+        conn, _ = server.accept()
+        assert link.wait_for(lambda l: l.opens == 2, TIMEOUT)
+        conn.sendall(b"two" * 1000)
+        assert collect(link, 3000)[0] == b"two" * 1000
+        conn.close()
+    finally:
+        assert link.stop(TIMEOUT)
+        server.close()
+
+
+def test_missing_port_backs_off_and_stops_cleanly(tmp_path):
+    before = set(threading.enumerate())
+    link = SerialLink(str(tmp_path / "absent"), reconnect_min_s=0.01, reconnect_max_s=0.02)
+    link.start()
+    assert link.wait_for(lambda l: l.open_failures >= 3, TIMEOUT)
+    assert link.opens == 0 and "open failed" in link.last_error
+    assert link.stop(TIMEOUT)
+    assert set(threading.enumerate()) == before
+
+
+def test_chunk_queue_is_bounded_in_bytes():
+    q = ChunkQueue(max_bytes=100)
+    assert q.put(Chunk(1, b"a" * 60))
+    assert not q.put(Chunk(2, b"b" * 41))
+    assert q.put(Chunk(3, b"c" * 40))
+    assert (q.chunks_dropped, q.bytes_dropped, q.queued_bytes) == (1, 41, 100)
+    assert q.get(0).data == b"a" * 60 and q.get(0).host_time_ns == 3 and q.get(0) is None
