@@ -10,41 +10,35 @@ from fieldvane.estimator.estimate import ESTIMATE_COLUMNS, Estimate
 from fieldvane.io.errors import InputError
 
 
-def _fmt(v) -> str:
-    if isinstance(v, (int, np.integer)):
-        return str(int(v))
-    f = float(v)
-    return "nan" if f != f else f"{f:.9g}"
-
-
 class EstimatesWriter:
-    """Writes estimates rows to a CSV file: the fixed columns first, extras after in first-seen order."""
+    """Writes estimates to a CSV file synchronously (never drops), with the same formatter as the CSV sink."""
 
     def __init__(self, path: str | Path, extras: list[str] | None = None, metadata: dict | None = None):
+        from fieldvane.io.sinks import make_formatter
+
         self.path = Path(path)
         self.path.parent.mkdir(parents=True, exist_ok=True)
         self._fh = open(self.path, "w", encoding="utf-8", newline="")
-        self._extras = list(extras) if extras is not None else None
+        self._formatter = make_formatter("csv", extras)
         self._metadata = metadata or {}
         self.rows = 0
 
-    def write(self, est: Estimate) -> None:
-        """Append one estimate as a row (the header is written with the first row)."""
-        row = est.row()
-        if self._extras is None:
-            self._extras = [k for k in row if k not in ESTIMATE_COLUMNS]
+    def write(self, est: Estimate | dict) -> None:
+        """Append one estimate (or a record dict) as a row; the header goes with the first row."""
+        row = est.row() if isinstance(est, Estimate) else est
         if self.rows == 0:
+            self._formatter.bind(row)
             for k, v in self._metadata.items():
                 self._fh.write(f"# {k}: {v}\n")
-            self._fh.write(",".join(list(ESTIMATE_COLUMNS) + self._extras) + "\n")
-        values = [row[c] for c in ESTIMATE_COLUMNS] + [row.get(c, float("nan")) for c in self._extras]
-        self._fh.write(",".join(_fmt(v) for v in values) + "\n")
+            self._fh.write(self._formatter.header())
+        self._fh.write(self._formatter.format(row))
         self.rows += 1
 
     def close(self) -> None:
-        """Flush and close the file."""
+        """Flush and close the file (a file with no rows still gets the header)."""
         if self.rows == 0:
-            self._fh.write(",".join(ESTIMATE_COLUMNS) + "\n")
+            self._formatter.bind({})
+            self._fh.write(self._formatter.header())
         self._fh.close()
 
     def __enter__(self):

@@ -1,15 +1,55 @@
-"""`fieldvane report`: not built yet."""
+"""`fieldvane report`: pictures and a short summary of an estimates CSV, for the logbook."""
 
 from __future__ import annotations
 
-DESCRIPTION = "Not built yet."
+import sys
+
+DESCRIPTION = """Turn an estimates CSV (from replay, run or the CSV logger) into a report folder.
+
+Writes summary.md (a table of the numbers, links to the figures) and PNG figures: the track on
+two equal-area hemispheres, the direction components, sigma_deg (with the error against truth),
+the NIS with its 95% chi-square band, a flags timeline, and the magnitude from each isotope with
+their ratio. The numbers are also printed.
+
+With --truth (a simulator recording with true_ux, true_uy, true_uz, true_b_nT) each estimate is
+matched to the nearest truth sample within half a truth sample period; the report adds the RMS
+and 95th-percentile angle to truth, the share of samples within 1 and 2 sigma_deg (a consistent
+filter gives about 63% and 98%), and the magnitude error.
+
+The figures need matplotlib (the 'plots' extra); without it summary.md is still written.
+The output is not a safety or navigation instrument by itself.
+
+example:
+  fieldvane report est.csv --truth rec.csv -o report/
+"""
 
 
 def add_arguments(parser) -> None:
-    """Register this command's options on its argparse sub-parser."""
+    """Register report's options."""
+    parser.add_argument("estimates", metavar="EST.csv", help="estimates CSV to report on")
+    parser.add_argument("--truth", metavar="REC.csv",
+                        help="simulator recording with the true_* columns, to score against")
+    parser.add_argument("-o", "--output", required=True, metavar="REPORT_DIR",
+                        help="folder for summary.md and the PNG figures (created if missing)")
+    parser.add_argument("--channels", type=int, default=None, metavar="N",
+                        help="lock-in channels (NIS degrees of freedom = 2 N) when the file has no "
+                             "nis_dof column (default: from the phase_* columns, else 4)")
 
 
 def run(args) -> int:
-    """Run the command; returns the exit code."""
-    from fieldvane.io.errors import JobError
-    raise JobError("'report' is not built yet")
+    """Write the report, print the numbers and the files; returns the exit code."""
+    from fieldvane.io.errors import InputError
+    from fieldvane.io.report import make_report, summary_text
+
+    if args.channels is not None and not 1 <= args.channels <= 64:
+        raise InputError(f"--channels must be between 1 and 64, got {args.channels}")
+    out = make_report(args.estimates, args.truth, args.output, channels=args.channels)
+    for note in out.notes:
+        print(f"note: {note}", file=sys.stderr)
+    print(summary_text(out.summary))
+    print("wrote:")
+    for path in out.files:
+        print(f"  {path}")
+    if out.figures_skipped:
+        print(f"fieldvane report: figures not drawn: {out.figures_skipped}", file=sys.stderr)
+    return 0

@@ -1,0 +1,404 @@
+"""Report of an estimates CSV: the summary numbers (pure computation), summary.md, and the figures."""
+
+from __future__ import annotations
+
+import math
+from dataclasses import dataclass, field
+from pathlib import Path
+
+import numpy as np
+
+from fieldvane.estimator.flags import EstimateFlag
+from fieldvane.estimator.sphere import angle_between
+from fieldvane.io.errors import InputError
+
+CAUTION = ("The output is a measurement with stated uncertainty, not a safety or navigation instrument "
+           "by itself. Check the `flags` column and `sigma_deg` before acting on a direction.")
+PLOTS_HINT = "install fieldvane[plots] for the figures (pip install 'fieldvane[plots]')"
+TRUTH_KEYS = ("true_ux", "true_uy", "true_uz", "true_b_nT")
+NIS_BAND = (0.025, 0.975)            # central 95% interval of the chi-square distribution
+DEFAULT_CHANNELS = 4                 # two probes x two pumps, when nothing in the file says otherwise
+KNOWN_BITS = sum(int(f) for f in EstimateFlag)
+
+# 2-D error with covariance P and sigma^2 = trace(P): for isotropic P, |e|^2 / sigma^2 ~ Exp(1), so
+# P(|e| < k sigma) = 1 - exp(-k^2) (Rayleigh distribution).
+WITHIN_1_EXPECTED = 1.0 - math.exp(-1.0)
+WITHIN_2_EXPECTED = 1.0 - math.exp(-4.0)
+
+# key -> (unit, meaning). Order is the order of the summary table; flag rates are inserted after
+# `samples_with_direction`. Keys only appear in a summary when their input columns exist.
+FIELDS: dict[str, tuple[str, str]] = {
+    "samples": ("", "rows in the estimates file"),
+    "duration_s": ("s", "last time minus first time"),
+    "sample_period_s": ("s", "median time step"),
+    "samples_with_direction": ("", "rows with a finite direction"),
+    "flag_rate_undocumented": ("fraction", "rows with a flag bit outside the documented table"),
+    "sigma_deg_median": ("deg", "median 1-sigma angular uncertainty"),
+    "sigma_deg_p95": ("deg", "95th percentile of sigma_deg"),
+    "nis_samples": ("", "rows with a finite NIS and dof > 0"),
+    "nis_mean": ("", "mean normalized innovation squared"),
+    "nis_dof_mean": ("", "mean degrees of freedom of the NIS (its expected mean)"),
+    "nis_per_dof_mean": ("", "mean of NIS/dof (1 for a consistent filter)"),
+    "nis_inside_95_band": ("fraction", "NIS inside the central 95% chi-square interval of its dof (0.95 expected)"),
+    "b_mean_nT": ("nT", "mean fused magnitude"),
+    "b_std_nT": ("nT", "standard deviation of the fused magnitude"),
+    "b_a_mean_nT": ("nT", "mean magnitude seen by isotope a"),
+    "b_a_std_nT": ("nT", "standard deviation of isotope a's magnitude"),
+    "b_b_mean_nT": ("nT", "mean magnitude seen by isotope b"),
+    "b_b_std_nT": ("nT", "standard deviation of isotope b's magnitude"),
+    "b_ratio_mean": ("", "mean of b_a_nT / b_b_nT"),
+    "b_ratio_std": ("", "standard deviation of b_a_nT / b_b_nT"),
+    "truth_matched": ("", "rows with a truth sample within half a truth sample period"),
+    "truth_unmatched": ("", "rows without a truth sample within half a truth sample period"),
+    "truth_matched_no_direction": ("", "matched rows without a finite direction (not in the errors)"),
+    "error_rms_deg": ("deg", "RMS angle between estimate and truth"),
+    "error_p95_deg": ("deg", "95th percentile of the angle to truth"),
+    "within_1sigma": ("fraction", f"error <= sigma_deg ({WITHIN_1_EXPECTED:.3f} expected, 2-D Rayleigh)"),
+    "within_2sigma": ("fraction", f"error <= 2 sigma_deg ({WITHIN_2_EXPECTED:.3f} expected, 2-D Rayleigh)"),
+    "within_1sigma_expected": ("fraction", "1 - exp(-1)"),
+    "within_2sigma_expected": ("fraction", "1 - exp(-4)"),
+    "b_error_mean_nT": ("nT", "mean of b_nT - true_b_nT"),
+    "b_error_std_nT": ("nT", "standard deviation of b_nT - true_b_nT"),
+    "b_error_rms_nT": ("nT", "RMS of b_nT - true_b_nT"),
+}
+
+
+def flag_key(flag: EstimateFlag) -> str:
+    """Return the summary key of a flag's rate (e.g. 'flag_rate_TRACKING')."""
+    return f"flag_rate_{flag.name}"
+
+
+def field_info(key: str) -> tuple[str, str]:
+    """Return (unit, meaning) of a summary key."""
+    if key in FIELDS:
+        return FIELDS[key]
+    name = key.removeprefix("flag_rate_")
+    return "fraction", f"rows with the {name} flag"
+
+
+# ---------------------------------------------------------------------------------------- numbers
+
+def _mean(x: np.ndarray) -> float:
+    return float(np.mean(x)) if x.size else math.nan
+
+
+def _std(x: np.ndarray) -> float:
+    return float(np.std(x, ddof=1)) if x.size > 1 else math.nan
+
+
+def _pct(x: np.ndarray, q: float) -> float:
+    return float(np.percentile(x, q)) if x.size else math.nan
+
+
+def _finite(x: np.ndarray) -> np.ndarray:
+    x = np.asarray(x, float)
+    return x[np.isfinite(x)]
+
+
+def median_period(t: np.ndarray) -> float:
+    """Return the median positive time step of t (s), nan with fewer than two distinct times."""
+    d = np.diff(np.unique(_finite(t)))
+    return float(np.median(d)) if d.size else math.nan
+
+
+def channel_count(estimates: dict) -> int | None:
+    """Return the number of lock-in channels named by phase_<ch> columns, or None when there are none."""
+    n = sum(1 for k in estimates if k.startswith("phase_"))
+    return n or None
+
+
+def nis_dof(estimates: dict, channels: int | None = None) -> tuple[np.ndarray, str]:
+    """Return the NIS degrees of freedom per row and where they came from (column, option or assumption)."""
+    n = len(estimates["t"])
+    if "nis_dof" in estimates:
+        return np.asarray(estimates["nis_dof"], float), "the nis_dof column"
+    if channels is not None:
+        return np.full(n, 2.0 * channels), f"2 x {channels} channels (given)"
+    found = channel_count(estimates)
+    if found is not None:
+        return np.full(n, 2.0 * found), f"2 x {found} channels (from the phase_* columns)"
+    return (np.full(n, 2.0 * DEFAULT_CHANNELS),
+            f"2 x {DEFAULT_CHANNELS} channels (assumed: no nis_dof or phase_* column; see --channels)")
+
+
+def nis_band(dof: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """Return the (lower, upper) limits of the central 95% chi-square interval for each dof."""
+    from scipy.stats import chi2
+
+    dof = np.asarray(dof, float)
+    ok = dof > 0
+    lo, hi = np.full(dof.shape, np.nan), np.full(dof.shape, np.nan)
+    lo[ok], hi[ok] = chi2.ppf(NIS_BAND[0], dof[ok]), chi2.ppf(NIS_BAND[1], dof[ok])
+    return lo, hi
+
+
+def match_truth(t_est: np.ndarray, t_truth: np.ndarray) -> np.ndarray:
+    """Return, per estimate row, the index of the nearest truth sample within half its period, else -1."""
+    t_est, t_truth = np.asarray(t_est, float), np.asarray(t_truth, float)
+    out = np.full(t_est.shape, -1, dtype=np.int64)
+    if t_truth.size == 0:
+        return out
+    order = np.argsort(t_truth, kind="stable")
+    ts = t_truth[order]
+    period = median_period(ts)
+    if not math.isfinite(period):
+        period = median_period(t_est)
+    tol = 0.5 * period if math.isfinite(period) else 0.0
+    tol += 1e-9 * max(abs(float(ts[0])), abs(float(ts[-1])), 1.0)   # rounding of written times
+    right = np.clip(np.searchsorted(ts, t_est), 0, ts.size - 1)
+    left = np.clip(right - 1, 0, ts.size - 1)
+    pick = np.where(np.abs(ts[left] - t_est) <= np.abs(ts[right] - t_est), left, right)
+    ok = np.abs(ts[pick] - t_est) <= tol
+    out[ok] = order[pick[ok]]
+    return out
+
+
+def truth_errors(estimates: dict, truth: dict) -> dict[str, np.ndarray]:
+    """Return per-row truth comparison: index (-1 unmatched), angle error (deg), |B| error (nT); nan when unknown."""
+    idx = match_truth(estimates["t"], truth["t"])
+    ok = idx >= 0
+    n = idx.shape[0]
+    u = np.column_stack([estimates["ux"], estimates["uy"], estimates["uz"]])
+    err = np.full(n, np.nan)
+    b_err = np.full(n, np.nan)
+    if ok.any():
+        j = idx[ok]
+        tu = np.column_stack([truth["true_ux"][j], truth["true_uy"][j], truth["true_uz"][j]])
+        err[ok] = np.degrees(angle_between(u[ok], tu))
+        b_err[ok] = np.asarray(estimates["b_nT"], float)[ok] - truth["true_b_nT"][j]
+    return {"index": idx, "error_deg": err, "b_error_nT": b_err}
+
+
+def summarize(estimates: dict, truth: dict | None = None, channels: int | None = None) -> dict:
+    """Return the report's numbers (name -> int or float; units in FIELDS) for estimates and optional truth."""
+    t = np.asarray(estimates["t"], float)
+    flags = np.asarray(estimates["flags"], np.int64)
+    u = np.column_stack([estimates["ux"], estimates["uy"], estimates["uz"]])
+    has_u = np.all(np.isfinite(u), axis=1)
+    n = int(t.shape[0])
+    s: dict = {"samples": n,
+               "duration_s": float(np.nanmax(t) - np.nanmin(t)) if n else math.nan,
+               "sample_period_s": median_period(t),
+               "samples_with_direction": int(has_u.sum())}
+    for f in EstimateFlag:
+        s[flag_key(f)] = float(np.mean((flags & int(f)) != 0)) if n else math.nan
+    s["flag_rate_undocumented"] = float(np.mean((flags & ~KNOWN_BITS) != 0)) if n else math.nan
+
+    sigma = _finite(estimates["sigma_deg"])
+    s["sigma_deg_median"] = float(np.median(sigma)) if sigma.size else math.nan
+    s["sigma_deg_p95"] = _pct(sigma, 95)
+
+    if "nis" in estimates:
+        dof, _ = nis_dof(estimates, channels)
+        nis = np.asarray(estimates["nis"], float)
+        use = np.isfinite(nis) & np.isfinite(dof) & (dof > 0)
+        lo, hi = nis_band(dof[use])
+        s["nis_samples"] = int(use.sum())
+        s["nis_mean"] = _mean(nis[use])
+        s["nis_dof_mean"] = _mean(dof[use])
+        s["nis_per_dof_mean"] = _mean(nis[use] / dof[use])
+        s["nis_inside_95_band"] = _mean(((nis[use] >= lo) & (nis[use] <= hi)).astype(float))
+
+    b = _finite(estimates["b_nT"])
+    s["b_mean_nT"], s["b_std_nT"] = _mean(b), _std(b)
+    for iso in ("a", "b"):
+        col = f"b_{iso}_nT"
+        if col in estimates:
+            x = _finite(estimates[col])
+            s[f"b_{iso}_mean_nT"], s[f"b_{iso}_std_nT"] = _mean(x), _std(x)
+    if "b_a_nT" in estimates and "b_b_nT" in estimates:
+        with np.errstate(divide="ignore", invalid="ignore"):
+            ratio = _finite(np.asarray(estimates["b_a_nT"], float) / np.asarray(estimates["b_b_nT"], float))
+        s["b_ratio_mean"], s["b_ratio_std"] = _mean(ratio), _std(ratio)
+
+    if truth is not None:
+        te = truth_errors(estimates, truth)
+        matched = te["index"] >= 0
+        sig = np.asarray(estimates["sigma_deg"], float)
+        use = matched & has_u & np.isfinite(te["error_deg"])
+        err = te["error_deg"][use]
+        s["truth_matched"] = int(matched.sum())
+        s["truth_unmatched"] = int(n - matched.sum())
+        s["truth_matched_no_direction"] = int((matched & ~has_u).sum())
+        s["error_rms_deg"] = float(np.sqrt(np.mean(err ** 2))) if err.size else math.nan
+        s["error_p95_deg"] = _pct(err, 95)
+        both = use & np.isfinite(sig)
+        e2, sg = te["error_deg"][both], sig[both]
+        s["within_1sigma"] = _mean((e2 <= sg).astype(float))
+        s["within_2sigma"] = _mean((e2 <= 2.0 * sg).astype(float))
+        s["within_1sigma_expected"] = WITHIN_1_EXPECTED
+        s["within_2sigma_expected"] = WITHIN_2_EXPECTED
+        be = _finite(te["b_error_nT"])
+        s["b_error_mean_nT"], s["b_error_std_nT"] = _mean(be), _std(be)
+        s["b_error_rms_nT"] = float(np.sqrt(np.mean(be ** 2))) if be.size else math.nan
+    return s
+
+
+# ---------------------------------------------------------------------------------------- inputs
+
+def data_line_numbers(path: str | Path) -> list[int]:
+    """Return the file line number (1-based) of every data row of a CSV with '#' comments and a header."""
+    lines, header_seen = [], False
+    with open(path, encoding="utf-8", errors="replace") as fh:
+        for lineno, raw in enumerate(fh, 1):
+            s = raw.strip()
+            if not s or s.startswith("#"):
+                continue
+            if header_seen:
+                lines.append(lineno)
+            header_seen = True
+    return lines
+
+
+def check_estimates(estimates: dict, path: str | Path) -> list[str]:
+    """Raise InputError (file, line, column) on values no estimator writes; return warnings (file:line: ...)."""
+    t = np.asarray(estimates["t"], float)
+    if t.size == 0:
+        raise InputError("no data rows", str(path))
+    u = np.column_stack([estimates["ux"], estimates["uy"], estimates["uz"]])
+    with np.errstate(invalid="ignore"):
+        norm = np.linalg.norm(u, axis=1)
+        sigma = np.asarray(estimates["sigma_deg"], float)
+        problems = [
+            ("t", ~np.isfinite(t), "time is not a finite number"),
+            ("flags", np.asarray(estimates["flags"]) < 0, "flags must be a non-negative integer"),
+            ("ux", np.isfinite(norm) & (np.abs(norm - 1.0) > 1e-3), "direction (ux, uy, uz) is not a unit vector"),
+            ("sigma_deg", sigma < 0, "sigma_deg is negative"),
+        ]
+    for column, bad, message in problems:
+        if bad.any():
+            row = int(np.argmax(bad))
+            raise InputError(message, str(path), data_line_numbers(path)[row], column)
+    warnings = []
+    back = np.nonzero(np.diff(t) < 0)[0]
+    if back.size:
+        line = data_line_numbers(path)[int(back[0]) + 1]
+        warnings.append(f"{path}:{line}: column 't': time goes backwards ({back.size} time(s) in the file)")
+    return warnings
+
+
+def load_truth(path: str | Path) -> tuple[dict[str, np.ndarray], list[str]]:
+    """Return the ground truth of a simulator recording (t s, true_u* sensor frame, true_b_nT nT) and warnings."""
+    from fieldvane.io.recording import read_recording
+
+    block, warnings = read_recording(path)
+    if not all(k in block.truth for k in TRUTH_KEYS):
+        raise InputError("no ground-truth columns (true_ux, true_uy, true_uz, true_b_nT); only simulator "
+                         "recordings carry them", str(path), None, "true_ux")
+    return {"t": np.asarray(block.t, float), **{k: np.asarray(block.truth[k], float) for k in TRUTH_KEYS}}, warnings
+
+
+# ---------------------------------------------------------------------------------------- text
+
+# Values that sit close to a round number need more digits to say anything (a ratio near 1).
+DIGITS = {"b_ratio_mean": 10}
+
+
+def format_value(value, key: str = "") -> str:
+    """Return a summary value as text: integers exactly, floats to 6 significant digits, 'n/a' for nan."""
+    if isinstance(value, (int, np.integer)):
+        return str(int(value))
+    v = float(value)
+    return "n/a" if not math.isfinite(v) else f"{v:.{DIGITS.get(key, 6)}g}"
+
+
+def summary_text(summary: dict) -> str:
+    """Return the summary as aligned plain-text lines (key, value, unit) for the terminal."""
+    width = max(len(k) for k in summary)
+    lines = []
+    for k, v in summary.items():
+        unit, _ = field_info(k)
+        lines.append(f"{k:<{width}}  {format_value(v, k)}{' ' + unit if unit and unit != 'fraction' else ''}")
+    return "\n".join(lines)
+
+
+def summary_markdown(summary: dict, sources: dict[str, str], images: list[tuple[str, str]],
+                     notes: list[str]) -> str:
+    """Return summary.md: sources, caution, the table of numbers, notes and links to the images."""
+    out = ["# fieldvane report", ""]
+    out += [f"- {name}: `{value}`" for name, value in sources.items()]
+    out += ["", f"> **Caution.** {CAUTION}", "", "## Numbers", "",
+            "| key | value | unit | meaning |", "| --- | --- | --- | --- |"]
+    for k, v in summary.items():
+        unit, meaning = field_info(k)
+        out.append(f"| `{k}` | {format_value(v, k)} | {unit} | {meaning} |")
+    if notes:
+        out += ["", "## Notes", ""] + [f"- {n}" for n in notes]
+    out += ["", "## Figures", ""]
+    if images:
+        for title, name in images:
+            out += [f"### {title}", "", f"![{title}]({name})", ""]
+    else:
+        out += [f"Figures not drawn: {PLOTS_HINT}.", ""]
+    return "\n".join(out)
+
+
+# ---------------------------------------------------------------------------------------- files
+
+@dataclass
+class ReportOutput:
+    """What a report wrote: files (summary.md first), the numbers, notes, and why figures were skipped."""
+
+    files: list[Path]
+    summary: dict
+    notes: list[str] = field(default_factory=list)
+    figures_skipped: str | None = None
+
+
+def make_report(estimates_path, truth_path, out_dir, channels: int | None = None,
+                figures: bool = True) -> ReportOutput:
+    """Return the report written to out_dir: summary.md and, when matplotlib is there, the PNG figures."""
+    from fieldvane.io.estimates_csv import read_estimates
+
+    est = read_estimates(estimates_path)
+    notes = check_estimates(est, estimates_path)
+    truth = None
+    if truth_path is not None:
+        truth, truth_warnings = load_truth(truth_path)
+        notes += truth_warnings
+    summary = summarize(est, truth, channels)
+    dof, dof_source = nis_dof(est, channels)
+    if "nis" in est:
+        notes.append(f"NIS degrees of freedom: {dof_source}")
+    sources = {"estimates": str(estimates_path)}
+    if truth_path is not None:
+        sources["truth"] = str(truth_path)
+
+    out = Path(out_dir)
+    try:
+        out.mkdir(parents=True, exist_ok=True)
+    except OSError as exc:
+        raise InputError(f"cannot create the report folder: {exc.strerror}", str(out)) from None
+    md = out / "summary.md"
+    # Numbers first, so a failure while drawing never loses them.
+    _write_text(md, summary_markdown(summary, sources, [], notes + ["figures not drawn yet"]))
+    skipped = None
+    images: list[tuple[str, Path]] = []
+    if figures:
+        from fieldvane.io import plots
+        try:
+            plots.require_matplotlib()
+        except plots.PlotsUnavailable as exc:
+            skipped = f"{exc}; {PLOTS_HINT}"
+        else:
+            error = None
+            if truth is not None:
+                error = truth_errors(est, truth)["error_deg"]
+            images = plots.write_figures(out, est, truth=truth, error_deg=error, nis_dof=dof)
+    else:
+        skipped = "figures not requested"
+    _write_text(md, summary_markdown(summary, sources, [(t, p.name) for t, p in images],
+                                     notes + ([f"figures not drawn: {skipped}"] if skipped else [])))
+    return ReportOutput([md] + [p for _, p in images], summary, notes, skipped)
+
+
+def write_report(estimates_path, truth_path, out_dir, channels: int | None = None) -> list[Path]:
+    """Return the files of the report written to out_dir (summary.md, then the PNG figures if drawn)."""
+    return make_report(estimates_path, truth_path, out_dir, channels).files
+
+
+def _write_text(path: Path, text: str) -> None:
+    try:
+        path.write_text(text + "\n", encoding="utf-8")
+    except OSError as exc:
+        raise InputError(f"cannot write: {exc.strerror}", str(path)) from None
