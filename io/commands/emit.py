@@ -1,15 +1,138 @@
-"""`fieldvane emit`: not built yet."""
+"""`fieldvane emit`: stream the simulated sensor as wire frames or CSV lines."""
 
 from __future__ import annotations
 
-DESCRIPTION = "Not built yet."
+import sys
+
+DESCRIPTION = """Play the simulated sensor electronics: stream a scenario as binary wire frames
+(docs/wire_format.md) or recording-CSV lines to a pseudo-terminal, a TCP client or a file.
+
+--to pty         opens a pseudo-terminal pair and prints the path to read from (e.g. /dev/pts/5)
+--to tcp:PORT    serves one client at a time on 127.0.0.1:PORT (0 picks a free port)
+--to file:PATH   writes the byte stream to a file
+
+Real time (the default for pty and tcp) paces samples by the sample rate and drops what nobody
+reads, like a sensor would; --fast (the default for files) sends as fast as the reader takes.
+Faults for testing receivers: --flip-every, --garbage-every, --pause.
+
+example:
+  fieldvane emit examples/turntable.toml --to pty
+  fieldvane emit demo_track --to tcp:5760 --format csv --repeat
+  fieldvane emit examples/static.toml --to file:static.bin --fast --flip-every 100
+"""
 
 
 def add_arguments(parser) -> None:
-    """Register this command's options on its argparse sub-parser."""
+    """Register emit's options."""
+    parser.add_argument("scenario", help="scenario TOML file (or a built-in name: demo_scan, demo_track)")
+    parser.add_argument("--to", required=True, metavar="DEST", help="pty, tcp:PORT or file:PATH")
+    parser.add_argument("--format", choices=("binary", "csv"), default="binary",
+                        help="binary wire frames (default) or CSV lines (text input mode)")
+    pace = parser.add_mutually_exclusive_group()
+    pace.add_argument("--realtime", dest="realtime", action="store_true", default=None,
+                      help="pace samples by the sample rate (default for pty and tcp)")
+    pace.add_argument("--fast", dest="realtime", action="store_false",
+                      help="send as fast as the reader takes them (default for files)")
+    parser.add_argument("--seed", type=int, default=None, help="noise seed (overrides [run] seed)")
+    parser.add_argument("--duration", type=float, default=None, metavar="S",
+                        help="run length in seconds (overrides [run] duration_s)")
+    parser.add_argument("--repeat", action="store_true",
+                        help="start over at the end (sequence numbers and time go on) until Ctrl-C")
+    parser.add_argument("--with-truth", action="store_true",
+                        help="CSV only: add the columns true_ux, true_uy, true_uz, true_b_nT")
+    parser.add_argument("--zero-before-each-frame", action="store_true",
+                        help="binary only: send a 0x00 before every frame too (a damaged frame then "
+                             "never spoils the next one)")
+    parser.add_argument("--flip-every", type=int, default=0, metavar="N",
+                        help="flip one random bit in every Nth record")
+    parser.add_argument("--garbage-every", type=int, default=0, metavar="N",
+                        help="send 16 random bytes (ended by a delimiter) before every Nth record")
+    parser.add_argument("--pause", default=None, metavar="AT:SECONDS",
+                        help="stall the link for SECONDS before the sample at time AT (s)")
+
+
+def _parse_pause(text: str, run) -> tuple[int, float]:
+    """Return (record index, seconds) of a --pause AT:SECONDS option."""
+    import numpy as np
+
+    from fieldvane.io.errors import InputError
+
+    try:
+        at_text, s_text = text.split(":", 1)
+        at, seconds = float(at_text), float(s_text)
+    except ValueError:
+        raise InputError(f"--pause: expected AT:SECONDS, e.g. 5:2, got {text!r}") from None
+    if not (np.isfinite(at) and np.isfinite(seconds)) or at < 0 or seconds <= 0:
+        raise InputError(f"--pause: AT must be >= 0 and SECONDS > 0, got {text!r}")
+    return int(np.searchsorted(run.t, at)), seconds
 
 
 def run(args) -> int:
-    """Run the command; returns the exit code."""
-    from fieldvane.io.errors import JobError
-    raise JobError("'emit' is not built yet")
+    """Emit the scenario until it ends (or Ctrl-C) and print what was sent; returns the exit code."""
+    from fieldvane.firmware_sim.emitter import Emitter, FaultPlan, PtySink, TcpSink, open_sink
+    from fieldvane.firmware_sim.scenario import simulate
+    from fieldvane.io.commands.simulate import load_or_fail
+    from fieldvane.io.errors import InputError, JobError
+
+    if args.with_truth and args.format != "csv":
+        raise InputError("--with-truth: only the CSV format has room for truth columns")
+    if args.zero_before_each_frame and args.format != "binary":
+        raise InputError("--zero-before-each-frame: only for binary frames")
+    for name in ("flip_every", "garbage_every"):
+        if getattr(args, name) < 0:
+            raise InputError(f"--{name.replace('_', '-')}: must be >= 0")
+    scenario = load_or_fail(args.scenario, args.seed, args.duration)
+    sim = simulate(scenario)
+    pause_at, pause_s = _parse_pause(args.pause, sim) if args.pause else (None, 0.0)
+    faults = FaultPlan(bit_flip_every=args.flip_every, garbage_every=args.garbage_every,
+                       pause_at=pause_at, pause_s=pause_s, seed=scenario.seed)
+    try:
+        sink = open_sink(args.to)
+    except ValueError as exc:
+        raise InputError(f"--to: {exc}") from None
+    except OSError as exc:
+        raise JobError(f"cannot open {args.to}: {exc.strerror or exc}") from None
+    realtime = args.realtime if args.realtime is not None else args.to.split(":")[0] != "file"
+    emitter = Emitter(sim, sink, fmt=args.format, realtime=realtime, faults=faults,
+                      repeat=args.repeat, include_truth=args.with_truth,
+                      zero_before_each=args.zero_before_each_frame)
+    pacing = "real time" if realtime else "as fast as possible"
+    where = sink.description
+    if isinstance(sink, PtySink):
+        where = f"pty {sink.path} (open it as the serial port)"
+    elif isinstance(sink, TcpSink):
+        where = f"tcp {sink.host}:{sink.port} (one client at a time)"
+    print(f"emitting '{scenario.name}': {len(sim)} samples at {sim.sample_rate_hz:g} Hz as "
+          f"{args.format} to {where}, {pacing}{', repeating' if args.repeat else ''}; Ctrl-C stops",
+          flush=True)
+    emitter.start()
+    try:
+        while not emitter.wait_sent(0.2):
+            if emitter.finished.is_set():
+                break
+    except KeyboardInterrupt:
+        emitter.stop()
+        _report(emitter, file=sys.stderr)
+        raise
+    if emitter.error is not None:
+        emitter.stop()
+        raise JobError(f"emitter stopped: {emitter.error}")
+    _report(emitter)
+    if sink.holds_open:
+        print(f"run finished; holding {sink.description} open for readers; Ctrl-C closes it", flush=True)
+        try:
+            while not emitter.join(0.5):
+                pass
+        except KeyboardInterrupt:
+            pass
+    emitter.stop()
+    return 0
+
+
+def _report(emitter, file=None) -> None:
+    s = emitter.stats
+    faults = ""
+    if s.bit_flips or s.garbage_bursts or s.pauses:
+        faults = f"; faults: {s.bit_flips} bit flips, {s.garbage_bursts} garbage bursts, {s.pauses} pauses"
+    print(f"sent {s.records_sent} records ({s.bytes_sent} bytes) in {s.passes} pass(es), "
+          f"{s.records_dropped} dropped{faults}", file=file or sys.stdout, flush=True)
