@@ -73,8 +73,8 @@ def harmonics_and_gradient(degree: int, u: np.ndarray) -> tuple[np.ndarray, np.n
     dy = ey * pw[:, 1, np.maximum(ey - 1, 0)]
     dz = ez * pw[:, 2, np.maximum(ez - 1, 0)]
     mono = px * py * pz
-    grad = np.stack([dx * py * pz, px * dy * pz, px * py * dz], axis=-1)  # (N, M, 3)
-    return mono @ coef, np.einsum("nmk,mj->njk", grad, coef)
+    grad = np.stack([dx * py * pz, px * dy * pz, px * py * dz], axis=1)  # (N, 3, M)
+    return mono @ coef, np.swapaxes(grad @ coef, 1, 2)
 
 
 def _powers(u: np.ndarray, degree: int) -> np.ndarray:

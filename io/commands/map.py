@@ -1,15 +1,90 @@
-"""`fieldvane map`: not built yet."""
+"""`fieldvane map`: the Cramer-Rao bound on the field direction over the sphere, for a calibration."""
 
 from __future__ import annotations
 
-DESCRIPTION = "Not built yet."
+import math
+import sys
+
+DESCRIPTION = """\
+Map the Cramer-Rao lower bound (CRLB) on the field direction over the whole sphere, from a
+calibration's response model and its lock-in noise. Writes, per probe set, a CSV
+(polar, azimuth, ux, uy, uz, crlb_deg) and a PNG on two equal-area (Lambert azimuthal)
+hemispheres with the pump and probe axes and the blind zones (bound above --blind-deg) marked,
+and prints the median, 95th percentile and fraction of the sphere above 1 degree.
+
+With --gain-free each probe's overall gain is treated as unknown, so only amplitude ratios and
+phases inform the direction (the bound for a sensor whose probe power drifts)."""
+
+PROBE_CHOICES = ("1", "2", "both")
 
 
 def add_arguments(parser) -> None:
     """Register this command's options on its argparse sub-parser."""
+    parser.add_argument("-c", "--calibration", required=True, metavar="CAL.json",
+                        help="calibration file written by 'fieldvane calibrate'")
+    parser.add_argument("--noise", type=float, default=None, metavar="V",
+                        help="lock-in noise std of X and of Y per channel, volts "
+                             "(default: each channel's calibrated noise)")
+    parser.add_argument("--b-nT", dest="b_nT", type=float, default=None, metavar="B",
+                        help="field magnitude in nT (default: middle of the calibrated range)")
+    parser.add_argument("--probes", choices=PROBE_CHOICES, default=None,
+                        help="probe set to map (default: each probe alone and both together)")
+    parser.add_argument("--gain-free", action="store_true",
+                        help="treat each probe's gain as unknown (amplitude ratios only)")
+    parser.add_argument("--points", type=int, default=4000, metavar="N",
+                        help="directions in the CSV and the summary (near-uniform grid; default 4000)")
+    parser.add_argument("--blind-deg", type=float, default=5.0, metavar="DEG",
+                        help="bound above which a region is marked blind (default 5)")
+    parser.add_argument("--no-png", action="store_true", help="write the CSV and summary only")
+    parser.add_argument("-o", "--output", default=".", metavar="OUTDIR",
+                        help="output folder (default: current folder)")
+
+
+def _check(args) -> None:
+    from fieldvane.io.errors import InputError
+
+    if args.noise is not None and not (math.isfinite(args.noise) and args.noise > 0):
+        raise InputError(f"--noise must be a positive voltage, got {args.noise}")
+    if args.b_nT is not None and not (math.isfinite(args.b_nT) and args.b_nT > 0):
+        raise InputError(f"--b-nT must be a positive magnitude in nT, got {args.b_nT}")
+    if args.points < 20:
+        raise InputError(f"--points must be at least 20, got {args.points}")
+    if not (math.isfinite(args.blind_deg) and args.blind_deg > 0):
+        raise InputError(f"--blind-deg must be positive, got {args.blind_deg}")
 
 
 def run(args) -> int:
     """Run the command; returns the exit code."""
-    from fieldvane.io.errors import JobError
-    raise JobError("'map' is not built yet")
+    from fieldvane.io.calfile import load_calibration
+    from fieldvane.io.crlb_map import make_map, summary_lines
+    from fieldvane.io.errors import InputError, JobError
+
+    _check(args)
+    plt = None
+    if not args.no_png:
+        try:
+            import matplotlib
+            matplotlib.use("Agg")
+            import matplotlib.pyplot as plt
+        except ImportError:
+            raise JobError("the PNG map needs matplotlib: install it with "
+                           "`pip install 'fieldvane[plots]'`, or pass --no-png for the CSV only") from None
+    cal = load_calibration(args.calibration)
+    lo, hi = cal.magnitude_range_nT
+    if args.b_nT is not None and not (0.9 * lo <= args.b_nT <= 1.1 * hi):
+        print(f"fieldvane map: warning: --b-nT {args.b_nT:g} lies outside the calibrated range "
+              f"{lo:.0f}..{hi:.0f} nT; the model is extrapolated", file=sys.stderr)
+    try:
+        maps, files, b = make_map(cal, args.output, b_nT=args.b_nT, noise_std=args.noise,
+                                  probes=args.probes, gain_free=args.gain_free, n_points=args.points,
+                                  plt=plt, blind_deg=args.blind_deg)
+    except ValueError as exc:
+        raise InputError(str(exc), path=args.calibration) from None
+    noise = "calibrated per channel" if args.noise is None else f"{args.noise:g} V"
+    print(f"CRLB over the sphere at |B| = {b:.0f} nT, noise {noise}"
+          f"{', gain-free' if args.gain_free else ''} ({args.points} directions)")
+    for line in summary_lines(maps):
+        print("  " + line)
+    for f in files:
+        print(f"wrote {f}")
+    return 0
