@@ -5,8 +5,6 @@ from __future__ import annotations
 from dataclasses import dataclass, field
 
 import numpy as np
-from scipy.optimize import least_squares
-
 from fieldvane.estimator.constants import CELL_PAIRS, gamma_hz_per_nt, identify_isotope
 from fieldvane.estimator.harmonics import harmonics, n_harmonics
 from fieldvane.estimator.magnitude_basis import MagnitudeBasis
@@ -154,6 +152,8 @@ def _fit_physics(u, s_basis, z, channels, pump0, probe0):
     def residuals(params):
         _, r = _fit_gains(params_of(axes_from(params), hand).shapes(u), s_basis, z)
         return np.concatenate([r.real.ravel(), r.imag.ravel()])
+
+    from scipy.optimize import least_squares  # only the fit needs it; the live loop never does
 
     sol = least_squares(residuals, np.zeros(2 * (2 + n_probe)), method="lm", x_scale=0.01)
     axes = axes_from(sol.x)

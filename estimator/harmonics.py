@@ -5,8 +5,6 @@ from __future__ import annotations
 from functools import lru_cache
 
 import numpy as np
-from scipy.special import sph_harm_y
-
 from fieldvane.estimator.sphere import fibonacci_sphere, unit_to_spherical
 
 
@@ -17,6 +15,8 @@ def n_harmonics(degree: int) -> int:
 
 def real_sph_harm_reference(degree: int, u: np.ndarray) -> np.ndarray:
     """Return orthonormal real spherical harmonics Y_lm(u), l <= degree, from scipy.special (N, (L+1)^2)."""
+    from scipy.special import sph_harm_y  # only for building the tables once
+
     polar, azimuth = unit_to_spherical(u)
     cols = []
     for l in range(degree + 1):

@@ -1,0 +1,60 @@
+"""FilterSettings: defaults, validation with clear messages, and the dict/TOML round trip."""
+
+import math
+import tomllib
+
+import pytest
+
+from fieldvane.estimator.filter_settings import FilterSettings
+
+
+def test_defaults_are_valid_and_documented_units():
+    s = FilterSettings()
+    assert s.gate_probability == 0.9999
+    assert s.lost_after_gated == 10
+    assert not s.gain_drift and not s.phase_drift
+    assert math.isinf(s.blind_threshold_deg)
+
+
+def test_round_trip_through_dict_and_toml_text():
+    s = FilterSettings(rate_random_walk_deg_s_rt_s=0.3, phase_drift=True, lost_after_gated=4)
+    d = s.to_dict()
+    assert FilterSettings.from_dict(d) == s
+    # Written by hand the way io would write it (TOML floats include inf; integers may stand for floats).
+    text = "\n".join(f"{k} = {str(v).lower() if isinstance(v, bool) else v}" for k, v in d.items())
+    assert FilterSettings.from_dict(tomllib.loads(text)) == s
+    assert FilterSettings.from_dict({"measurement_noise_scale": 2}).measurement_noise_scale == 2.0
+
+
+@pytest.mark.parametrize("changes, words", [
+    ({"gate_probability": 1.5}, "gate_probability"),
+    ({"gate_probability": 0.3}, "between 0.5 and 1"),
+    ({"angle_random_walk_deg_rt_s": -1.0}, "angle_random_walk_deg_rt_s must be > 0"),
+    ({"rate_random_walk_deg_s_rt_s": math.nan}, "rate_random_walk_deg_s_rt_s must be > 0"),
+    ({"measurement_noise_scale": math.inf}, "must be finite"),
+    ({"lost_after_gated": 0}, "at least 1"),
+    ({"lost_after_gated": 2.5}, "whole number"),
+    ({"gain_drift": 1}, "true or false"),
+    ({"nis_average_limit": 0.9}, "NIS/dof = 1"),
+    ({"low_signal_fraction": 1.0}, "low_signal_fraction"),
+    ({"max_gap_s": "1"}, "must be a number"),
+])
+def test_invalid_values_name_the_setting(changes, words):
+    with pytest.raises(ValueError, match=words):
+        FilterSettings(**changes)
+
+
+def test_unknown_keys_are_named():
+    with pytest.raises(ValueError, match="unknown filter setting.*gate_prob\\b.*known:"):
+        FilterSettings.from_dict({"gate_prob": 0.99})
+    with pytest.raises(ValueError, match="table"):
+        FilterSettings.from_dict([("gate_probability", 0.99)])
+
+
+def test_settings_are_frozen_and_replace_validates():
+    s = FilterSettings()
+    with pytest.raises(Exception):
+        s.gate_probability = 0.5
+    assert s.replace(gate_probability=0.999).gate_probability == 0.999
+    with pytest.raises(ValueError, match="gate_probability"):
+        s.replace(gate_probability=2.0)
