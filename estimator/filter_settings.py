@@ -30,7 +30,8 @@ class FilterSettings:
     initial_gain_std: float = 0.02
     """Uncertainty of each probe's log-gain at the first acquisition (dimensionless)."""
     phase_drift: bool = False
-    """Estimate a phase-offset drift per channel."""
+    """Estimate a phase-offset drift per channel. Common phase shifts look much like a turn of the field,
+    so with this on the direction sigma grows toward the phase uncertainty (honestly); off by default."""
     phase_drift_deg_rt_s: float = 0.02
     """Random walk of each channel's phase offset, deg/sqrt(s)."""
     initial_phase_std_deg: float = 1.0

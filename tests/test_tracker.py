@@ -605,19 +605,14 @@ def test_innovation_loglik_matches_tracker_and_prefers_true_noise(two_probe):
 
 
 def test_snapshot_solver_as_initiator(two_probe):
-    """The lookup-table inverse (estimator/snapshot.py) plugs in as the initiator: its cov is already on
-    sphere.tangent_basis(u). A 70-deg direction step is re-acquired from it within K samples."""
+    """The lookup-table inverse (estimator/snapshot.py, SnapshotSolver.initiate) plugs in as the initiator.
+    A 70-deg direction step is re-acquired from it within K samples."""
     snapshot = pytest.importorskip("fieldvane.estimator.snapshot")
     sensor, cal, sigma = two_probe
     solver = snapshot.SnapshotSolver.from_calibration(cal)
-
-    def initiator(sample, b_nT):
-        res = solver.solve(np.asarray(sample.z)[None], [[sample.f_a, sample.f_b]], [sample.t], sample.channels)
-        return (res.u[0], res.cov[0]) if np.all(np.isfinite(res.u[0])) else None
-
     t, u = rotating(1200, 3.0, [0.3, 1.0, 0.2], normalize(np.array([1.0, 0.5, 0.7])))
     u[600:] = u[600:] @ rotation_matrix([1.0, 0.0, 0.0], math.radians(70)).T
-    tracker = Tracker(cal, FilterSettings(), initiator)
+    tracker = Tracker(cal, FilterSettings(), solver.initiate)
     rec = tracker.run_arrays(make_stream(sensor, t, u, B0, sigma))
     err = errors_deg(rec, u)
     k = tracker.settings.lost_after_gated
