@@ -41,25 +41,20 @@ def save_calibration(cal: Calibration, path: str | Path, source: dict | None = N
     def vec(v):
         return [round(float(x), 9) for x in v]
 
-    pumps = []
-    for j, pid in enumerate("ab"):
-        entry = {"id": pid, "direction": vec(ph.pump_axes[j]), "isotope": cal.pump_isotopes[j],
-                 "gamma_hz_per_nT": round(float(cal.gammas_hz_per_nt[j]), 9)}
-        if cal.nominal_pump_axes is not None:
-            entry["nominal_direction"] = vec(cal.nominal_pump_axes[j])
-            entry["angle_to_nominal_deg"] = round(float(axis_angle_deg(ph.pump_axes[j], cal.nominal_pump_axes[j])), 4)
-        if sensor and sensor.get("pump_names"):
-            entry["name"] = sensor["pump_names"][j]
-        pumps.append(entry)
-    probes = []
-    for i in range(ph.probe_axes.shape[0]):
-        entry = {"id": str(i + 1), "direction": vec(ph.probe_axes[i])}
-        if cal.nominal_probe_axes is not None:
-            entry["nominal_direction"] = vec(cal.nominal_probe_axes[i])
-            entry["angle_to_nominal_deg"] = round(float(axis_angle_deg(ph.probe_axes[i], cal.nominal_probe_axes[i])), 4)
-        if sensor and sensor.get("probe_names"):
-            entry["name"] = sensor["probe_names"][i]
-        probes.append(entry)
+    def beam(bid, axis, nominal, names, index):
+        entry = {"id": bid, "direction": vec(axis)}
+        if nominal is not None:
+            entry["nominal_direction"] = vec(nominal[index])
+            entry["angle_to_nominal_deg"] = round(float(axis_angle_deg(axis, nominal[index])), 4)
+        if sensor and sensor.get(names):
+            entry["name"] = sensor[names][index]
+        return entry
+
+    pumps = [dict(beam(pid, ph.pump_axes[j], cal.nominal_pump_axes, "pump_names", j),
+                  isotope=cal.pump_isotopes[j], gamma_hz_per_nT=round(float(cal.gammas_hz_per_nt[j]), 9))
+             for j, pid in enumerate("ab")]
+    probes = [beam(str(i + 1), ph.probe_axes[i], cal.nominal_probe_axes, "probe_names", i)
+              for i in range(ph.probe_axes.shape[0])]
     channels = []
     for k, ch in enumerate(m.channels):
         rep = cal.channel_reports[k]

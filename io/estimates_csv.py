@@ -8,6 +8,7 @@ import numpy as np
 
 from fieldvane.estimator.estimate import ESTIMATE_COLUMNS, Estimate
 from fieldvane.io.errors import InputError
+from fieldvane.io.recording import is_float
 
 
 class EstimatesWriter:
@@ -77,7 +78,7 @@ def read_estimates(path: str | Path) -> dict[str, np.ndarray]:
             try:
                 rows.append([float(p) for p in parts])
             except ValueError:
-                bad = next(i for i, p in enumerate(parts) if not _is_float(p))
+                bad = next(i for i, p in enumerate(parts) if not is_float(p))
                 raise InputError(f"not a number ({parts[bad][:30]!r})", path, lineno, header[bad]) from None
     if header is None:
         raise InputError("no header row", path)
@@ -85,11 +86,3 @@ def read_estimates(path: str | Path) -> dict[str, np.ndarray]:
     out = {name: data[:, i] for i, name in enumerate(header)}
     out["flags"] = out["flags"].astype(np.int64)
     return out
-
-
-def _is_float(s: str) -> bool:
-    try:
-        float(s)
-        return True
-    except ValueError:
-        return False

@@ -142,7 +142,7 @@ class RecordingReader:
             try:
                 row = [float(p) for p in parts]
             except ValueError:
-                bad = next(i for i, p in enumerate(parts) if not _is_float(p))
+                bad = next(i for i, p in enumerate(parts) if not is_float(p))
                 self.skipped_rows += 1
                 self._warn(f"{self.path}:{lineno}: column '{layout.header[bad]}': not a number "
                            f"({parts[bad].strip()[:30]!r}); row skipped")
@@ -183,7 +183,8 @@ class RecordingReader:
         return block
 
 
-def _is_float(s: str) -> bool:
+def is_float(s: str) -> bool:
+    """Return True if s parses as a Python float."""
     try:
         float(s)
         return True
