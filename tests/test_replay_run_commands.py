@@ -126,3 +126,19 @@ def test_demo_runs_to_its_summary(tmp_path):
     for needle in ("[6/6] summary", "reproduces the live estimates exactly: yes", "error against truth",
                    "Cramer-Rao bound", "frames ok"):
         assert needle in out
+
+
+def test_single_magnitude_calibration_flags_replay_far_from_it(tmp_path, capsys):
+    # A scan at one magnitude is legitimate; replay far from that magnitude is flagged.
+    assert main(["simulate", os.path.join(EXAMPLES, "calibration_scan_single.toml"), "-o", str(tmp_path / "s.csv")]) == 0
+    assert main(["calibrate", str(tmp_path / "s.csv"), "-o", str(tmp_path / "cal.json")]) == 0
+    assert "single magnitude" in capsys.readouterr().out
+    assert main(["simulate", os.path.join(EXAMPLES, "magnitude_ramp.toml"), "-o", str(tmp_path / "ramp.csv")]) == 0
+    assert main(["replay", str(tmp_path / "ramp.csv"), "-c", str(tmp_path / "cal.json"), "-o", str(tmp_path / "e.csv"),
+                 "--mode", "snapshot"]) == 0
+    est = read_estimates(tmp_path / "e.csv")
+    outside = (est["flags"] & int(EstimateFlag.OUTSIDE_CALIBRATION)) > 0
+    far = np.abs(est["b_nT"] / 20000 - 1) > 0.11
+    near = np.abs(est["b_nT"] / 20000 - 1) < 0.09
+    assert far.any() and near.any()
+    assert outside[far].all() and not outside[near].any()
