@@ -14,7 +14,7 @@ from dataclasses import dataclass, fields
 class FilterSettings:
     """Process noise, measurement noise, gating and health rules of the tracking filter (units in names)."""
 
-    # Motion model: direction error (2, tangent plane) plus angular rate (2, tangent plane).
+    # Motion model: direction error (2, tangent plane) plus angular velocity (3, sensor frame).
     angle_random_walk_deg_rt_s: float = 0.01
     """White jitter of the field direction, deg/sqrt(s) (vibration, fast field noise)."""
     rate_random_walk_deg_s_rt_s: float = 1.0
@@ -42,6 +42,18 @@ class FilterSettings:
     """Factor on the calibrated lock-in noise std of every channel (dimensionless)."""
     gate_probability: float = 0.9999
     """Chi-square gate: a sample whose innovation is less likely than 1 - this is rejected."""
+
+    # Adaptive measurement noise (estimator/noise_level.py): per probe, the running median of successive
+    # innovation differences estimates the noise variance of the moment; R is inflated by it.
+    adaptive_noise: bool = True
+    """Inflate each probe's measurement noise while its recent innovations show more noise than calibrated."""
+    adaptive_noise_window_samples: int = 9
+    """Values in the running median of the noise level: a noise rise is absorbed after about (n + 1) / 2 + 1
+    gated samples, which must stay below lost_after_gated (n <= 2 * lost_after_gated - 5)."""
+    adaptive_noise_threshold: float = 2.5
+    """Noise variance ratio (to calibrated, dimensionless) above which R is inflated; below it R stays calibrated."""
+    adaptive_noise_max_scale: float = 30.0
+    """Largest factor on the noise std (dimensionless): bounds the inflation."""
 
     # Lost-track rule: either condition triggers a re-acquisition from the initiator.
     lost_after_gated: int = 10
@@ -91,6 +103,15 @@ class FilterSettings:
                              f"averages NIS/dof = 1 (got {self.nis_average_limit!r})")
         if not (0.0 <= self.low_signal_fraction < 1.0):
             raise ValueError(f"FilterSettings.low_signal_fraction must be in [0, 1) (got {self.low_signal_fraction!r})")
+        if self.adaptive_noise_window_samples < 3:
+            raise ValueError(f"FilterSettings.adaptive_noise_window_samples must be at least 3 "
+                             f"(got {self.adaptive_noise_window_samples!r})")
+        if not (1.0 <= self.adaptive_noise_max_scale < math.inf):
+            raise ValueError(f"FilterSettings.adaptive_noise_max_scale must be finite and >= 1 "
+                             f"(got {self.adaptive_noise_max_scale!r})")
+        if not (1.0 <= self.adaptive_noise_threshold <= self.adaptive_noise_max_scale ** 2):
+            raise ValueError(f"FilterSettings.adaptive_noise_threshold must lie between 1 and "
+                             f"adaptive_noise_max_scale^2 (got {self.adaptive_noise_threshold!r})")
         if not (0.0 <= self.calibration_margin < math.inf):
             raise ValueError(f"FilterSettings.calibration_margin must be finite and >= 0 "
                              f"(got {self.calibration_margin!r})")

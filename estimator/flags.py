@@ -21,6 +21,7 @@ class EstimateFlag(enum.IntFlag):
     BAD_INPUT = 1 << 10          # non-finite or missing values in the sample; not used
     COVARIANCE_FAULT = 1 << 11   # covariance lost symmetry or positive definiteness; filter reset
     NO_ESTIMATE = 1 << 12        # nothing to report yet (before acquisition)
+    NOISY = 1 << 13              # lock-in noise above its calibrated level: measurement noise inflated
 
 
 def describe(value: int) -> str:

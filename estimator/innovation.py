@@ -3,8 +3,9 @@
 All candidate filters run together: every array carries a leading candidate axis, so one pass over
 the block costs about as much numpy dispatch as one filter. The equations are the tracker's
 (fieldvane.estimator.tracker): same model, process noise, information-form gain, Joseph update,
-retraction and lost-track rules. Differences, for speed: rows with any non-finite value are
-skipped (the next prediction spans the gap), and no per-sample output is kept.
+retraction, adaptive noise level and lost-track rules. Differences, for speed: rows with any
+non-finite value are skipped (the next prediction spans the gap, the noise level's chain of
+successive differences restarts after it), and no per-sample output is kept.
 """
 
 from __future__ import annotations
@@ -16,6 +17,7 @@ import numpy as np
 
 from fieldvane.estimator.calibration import Calibration
 from fieldvane.estimator.filter_settings import FilterSettings
+from fieldvane.estimator.noise_level import NoiseLevelBatch, difference_normalizers
 from fieldvane.estimator.response import to_real
 from fieldvane.estimator.samples import SampleBlock
 from fieldvane.estimator.sphere import tangent_basis
@@ -80,7 +82,8 @@ def innovation_loglik(calibration: Calibration, block: SampleBlock, settings_lis
     """Return per-candidate innovation scores of `block` under each of `settings_list` (filters run together).
 
     loglik sums, over samples after acquisition, -0.5 (min(NIS, gate) + log det(2 pi S)) with S in
-    volts^2: a gated sample costs its gate, so a candidate cannot gain by rejecting data.
+    volts^2 (R inflated by the adaptive noise level where it is on): a gated sample costs its gate,
+    so a candidate cannot gain by rejecting data.
     """
     settings_list = list(settings_list)
     nc = len(settings_list)
@@ -123,8 +126,20 @@ def innovation_loglik(calibration: Calibration, block: SampleBlock, settings_lis
     log_det_r = 2.0 * (np.sum(np.log(model.sigma)) + n_meas * np.log(scale))   # log det R per candidate
     lo, hi = calibration.magnitude_range_nT
     median_bound = model.sphere_medians(math.sqrt(lo * hi))[0]                  # at noise scale 1
-    blind2 = np.array([min(s.blind_factor * s.measurement_noise_scale * median_bound,
-                           math.radians(s.blind_threshold_deg)) ** 2 for s in settings_list])
+    blind_rel2 = np.array([(s.blind_factor * s.measurement_noise_scale * median_bound) ** 2 for s in settings_list])
+    blind_abs2 = np.array([math.radians(s.blind_threshold_deg) ** 2 for s in settings_list])
+
+    # ---- adaptive noise level per candidate and probe (estimator/noise_level.py, as in the tracker)
+    adaptive = np.array([s.adaptive_noise for s in settings_list])
+    component_probe = np.repeat(model.channel_probe_index, 2)
+    probe_onehot = (component_probe[:, None] == np.arange(model.n_probes)[None, :]).astype(float)   # (2C, P)
+    probe_sizes = probe_onehot.sum(axis=0)
+    difference_norm = np.array(difference_normalizers(probe_sizes.astype(int)))
+    noise = NoiseLevelBatch(model.n_probes, [s.adaptive_noise_window_samples for s in settings_list],
+                            [s.adaptive_noise_threshold for s in settings_list],
+                            [s.adaptive_noise_max_scale ** 2 for s in settings_list])
+    y_hist = np.zeros((nc, 2, n_meas))          # innovations one and two samples back
+    y_back = np.zeros(nc, int)
 
     # ---- inputs, vectorized once
     s0 = settings_list[0]
@@ -136,8 +151,8 @@ def innovation_loglik(calibration: Calibration, block: SampleBlock, settings_lis
     zw = to_real(z) / model.sigma
     t_all = np.asarray(block.t, float)
     usable = np.isfinite(zw).all(axis=1) & np.isfinite(b) & np.isfinite(t_all)
-    segment, seg_t = model.segments(b)
-    segment, seg_t = segment.tolist(), seg_t.tolist()
+    segments = [model.segment_of(v) for v in b.tolist()]          # the tracker's scalar code path
+    segment, seg_t = [g[0] for g in segments], [g[1] for g in segments]
 
     # ---- state of every candidate
     # Candidates not yet acquired hold a harmless placeholder state; every update is masked.
@@ -177,7 +192,8 @@ def innovation_loglik(calibration: Calibration, block: SampleBlock, settings_lis
         keep = acquired[mask]
         reacq[mask] += keep
         p_new = init_var[mask][:, :, None] * np.eye(n)
-        p_new[:, D, D] = cov
+        # The initiator's covariance assumes the calibrated noise: widen it by the noise of the moment.
+        p_new[:, D, D] = cov * noise.ratios[mask].max(axis=1)[:, None, None]
         # Sensor drifts outlive a lost track: keep their estimates and variances.
         p_new[:, drift, drift] = np.where(keep[:, None, None], p[mask][:, drift, drift], p_new[:, drift, drift])
         x_new = np.where(keep[:, None], x[mask], 0.0)
@@ -190,13 +206,18 @@ def innovation_loglik(calibration: Calibration, block: SampleBlock, settings_lis
         lost[mask] = False
         gated_run[mask] = 0
         nis_avg[mask] = 1.0
+        y_back[mask] = 0
         return mask
 
     eye_n = np.eye(n)
     scale_col = scale[:, None]
     log_det_r_2pi = log_det_r + n_meas * _LOG_2PI
     gate = gates[:, n_meas]
+    previous_row = -2
     for i in np.flatnonzero(usable).tolist():
+        if i != previous_row + 1:
+            y_back[:] = 0                   # the tracker restarts its chain of differences at a skipped row
+        previous_row = i
         t = t_all[i]
         need = ~acquired | lost | (t - t_last > max_gap)       # comparisons with nan are False, silently
         if need.any():
@@ -234,11 +255,30 @@ def innovation_loglik(calibration: Calibration, block: SampleBlock, settings_lis
         if no > 2:
             ht[:, lay.drift] = drift_jacobian(h, lay, model.channel_probe_index)
         y = zw[i] / scale_col - h
+
+        # ---- noise values: per probe, the smaller squared difference to the innovations 1 and 2 back
+        d1 = ((y - y_hist[:, 0]) ** 2) @ probe_onehot
+        d2 = ((y - y_hist[:, 1]) ** 2) @ probe_onehot
+        values = np.minimum(d1, d2) * difference_norm
+        has_values = active & adaptive & (y_back == 2) & np.all(np.isfinite(values), axis=1)
+        y_hist[:, 1] = np.where(active[:, None], y_hist[:, 0], y_hist[:, 1])
+        y_hist[:, 0] = np.where(active[:, None], y, y_hist[:, 0])
+        y_back = np.where(active, np.minimum(y_back + 1, 2), 0)
+
+        # ---- noise inflated per probe: whitened rows and innovation divided by sqrt(factor)
+        ratios = noise.ratios
+        inflated = ratios[:, component_probe]                              # (Nc, 2C)
+        if np.any(inflated != 1.0):
+            root = np.sqrt(inflated)
+            ht = ht / root[:, None, :]
+            y = y / root
+        log_det_inflation = np.log(inflated).sum(axis=1)
         info = ht @ np.swapaxes(ht, 1, 2)
         j00, j01, j11 = info[:, 0, 0], info[:, 0, 1], info[:, 1, 1]
         det_j = j00 * j11 - j01 * j01
         with np.errstate(divide="ignore", invalid="ignore"):
-            blind = ~((j00 + j11) / det_j <= blind2) | (det_j <= 0)
+            bound2 = (j00 + j11) / det_j
+            blind = ~((bound2 <= blind_abs2) & (bound2 <= blind_rel2 * ratios.min(axis=1))) | (det_j <= 0)
         bvec = (ht @ y[:, :, None])[:, :, 0]
         a_mat = eye_o + p[:, obs, obs] @ info
         if no == 2:
@@ -258,10 +298,12 @@ def innovation_loglik(calibration: Calibration, block: SampleBlock, settings_lis
                 mt[k] = mt[k] @ weak_direction_filter(j00[k], j01[k], j11[k], lay, e1[k], e2[k])
             dx = (bvec[:, None, :] @ mt)[:, 0]
         clipped = np.minimum(nis, gate)
-        loglik += np.where(active, -0.5 * (clipped + log_det_r_2pi + logdet_a), 0.0)
+        loglik += np.where(active, -0.5 * (clipped + log_det_r_2pi + log_det_inflation + logdet_a), 0.0)
         n_scored += active
         nis_avg = np.where(active, nis_avg + alpha * (clipped / n_meas - nis_avg), nis_avg)
         ok = active & (nis <= gate)
+        # As in the tracker: a gated sample's noise value counts only after another gated sample.
+        noise.push(values, has_values & (ok | (gated_run > 0)))
 
         # ---- Joseph update of the candidates whose innovation passed the gate
         mj = np.swapaxes(mt, 1, 2) @ info

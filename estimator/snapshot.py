@@ -11,7 +11,6 @@ sphere (tangent step, exp_map retraction, step accepted only if the residual fal
 from __future__ import annotations
 
 from dataclasses import dataclass, field
-from functools import lru_cache
 
 import numpy as np
 from scipy.stats import chi2 as _chi2
@@ -19,10 +18,11 @@ from scipy.stats import chi2 as _chi2
 from fieldvane.estimator.estimate import Estimate
 from fieldvane.estimator.fisher import channel_selection, invert_2x2, probe_groups, sigma_deg_from_covariance
 from fieldvane.estimator.flags import EstimateFlag
-from fieldvane.estimator.harmonics import harmonics
+from fieldvane.estimator.harmonics import harmonics, monomial_coefficients
 from fieldvane.estimator.lookup_table import DEFAULT_GRID_POINTS, LookupTable, build_table, calibration_key
 from fieldvane.estimator.magnitude import fuse_magnitudes
-from fieldvane.estimator.sphere import angle_between, exp_map, fibonacci_sphere, tangent_basis
+from fieldvane.estimator.monomials import derivative_maps, monomials
+from fieldvane.estimator.sphere import angle_between, exp_map, tangent_basis
 
 F = EstimateFlag
 
@@ -118,7 +118,7 @@ class SnapshotSolver:
         probe_ids, member = probe_groups(self.channels)
         self.probes = tuple(int(p) for p in probe_ids)
         self.member = member                                        # (C, P)
-        self._exps, to_harm = monomial_map(model.degree)
+        self._exps, to_harm = monomial_coefficients(model.degree)
         # Whitened coefficients on monomials at each knot k: Z_c = sum_m mono_m(u) * coef[k, c, m]. The
         # partial derivatives of a polynomial are polynomials in the same monomials, so the rows for
         # Z, dZ/dx, dZ/dy, dZ/dz stack into one (K, 4C, M) table: one product gives value and gradient.
@@ -334,7 +334,7 @@ class SnapshotSolver:
         """
         n, m = coef.shape[0], u.shape[0]
         c = zw.shape[1]
-        mono = _monomials(u, self._exps).reshape(n, m // n, -1).transpose(0, 2, 1)   # (n, M, r)
+        mono = monomials(u, self._exps).reshape(n, m // n, -1).transpose(0, 2, 1)   # (n, M, r)
         out = (coef @ mono).transpose(0, 2, 1).reshape(m, 4, c, 2)         # [value, d/dx, d/dy, d/dz]
         out = out[..., 0] + 1j * out[..., 1]                                # (m, 4, C) complex
         e1, e2 = tangent_basis(u)
@@ -394,47 +394,6 @@ class SnapshotSolver:
         st["gains"] = np.where(ok[:, None], gains, st["gains"])
         st["step"] = np.where(ok[:, None], _clip(step, radius), 0.25 * st["step"])
         st["radius"] = radius
-
-
-@lru_cache(maxsize=16)
-def monomial_map(degree: int) -> tuple[np.ndarray, np.ndarray]:
-    """Return (exponents (M,3), T (M,(L+1)^2)) with harmonics(degree, u) = monomials(u) @ T on the unit sphere."""
-    exps = np.array([(a, b, l - a - b) for l in range(degree + 1) for a in range(l, -1, -1)
-                     for b in range(l - a, -1, -1)], dtype=np.int64)
-    grid = fibonacci_sphere(max(400, 8 * (degree + 1) ** 2))
-    y = harmonics(degree, grid)
-    mono = np.prod(grid[:, None, :] ** exps[None, :, :], axis=2)
-    total = exps.sum(axis=1)
-    t = np.zeros((len(exps), y.shape[1]))
-    for l in range(degree + 1):
-        # A degree-l harmonic is a homogeneous degree-l polynomial, unique on the sphere.
-        rows, cols = np.flatnonzero(total == l), np.arange(l * l, (l + 1) * (l + 1))
-        t[np.ix_(rows, cols)] = np.linalg.lstsq(mono[:, rows], y[:, cols], rcond=None)[0]
-    return exps, t
-
-
-def derivative_maps(exps: np.ndarray) -> list[np.ndarray]:
-    """Return (M, M) matrices D_x, D_y, D_z with d/dx_k sum_m a_m mono_m = sum_m (a @ D_k)_m mono_m."""
-    index = {tuple(e): i for i, e in enumerate(exps.tolist())}
-    maps = []
-    for k in range(3):
-        d = np.zeros((len(exps), len(exps)))
-        for i, e in enumerate(exps.tolist()):
-            if e[k] > 0:
-                lower = list(e)
-                lower[k] -= 1
-                d[i, index[tuple(lower)]] = e[k]
-        maps.append(d)
-    return maps
-
-
-def _monomials(u: np.ndarray, exps: np.ndarray) -> np.ndarray:
-    """Return every monomial x^a y^b z^c of exps (M,3) at points u (n,3): shape (n, M)."""
-    deg = int(exps.max()) if exps.size else 0
-    pw = np.ones(u.shape + (deg + 1,))
-    for e in range(1, deg + 1):
-        pw[..., e] = pw[..., e - 1] * u
-    return pw[:, 0, exps[:, 0]] * pw[:, 1, exps[:, 1]] * pw[:, 2, exps[:, 2]]
 
 
 def _clip(step: np.ndarray, radius: np.ndarray) -> np.ndarray:

@@ -17,6 +17,16 @@ The magnitude comes from both Larmor frequencies (fuse_magnitudes). Updates use 
 identity K = P H^T S^-1 = P_o (I + J P_oo)^-1 H^T R^-1 with J = H^T R^-1 H (the filter solves a
 system the size of the observed states, never inverts P), Joseph form, symmetrized every step; the
 normalized innovation squared (NIS) comes from the same pieces without forming S.
+
+Noise of the moment. With `adaptive_noise` (the default) each probe's R is the calibrated noise
+times a factor estimated from successive innovation differences (estimator/noise_level.py): a
+noise burst inflates R instead of failing every gate, while a wrong track (a large but steady
+innovation) or a single spike leaves the factor at 1, so both are still gated. A (re)acquisition
+widens the initiator's covariance by the same factor. The factor is published per sample as the
+extra `noise_scale` (std factor of the noisiest probe).
+
+Speed. Without drift states the covariance (5x5) is carried as 15 floats and every step is written
+out per block (estimator/tracker_algebra.py); with drift states the same equations run as matrices.
 """
 
 from __future__ import annotations
@@ -30,11 +40,13 @@ import numpy as np
 from filterpy.common import Q_continuous_white_noise
 from scipy.stats import chi2
 
+from fieldvane.estimator import tracker_algebra as algebra
 from fieldvane.estimator.calibration import Calibration
 from fieldvane.estimator.estimate import Estimate
 from fieldvane.estimator.filter_settings import FilterSettings
 from fieldvane.estimator.flags import EstimateFlag as F
 from fieldvane.estimator.magnitude import fuse_magnitudes, magnitudes_from_frequencies
+from fieldvane.estimator.noise_level import NoiseLevel, difference_normalizers
 from fieldvane.estimator.response import to_real
 from fieldvane.estimator.samples import Sample, SampleBlock
 from fieldvane.estimator.sphere import angle_between, tangent_basis
@@ -100,14 +112,18 @@ class TrackRecord:
     b_b_nT: np.ndarray
     bound_deg: np.ndarray
     channel_readouts: dict[str, np.ndarray] = field(default_factory=dict)
+    noise_scale: np.ndarray | None = None      # adaptive factor on the noise std (noisiest probe)
 
     def __len__(self) -> int:
         return int(self.t.shape[0])
 
     def estimates(self) -> list[Estimate]:
-        """Return the records as Estimate objects (extras: nis, nis_dof, b_a_nT, b_b_nT, bound_deg, readouts)."""
+        """Return the records as Estimate objects (extras: nis, nis_dof, b_a_nT, b_b_nT, bound_deg, noise_scale, ...)."""
         cols = {"nis": self.nis, "nis_dof": self.nis_dof, "b_a_nT": self.b_a_nT, "b_b_nT": self.b_b_nT,
-                "bound_deg": self.bound_deg, **self.channel_readouts}
+                "bound_deg": self.bound_deg}
+        if self.noise_scale is not None:
+            cols["noise_scale"] = self.noise_scale
+        cols.update(self.channel_readouts)
         names = list(cols)
         values = np.column_stack([cols[k] for k in names]).tolist()
         dof = self.nis_dof.tolist()
@@ -270,32 +286,63 @@ class Tracker:
         self.calibration = calibration
         self.initiator = initiator
         self.report_channels = report_channels
-        self.model = TrackerModel(calibration.model, s.measurement_noise_scale)
-        self.channels = self.model.channels
-        lay = self.layout = StateLayout(self.model.n_probes, self.model.n_channels, s.gain_drift, s.phase_drift)
-        self._gammas = calibration.gammas_hz_per_nt
+        model = self.model = TrackerModel(calibration.model, s.measurement_noise_scale)
+        self.channels = model.channels
+        lay = self.layout = StateLayout(model.n_probes, model.n_channels, s.gain_drift, s.phase_drift)
+        self._gammas = tuple(float(g) for g in calibration.gammas_hz_per_nt)
         lo, hi = calibration.magnitude_range_nT
-        median_bound, median_amp = self.model.sphere_medians(math.sqrt(lo * hi))
+        self._outside = (lo * (1 - s.calibration_margin), hi * (1 + s.calibration_margin))
+        median_bound, median_amp = model.sphere_medians(math.sqrt(lo * hi))
         self.median_bound_deg = math.degrees(median_bound)
-        blind = min(s.blind_factor * median_bound, math.radians(s.blind_threshold_deg))
-        self._blind_bound2 = blind * blind
+        self._blind_rel2 = (s.blind_factor * median_bound) ** 2
+        self._blind_abs2 = math.radians(s.blind_threshold_deg) ** 2
         self._low_amp = s.low_signal_fraction * median_amp
-        self._gates = gate_thresholds(s, self.model.n_meas).tolist()
+        self._gates = gate_thresholds(s, model.n_meas).tolist()
         self._nis_alpha = 1.0 / s.nis_average_samples
+        self._nis_limit, self._lost_after, self._max_gap = s.nis_average_limit, s.lost_after_gated, s.max_gap_s
         self._init_var = initial_covariance_diagonal(s, lay)
         self._n, self._no = lay.size, lay.observed.stop
         self._rate = lay.rate
+        # Without drift states the covariance lives in 15 floats (estimator/tracker_algebra.py).
+        self._plain = lay.size == 5
         self._eye = np.eye(self._n)
         self._select = np.eye(self._no, self._n)        # H = H_o @ select
-        self._rows = np.empty((5, self.model.n_meas))     # [h, dh/dx, dh/dy, dh/dz, y], whitened
         self._dt_cached = math.nan
         self._f, self._q = np.eye(self._n), np.zeros((self._n, self._n))
         self._cross = 0.0
+        self._q_plain = (0.0, 0.0, 0.0)
+        self._sigma = model.sigma
+        self._setup_noise_groups()
         self._channel_index: dict[tuple, np.ndarray] = {}
         self._source: Callable[[int], Sample] = lambda index: None
         self.counters = TrackerCounters()
         self.resets: deque[ResetRecord] = deque(maxlen=10000)
         self._reset_state()
+
+    def _setup_noise_groups(self) -> None:
+        """Group the real measurements by probe for the adaptive noise level (estimator/noise_level.py)."""
+        model, s = self.model, self.settings
+        m = model.n_meas
+        component_probe = np.repeat(model.channel_probe_index, 2)
+        self._groups = [np.flatnonzero(component_probe == p) for p in range(model.n_probes)]
+        self._component_probe = component_probe
+        self._difference_norm = difference_normalizers([g.size for g in self._groups])
+        # Rows [h, dh/dx, dh/dy, dh/dz, y, y one and two samples back], whitened; the per-probe Gram matrices
+        # of the last six rows give the information, the innovation terms and the successive differences.
+        self._rows = np.zeros((7, m))
+        sizes = {g.size for g in self._groups}
+        contiguous = all(np.array_equal(g, np.arange(g[0], g[0] + g.size)) for g in self._groups)
+        rows = self._rows
+        self._model_rows, self._h_row, self._y_row = rows[0:4].reshape(-1), rows[0], rows[4]
+        self._history_rows = (rows[5:7], rows[4:6])      # (destination, source) of the shift by one sample
+        if contiguous and len(sizes) == 1 and self._groups[0][0] == 0:
+            view = self._rows[1:7].reshape(6, model.n_probes, sizes.pop()).transpose(1, 0, 2)
+            self._gram_views = (view, view.transpose(0, 2, 1))
+            self._gram = np.empty((model.n_probes, 6, 6))
+        else:
+            self._gram_views = None
+        self._noise = (NoiseLevel(model.n_probes, s.adaptive_noise_window_samples, s.adaptive_noise_threshold,
+                                  s.adaptive_noise_max_scale ** 2) if s.adaptive_noise else None)
 
     # ----------------------------------------------------------------------------------------- state
     def _reset_state(self) -> None:
@@ -304,10 +351,16 @@ class Tracker:
         self._u = self._e1 = self._e2 = _NAN3
         self._x = np.zeros(self._n)
         self._p = np.diag(self._init_var)
+        self._w = (0.0, 0.0, 0.0)                       # plain path: angular velocity, rad/s
+        self._pp = algebra.from_matrix(self._p) if self._plain else ()
         self._t = math.nan
         self._seg_last = None
         self._gated_run = 0
         self._nis_avg = 1.0
+        self._y_back = 0                                # innovations of the samples just before, in rows[5:7]
+        self._pending_noise = None                      # this sample's noise values, pushed after the gate
+        self._ratios = [1.0] * self.model.n_probes      # noise variance factor per probe
+        self._calibrated_noise = True
 
     @property
     def direction(self) -> np.ndarray:
@@ -317,7 +370,14 @@ class Tracker:
     @property
     def covariance(self) -> np.ndarray:
         """Return a copy of the error-state covariance (see `layout` for the named slices)."""
-        return self._p.copy()
+        return algebra.to_matrix(self._pp) if self._plain else self._p.copy()
+
+    def _set_covariance(self, p: np.ndarray) -> None:
+        """Replace the error-state covariance (n, n) (for tests and tools that restore a saved state)."""
+        if self._plain:
+            self._pp = algebra.from_matrix(np.asarray(p, float))
+        else:
+            self._p = np.array(p, float)
 
     @property
     def tangent_basis(self) -> tuple[np.ndarray, np.ndarray]:
@@ -327,30 +387,44 @@ class Tracker:
     @property
     def rate_deg_s(self) -> np.ndarray:
         """Return the estimated angular velocity of the field direction (3,), sensor frame, deg/s."""
-        return np.degrees(self._x[self.layout.rate])
+        return np.degrees(np.array(self._w) if self._plain else self._x[self.layout.rate])
 
     @property
     def drifts(self) -> dict[str, np.ndarray]:
         """Return the estimated drifts: log-gain per probe and phase offset per channel (deg)."""
         return {"gain": self._x[self.layout.gain].copy(), "phase_deg": np.degrees(self._x[self.layout.phase])}
 
+    @property
+    def noise_scales(self) -> np.ndarray:
+        """Return the adaptive factor on each probe's calibrated noise std (dimensionless, 1 = calibrated)."""
+        return np.sqrt(self._ratios)
+
+    def _process_noise(self, dt: float) -> None:
+        """Refresh the cached process noise when dt changes beyond timestamp jitter (Q is linear in dt)."""
+        self._q, self._cross = process_noise_static(self.settings, self.layout, dt)
+        r0 = self._rate.start
+        self._q_plain = (float(self._q[0, 0]), self._cross, float(self._q[r0, r0]))
+        self._dt_cached = dt
+
     def _predict(self, dt: float) -> None:
         """Propagate P and the nominal state over dt: u and its basis turn about the angular velocity."""
         if not abs(dt - self._dt_cached) <= 1e-6 * dt:
-            # Timestamps jitter in the last bits: reuse Q while dt agrees to 1e-6 (Q is linear in dt).
-            self._q, self._cross = process_noise_static(self.settings, self.layout, dt)
-            self._dt_cached = dt
-        (ax, ay, az), (bx, by, bz) = self._e1, self._e2
-        r = self._rate
-        f, q, c = self._f, self._q, self._cross
-        # F = I + dt [0 B; 0 0] and Q[direction, rate] = c B with B = rate_coupling(e1, e2).
-        f[D, r] = ((dt * bx, dt * by, dt * bz), (-dt * ax, -dt * ay, -dt * az))
-        q[D, r] = ((c * bx, c * by, c * bz), (-c * ax, -c * ay, -c * az))
-        q[r, D] = ((c * bx, -c * ax), (c * by, -c * ay), (c * bz, -c * az))
-        p = f @ self._p @ f.T
-        p += q
-        self._p = p
-        wx, wy, wz = self._x[r].tolist()
+            self._process_noise(dt)
+        if self._plain:
+            self._pp = algebra.predict(self._pp, self._e1, self._e2, dt, *self._q_plain)
+            wx, wy, wz = self._w
+        else:
+            (ax, ay, az), (bx, by, bz) = self._e1, self._e2
+            r = self._rate
+            f, q, c = self._f, self._q, self._cross
+            # F = I + dt [0 B; 0 0] and Q[direction, rate] = c B with B = rate_coupling(e1, e2).
+            f[D, r] = ((dt * bx, dt * by, dt * bz), (-dt * ax, -dt * ay, -dt * az))
+            q[D, r] = ((c * bx, c * by, c * bz), (-c * ax, -c * ay, -c * az))
+            q[r, D] = ((c * bx, -c * ax), (c * by, -c * ay), (c * bz, -c * az))
+            p = f @ self._p @ f.T
+            p += q
+            self._p = p
+            wx, wy, wz = self._x[r].tolist()
         self._turn(wx * dt, wy * dt, wz * dt)
 
     def _turn(self, wx: float, wy: float, wz: float) -> None:
@@ -398,6 +472,7 @@ class Tracker:
 
     def _acquire(self, t: float, index: int, b: float, reason: str) -> bool:
         """Start or restart the track from the initiator at sample `index`; record the reset; return success."""
+        self._y_back = 0
         result = self.initiator(self._source(index), b) if math.isfinite(b) else None
         u = cov = None
         if result is not None:
@@ -412,13 +487,19 @@ class Tracker:
         u = u / norm
         jump = math.degrees(float(angle_between(np.array(self._u), u))) if self._acquired else math.nan
         e1, e2 = tangent_basis(u)
-        x, p = np.zeros(self._n), np.diag(self._init_var)
-        if self._acquired:
-            # Sensor drifts outlive a lost track: keep their estimates and variances.
-            drift = self.layout.drift
-            x[drift], p[drift, drift] = self._x[drift], self._p[drift, drift]
-        p[D, D] = 0.5 * (cov + cov.T)
-        self._x, self._p = x, p
+        # The initiator's covariance assumes the calibrated noise: widen it by the noise of the moment.
+        cov = 0.5 * (cov + cov.T) * max(self._ratios)
+        if self._plain:
+            self._pp = algebra.initial(cov, float(self._init_var[self._rate.start]))
+            self._w = (0.0, 0.0, 0.0)
+        else:
+            x, p = np.zeros(self._n), np.diag(self._init_var)
+            if self._acquired:
+                # Sensor drifts outlive a lost track: keep their estimates and variances.
+                drift = self.layout.drift
+                x[drift], p[drift, drift] = self._x[drift], self._p[drift, drift]
+            p[D, D] = cov
+            self._x, self._p = x, p
         self._u, self._e1, self._e2 = tuple(u.tolist()), tuple(e1.tolist()), tuple(e2.tolist())
         self._acquired, self._lost = True, None
         self._t = t
@@ -445,6 +526,7 @@ class Tracker:
         elif self._seg_last is not None:
             segment, seg_t = self._seg_last            # no magnitude this sample: keep the last one
         if not math.isfinite(t):
+            self._y_back = 0
             return flags | (_COASTING if self._acquired else _NONE), math.nan, 0, math.nan
         if not self._acquired or self._lost:
             if finite and self._acquire(t, index, b, self._lost or "start"):
@@ -455,8 +537,9 @@ class Tracker:
         if dt < 0:
             if not flags & _BAD:
                 c.bad_input += 1
+            self._y_back = 0
             return flags | _BAD | _COASTING, math.nan, 0, math.nan
-        if dt > self.settings.max_gap_s and not self._lost:
+        if dt > self._max_gap and not self._lost:
             c.gaps += 1
             self._lost = "gap"
             if finite and self._acquire(t, index, b, "gap"):
@@ -466,77 +549,72 @@ class Tracker:
             self._predict(dt)
         if self._lost or self._seg_last is None:
             c.coasted += 1
+            self._y_back = 0
             return flags | _COASTING, math.nan, 0, math.nan
 
-        # ---- whitened measurement model at the predicted state: J = H^T R^-1 H, bvec = H^T R^-1 y, y^T R^-1 y
-        no = self._no
-        if no == 2 and finite:
-            j00, j01, j11, b0, b1, yy = self._information(zw, segment, seg_t)
-            info = np.array(((j00, j01), (j01, j11)))
-            bvec = np.array((b0, b1))
-            dof = self.model.n_meas
+        # ---- whitened measurement at the predicted state, noise inflated per probe:
+        # J = H^T R^-1 H, bvec = H^T R^-1 y, y^T R^-1 y
+        self._pending_noise = None
+        if self._plain:
+            meas = self._measure_direction(zw, finite, segment, seg_t)
         else:
-            rows = self.model.evaluate_in_segment(self._u, segment, seg_t)
-            if no > 2:
-                h, ht = self._drift_measurement(rows)
-            else:
-                h = rows[0]
-                ht = np.array((self._e1, self._e2)) @ rows[1:]     # (2, 2C): tangent Jacobian, transposed
-            y = zw - h
-            if finite:
-                dof = self.model.n_meas
-            else:
-                good = np.isfinite(zw)
-                dof = int(good.sum())
-                if dof == 0:
-                    c.coasted += 1
-                    return flags | _COASTING, math.nan, 0, math.nan
-                y = np.where(good, y, 0.0)
-                ht = ht * good
-            info = ht @ ht.T
-            bvec = ht @ y
-            yy = float(y @ y)
+            meas = self._measure_with_drifts(zw, finite, segment, seg_t)
+        if meas is None:
+            c.coasted += 1
+            return flags | _COASTING, math.nan, 0, math.nan
+        info, bvec, yy, dof = meas
+        if self._plain:
+            j00, j01, j11 = info
+        else:
             j00, j01, j11 = info.item(0, 0), info.item(0, 1), info.item(1, 1)
         det_j = j00 * j11 - j01 * j01
         bound2 = (j00 + j11) / det_j if det_j > 0 else math.inf
-        blind = bound2 > self._blind_bound2
+        # BLIND compares the bound with its sphere median at the cleanest probe's noise of the moment: a
+        # uniform noise rise does not make the geometry blind, one noisy probe may.
+        blind = bound2 > self._blind_abs2 or bound2 > self._blind_rel2 * min(self._ratios)
         if blind:
             flags |= _BLIND
 
         # ---- gain by the information identity: M = P_o (I + J P_oo)^-1 = solve(I + P_oo J, P_o^T)^T
-        p = self._p
-        if no == 2:
-            # Closed-form 2x2 solve (Cramer) of (I + P_oo J) M^T = P_o^T.
-            (p00, p01), (_, p11) = p[D, D].tolist()
-            a00, a01 = 1.0 + p00 * j00 + p01 * j01, p00 * j01 + p01 * j11
-            a10, a11 = p01 * j00 + p11 * j01, 1.0 + p01 * j01 + p11 * j11
-            det = a00 * a11 - a01 * a10
-            if not (det > 0.0 and math.isfinite(det)):   # det(I + P J) >= 1 for P, J positive semi-definite
+        if self._plain:
+            rows = algebra.gain(self._pp, j00, j01, j11)
+            if rows is None:
                 return self._fault(t, index, b, flags, dof, bound2)
-            mt = np.array(((a11 / det, -a01 / det), (-a10 / det, a00 / det))) @ p[D]
+            m0, m1 = rows
+            b0, b1 = bvec
+            dx0, dx1 = b0 * m0[0] + b1 * m1[0], b0 * m0[1] + b1 * m1[1]
+            nis = yy - (b0 * dx0 + b1 * dx1)
+            if blind:
+                # Near a blind fold the measurement is quadratic across it and its linearization can pull
+                # the state onto the mirror branch: correct only along the well-observed tangent direction
+                # and let the weak one coast (K' = T K; the Joseph form keeps P right for this gain, and
+                # the NIS above keeps the full innovation covariance).
+                m0, m1 = algebra.drop_weak_direction(m0, m1, j00, j01, j11, self._e1, self._e2)
         else:
+            p = self._p
             o = self.layout.observed
             try:
                 mt = np.linalg.solve(self._eye[o, o] + p[o, o] @ info, p[o])
             except np.linalg.LinAlgError:
                 return self._fault(t, index, b, flags, dof, bound2)
-        dx = bvec @ mt
-        nis = yy - float(bvec @ dx[:no])        # the observed states lead: dx[:no] = dx[layout.observed]
-        if blind:
-            # Near a blind fold the measurement is quadratic across it and its linearization can pull
-            # the state onto the mirror branch: correct only along the well-observed tangent direction
-            # and let the weak one coast (K' = T K; the Joseph form keeps P right for this gain, and
-            # the NIS above keeps the full innovation covariance).
-            mt = mt @ weak_direction_filter(j00, j01, j11, self.layout, self._e1, self._e2)
             dx = bvec @ mt
+            nis = yy - float(bvec @ dx[:self._no])   # the observed states lead: dx[:no] = dx[layout.observed]
+            if blind:
+                mt = mt @ weak_direction_filter(j00, j01, j11, self.layout, self._e1, self._e2)
+                dx = bvec @ mt
         gate = self._gates[dof]
         self._nis_avg += self._nis_alpha * (min(nis, gate) / dof - self._nis_avg)
-        if not nis <= gate:
+        gated = not nis <= gate
+        if self._pending_noise is not None and (self._gated_run or not gated):
+            # A gated sample counts toward the noise level only after another gated one: a lone spike
+            # never moves it, a noise rise (every sample gated until the level follows) does.
+            self._push_noise(self._pending_noise)
+        if gated:
             c.gated += 1
             c.coasted += 1
             self._gated_run += 1
             flags |= _GATED | _COASTING
-            if self._gated_run >= self.settings.lost_after_gated:
+            if self._gated_run >= self._lost_after:
                 c.lost_gated += 1
                 self._lost = "gated"
                 if self._acquire(t, index, b, "gated"):
@@ -545,49 +623,149 @@ class Tracker:
         self._gated_run = 0
 
         # ---- Joseph form: P+ = (I - KH) P (I - KH)^T + K R K^T with KH = M J select, K R K^T = M J M^T
-        mj = mt.T @ info
-        t_mat = self._eye - mj @ self._select
-        p = t_mat @ p @ t_mat.T + mj @ mt
-        p += p.T
-        p *= 0.5
-        if not covariance_ok(p):
-            return self._fault(t, index, b, flags, dof, bound2)
-        x = self._x
-        x += dx
-        d1, d2 = x[D].tolist()
-        x[D] = 0.0
+        if self._plain:
+            pp = algebra.joseph(self._pp, m0, m1, j00, j01, j11)
+            if not algebra.positive_definite(pp):
+                return self._fault(t, index, b, flags, dof, bound2)
+            w0, w1 = bvec
+            d1, d2 = w0 * m0[0] + w1 * m1[0], w0 * m0[1] + w1 * m1[1]
+            wx, wy, wz = self._w
+            self._w = (wx + w0 * m0[2] + w1 * m1[2], wy + w0 * m0[3] + w1 * m1[3], wz + w0 * m0[4] + w1 * m1[4])
+        else:
+            mj = mt.T @ info
+            t_mat = self._eye - mj @ self._select
+            p = t_mat @ p @ t_mat.T + mj @ mt
+            p += p.T
+            p *= 0.5
+            if not covariance_ok(p):
+                return self._fault(t, index, b, flags, dof, bound2)
+            x = self._x
+            x += dx
+            d1, d2 = x[D].tolist()
+            x[D] = 0.0
         th = self._move(d1, d2)
         if th > MIN_CHART_STEP_RAD:
             # Chart change: the error component perpendicular to the step shrinks by sin(th)/th.
             nx, ny = -d2 / th, d1 / th
             k = 1.0 - math.sin(th) / th
-            g = np.array(((1 - k * nx * nx, -k * nx * ny), (-k * nx * ny, 1 - k * ny * ny)))
-            p[D, :] = g @ p[D, :]
-            p[:, D] = p[:, D] @ g.T
-        self._p = p
+            if self._plain:
+                pp = algebra.chart_change(pp, 1 - k * nx * nx, -k * nx * ny, 1 - k * ny * ny)
+            else:
+                g = np.array(((1 - k * nx * nx, -k * nx * ny), (-k * nx * ny, 1 - k * ny * ny)))
+                p[D, :] = g @ p[D, :]
+                p[:, D] = p[:, D] @ g.T
+        if self._plain:
+            self._pp = pp
+        else:
+            self._p = p
         c.fused += 1
         flags |= _TRACKING
-        if self._nis_avg > self.settings.nis_average_limit:
+        if self._nis_avg > self._nis_limit:
             c.lost_nis += 1
             self._lost = "nis"
         return flags, nis, dof, bound2
 
-    def _information(self, zw: np.ndarray, segment: int, seg_t: float) -> tuple[float, ...]:
-        """Return (J00, J01, J11, b0, b1, y^T y) of the whitened model at u, without drifts (the fast path).
+    def _noise_values(self, grams, i: int) -> list[float] | None:
+        """Return each probe's noise value (lambda estimate), or None when one is not finite.
 
-        One 4x4 Gram matrix of [dh/dx; dh/dy; dh/dz; y] gives them all: J = E G G^T E^T, b = E G y with
-        E = [e1; e2]. Rows are projected after the product, so nothing of size 2C is formed twice.
+        grams: per probe, a Gram matrix (nested lists) whose rows/columns i, i+1, i+2 are y, y_1, y_2.
+        """
+        j, k = i + 1, i + 2
+        values = [min(g[i][i] - 2.0 * g[i][j] + g[j][j], g[i][i] - 2.0 * g[i][k] + g[k][k]) * norm
+                  for g, norm in zip(grams, self._difference_norm)]
+        return values if all(v < math.inf for v in values) else None        # also None for nan
+
+    def _push_noise(self, values: list[float]) -> None:
+        """Add one noise value per probe to the running level and refresh the factors on R."""
+        self._ratios = self._noise.push(values)
+        self._calibrated_noise = all(r == 1.0 for r in self._ratios)
+
+    def _measure_direction(self, zw: np.ndarray, finite: bool, segment: int, seg_t: float):
+        """Return (J (3 floats), b (2 floats), y^T R^-1 y, dof) of the plain state at u, or None without data.
+
+        One Gram matrix per probe of [dh/dx; dh/dy; dh/dz; y; y_1; y_2] gives them all: J = E G E^T
+        and b = E G y with E = [e1; e2], summed over probes weighted by the noise factors, plus the
+        differences |y - y_1|^2, |y - y_2|^2 to the innovations one and two samples back (noise level).
         """
         buf = self._rows
-        self.model.evaluate_in_segment(self._u, segment, seg_t, out=buf[0:4])
-        np.subtract(zw, buf[0], out=buf[4])
-        (gxx, gxy, gxz, gxr), (_, gyy, gyz, gyr), (_, _, gzz, gzr), (_, _, _, yy) = (buf[1:] @ buf[1:].T).tolist()
-        (ax, ay, az), (bx, by, bz) = self._e1, self._e2
-        ga = (gxx * ax + gxy * ay + gxz * az, gxy * ax + gyy * ay + gyz * az, gxz * ax + gyz * ay + gzz * az)
-        gb = (gxx * bx + gxy * by + gxz * bz, gxy * bx + gyy * by + gyz * bz, gxz * bx + gyz * by + gzz * bz)
-        return (ga[0] * ax + ga[1] * ay + ga[2] * az, ga[0] * bx + ga[1] * by + ga[2] * bz,
-                gb[0] * bx + gb[1] * by + gb[2] * bz, gxr * ax + gyr * ay + gzr * az,
-                gxr * bx + gyr * by + gzr * bz, yy)
+        self.model.evaluate_in_segment(self._u, segment, seg_t, out=self._model_rows)
+        if finite:
+            np.subtract(zw, self._h_row, out=self._y_row)
+            if self._gram_views is not None:
+                grams = np.matmul(*self._gram_views, out=self._gram).tolist()
+            else:
+                grams = [(buf[1:7, g] @ buf[1:7, g].T).tolist() for g in self._groups]
+            if self._noise is not None:
+                if self._y_back == 2:
+                    self._pending_noise = self._noise_values(grams, 3)
+                else:
+                    self._y_back += 1
+                np.copyto(*self._history_rows)
+            if self._calibrated_noise and len(grams) == 1:
+                (gxx, gxy, gxz, gxr, *_), (_, gyy, gyz, gyr, *_), (_, _, gzz, gzr, *_), (*_, yy, _, _) = grams[0][:4]
+            else:
+                gxx = gxy = gxz = gxr = gyy = gyz = gyr = gzz = gzr = yy = 0.0
+                for g, ratio in zip(grams, self._ratios):
+                    w = 1.0 / ratio
+                    (axx, axy, axz, axr, *_), (_, ayy, ayz, ayr, *_), (_, _, azz, azr, *_), (*_, arr, _, _) = g[:4]
+                    gxx += w * axx
+                    gxy += w * axy
+                    gxz += w * axz
+                    gxr += w * axr
+                    gyy += w * ayy
+                    gyz += w * ayz
+                    gyr += w * ayr
+                    gzz += w * azz
+                    gzr += w * azr
+                    yy += w * arr
+            (ax, ay, az), (bx, by, bz) = self._e1, self._e2
+            ga = (gxx * ax + gxy * ay + gxz * az, gxy * ax + gyy * ay + gyz * az, gxz * ax + gyz * ay + gzz * az)
+            gb = (gxx * bx + gxy * by + gxz * bz, gxy * bx + gyy * by + gyz * bz, gxz * bx + gyz * by + gzz * bz)
+            return ((ga[0] * ax + ga[1] * ay + ga[2] * az, ga[0] * bx + ga[1] * by + ga[2] * bz,
+                     gb[0] * bx + gb[1] * by + gb[2] * bz),
+                    (gxr * ax + gyr * ay + gzr * az, gxr * bx + gyr * by + gzr * bz), yy, self.model.n_meas)
+        # Some channels missing: use the others (no successive difference across this sample).
+        self._y_back = 0
+        good = np.isfinite(zw)
+        dof = int(good.sum())
+        if dof == 0:
+            return None
+        y = np.where(good, zw - buf[0], 0.0)
+        ht = (np.array((self._e1, self._e2)) @ buf[1:4]) * good      # (2, 2C): tangent Jacobian, transposed
+        weighted = ht if self._calibrated_noise else ht / np.asarray(self._ratios)[self._component_probe]
+        info = weighted @ ht.T
+        bvec = weighted @ y
+        yy = float(y @ y) if self._calibrated_noise else float(
+            y @ (y / np.asarray(self._ratios)[self._component_probe]))
+        return (info.item(0, 0), info.item(0, 1), info.item(1, 1)), tuple(bvec.tolist()), yy, dof
+
+    def _measure_with_drifts(self, zw: np.ndarray, finite: bool, segment: int, seg_t: float):
+        """Return (J (no, no), b (no,), y^T R^-1 y, dof) with the drift states, or None without data."""
+        rows = self.model.evaluate_in_segment(self._u, segment, seg_t)
+        h, ht = self._drift_measurement(rows)
+        y = zw - h
+        if finite:
+            dof = self.model.n_meas
+            if self._noise is not None:
+                buf = self._rows
+                buf[4] = y
+                if self._y_back == 2:
+                    self._pending_noise = self._noise_values(
+                        [(buf[4:7, g] @ buf[4:7, g].T).tolist() for g in self._groups], 0)
+                else:
+                    self._y_back += 1
+                buf[5:7] = buf[4:6]
+        else:
+            self._y_back = 0
+            good = np.isfinite(zw)
+            dof = int(good.sum())
+            if dof == 0:
+                return None
+            y = np.where(good, y, 0.0)
+            ht = ht * good
+        weight = None if self._calibrated_noise else 1.0 / np.asarray(self._ratios)[self._component_probe]
+        weighted = ht if weight is None else ht * weight
+        return weighted @ ht.T, weighted @ y, float(y @ y) if weight is None else float(y @ (weight * y)), dof
 
     def _drift_measurement(self, rows: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
         """Apply gain/phase drifts to h and its gradient; return (h (2C), H_o^T (n_observed, 2C)), whitened."""
@@ -625,10 +803,17 @@ class Tracker:
             self._channel_index[channels] = np.array([channels.index(c) for c in self.channels])
         return self._channel_index[channels]
 
+    def _segment(self, b: float) -> tuple[int, float]:
+        """Return the model's magnitude segment and position for |B| = b nT (one scalar code path for step and run)."""
+        return self.model.segment_of(b)
+
     def prepare(self, t, f_hz, z, channels) -> PreparedInput:
         """Return samples checked and converted for the filter: t (N,) s, f (N, 2) Hz, z (N, C') complex."""
-        cols = self._columns(tuple(channels))
+        channels = tuple(channels)
+        cols = self._columns(channels)
         z = np.atleast_2d(np.asarray(z, complex))
+        if z.shape[1] != len(channels):
+            raise ValueError(f"samples have {z.shape[1]} lock-in values for {len(channels)} channel names")
         if cols is not None:
             z = z[:, cols]
         zr = to_real(z)
@@ -639,37 +824,90 @@ class Tracker:
         good = np.isfinite(zr)
         rms = np.sqrt(np.where(good, zr * zr, 0.0).sum(axis=1) * 2 / np.maximum(good.sum(axis=1), 1))
         flags = flags | np.where(rms < self._low_amp, _LOW, 0)
-        segment, seg_t = self.model.segments(b)
-        return PreparedInput(np.atleast_1d(np.asarray(t, float)).tolist(), zr / self.model.sigma,
-                             finite.tolist(), b, per, flags.tolist(), segment.tolist(), seg_t.tolist(), z)
+        segments = [self._segment(v) for v in b.tolist()]
+        return PreparedInput(np.atleast_1d(np.asarray(t, float)).tolist(), zr / self._sigma, finite.tolist(), b,
+                             per, flags.tolist(), [g[0] for g in segments], [g[1] for g in segments], z)
+
+    def _prepare_sample(self, sample: Sample) -> tuple:
+        """Return (zw, finite, |B| nT, |B| per isotope (2 floats) nT, input flags, segment, position) of one sample.
+
+        The same checks and numbers as prepare() (its scalar twin for step(), without array set-up).
+        """
+        channels = sample.channels if type(sample.channels) is tuple else tuple(sample.channels)
+        cols = self._columns(channels)
+        z = np.asarray(sample.z, complex)
+        if z.shape != (len(channels),):
+            raise ValueError(f"sample has lock-in values of shape {z.shape} for {len(channels)} channels")
+        if cols is not None:
+            z = z[cols]
+        zr = z.view(np.float64) if z.flags.c_contiguous else to_real(z)
+        zw = zr / self._sigma
+        energy = float(zr @ zr)
+        finite = energy < math.inf                         # false for nan or inf anywhere (or overflow)
+        if finite:
+            rms = math.sqrt(energy * 2 / zr.size)
+        else:
+            good = np.isfinite(zr)
+            finite = bool(good.all())
+            rms = math.sqrt(float(np.where(good, zr * zr, 0.0).sum()) * 2 / max(int(good.sum()), 1))
+        b, b_a, b_b, flags = self._magnitude(float(sample.f_a), float(sample.f_b))
+        if rms < self._low_amp:
+            flags |= _LOW
+        segment, seg_t = self._segment(b)
+        return zw, finite, b, (b_a, b_b), flags, segment, seg_t
+
+    def _magnitude(self, f_a: float, f_b: float) -> tuple[float, float, float, int]:
+        """Return (|B|, |B| seen by isotope a, by isotope b, flags) in nT: sample_magnitudes for one sample."""
+        ga, gb = self._gammas
+        b_a, b_b = f_a / ga, f_b / gb
+        ok_a, ok_b = 0.0 < b_a < math.inf, 0.0 < b_b < math.inf
+        if ok_a and ok_b:
+            b = (b_a + b_b) / 2
+            flags = _DISAGREE if abs(b_a - b_b) / max(b, 1e-30) > self.settings.magnitude_tolerance else 0
+        else:
+            b = b_a if ok_a else b_b if ok_b else math.nan
+            flags = _BAD
+        lo, hi = self._outside
+        if (ok_a or ok_b) and (b < lo or b > hi):
+            flags |= _OUTSIDE
+        return b, b_a, b_b, flags
 
     def step(self, sample: Sample) -> Estimate:
         """Return the estimate after one sample (u sensor frame, |B| nT, sigma deg, flags, extras)."""
-        inp = self.prepare([sample.t], [[sample.f_a, sample.f_b]], [sample.z], sample.channels)
-        t = inp.t[0]
+        zw, finite, b, (b_a, b_b), flags, segment, seg_t = self._prepare_sample(sample)
+        t = float(sample.t)
         self._source = lambda index: sample
-        flags, nis, dof, bound2 = self._advance(t, inp.zw[0], inp.finite[0], float(inp.b_nT[0]), inp.flags[0],
-                                                inp.segment[0], inp.seg_t[0], 0)
-        extras = {"nis": nis, "nis_dof": dof, "b_a_nT": float(inp.per_isotope_nT[0, 0]),
-                  "b_b_nT": float(inp.per_isotope_nT[0, 1]),
+        flags, nis, dof, bound2 = self._advance(t, zw, finite, b, flags, segment, seg_t, 0)
+        extras = {"nis": nis, "nis_dof": dof, "b_a_nT": b_a, "b_b_nT": b_b,
                   "bound_deg": math.degrees(math.sqrt(bound2)) if bound2 == bound2 else math.nan}
+        u, sigma, noise_scale = self._output(flags)
+        extras["noise_scale"] = noise_scale
+        if noise_scale > 1.0:
+            flags |= F.NOISY
         if self.report_channels:
-            extras.update({k: float(v[0]) for k, v in channel_readouts(inp.z, self.channels).items()})
-        u, sigma = self._output(flags)
-        return Estimate(t, np.array(u), float(inp.b_nT[0]), sigma, flags, extras)
+            z = np.asarray(sample.z, complex)[None]
+            cols = self._columns(tuple(sample.channels))
+            extras.update({k: float(v[0]) for k, v in
+                           channel_readouts(z if cols is None else z[:, cols], self.channels).items()})
+        return Estimate(t, np.array(u), b, sigma, flags, extras)
 
-    def _output(self, flags: int) -> tuple[tuple, float]:
+    def _output(self, flags: int) -> tuple[tuple, float, float]:
+        """Return (u, sigma deg, largest noise std factor) to publish."""
+        noise_scale = math.sqrt(max(self._ratios))
         if flags & _NONE:
-            return _NAN3, math.nan
+            return _NAN3, math.nan, noise_scale
+        if self._plain:
+            pp = self._pp
+            return self._u, math.degrees(math.sqrt(pp[0] + pp[2])), noise_scale     # trace of P[D, D]
         p = self._p
-        return self._u, math.degrees(math.sqrt(p.item(0, 0) + p.item(1, 1)))   # trace of p[D, D]
+        return self._u, math.degrees(math.sqrt(p.item(0, 0) + p.item(1, 1))), noise_scale
 
     def run_arrays(self, block: SampleBlock, chunk: int = 4096) -> TrackRecord:
         """Return the estimates of a whole block as arrays (the fast replay path; memory bounded per chunk)."""
         n = len(block)
         u_out, sigma_out, nis_out, bound_out = np.empty((n, 3)), np.empty(n), np.empty(n), np.empty(n)
         flags_out, dof_out = np.empty(n, np.int64), np.empty(n, np.int64)
-        b_out, per_out = np.empty(n), np.empty((n, 2))
+        b_out, per_out, noise_out = np.empty(n), np.empty((n, 2)), np.empty(n)
         advance, output = self._advance, self._output
         self._source = block.sample
         for start in range(0, n, chunk):
@@ -681,9 +919,11 @@ class Tracker:
                     zip(inp.t, inp.zw, inp.finite, inp.b_nT.tolist(), inp.flags, inp.segment, inp.seg_t), start):
                 flags, nis, dof, bound2 = advance(t, zw, finite, b, fl, seg, seg_t, i)
                 append((flags, nis, dof, bound2) + output(flags))
-            flags_c, nis_c, dof_c, bound_c, u_c, sigma_c = zip(*rows)
+            flags_c, nis_c, dof_c, bound_c, u_c, sigma_c, noise_c = zip(*rows)
             flags_out[start:stop], nis_out[start:stop], dof_out[start:stop] = flags_c, nis_c, dof_c
             bound_out[start:stop], u_out[start:stop], sigma_out[start:stop] = bound_c, u_c, sigma_c
+            noise_out[start:stop] = noise_c
+            flags_out[start:stop] |= np.where(np.asarray(noise_c) > 1.0, int(F.NOISY), 0)
             b_out[start:stop], per_out[start:stop] = inp.b_nT, inp.per_isotope_nT
         if self.report_channels:
             cols = self._columns(tuple(block.channels))
@@ -693,7 +933,7 @@ class Tracker:
         with np.errstate(invalid="ignore"):
             bound_deg = np.degrees(np.sqrt(bound_out))
         return TrackRecord(np.asarray(block.t, float).copy(), u_out, b_out, sigma_out, flags_out, nis_out,
-                           dof_out, per_out[:, 0].copy(), per_out[:, 1].copy(), bound_deg, readouts)
+                           dof_out, per_out[:, 0].copy(), per_out[:, 1].copy(), bound_deg, readouts, noise_out)
 
     def run(self, block: SampleBlock) -> list[Estimate]:
         """Return one Estimate per sample of the block (see run_arrays for the array form)."""

@@ -13,42 +13,21 @@ lower degree, so the same monomial vector serves the gradient.
 
 from __future__ import annotations
 
+import bisect
+import math
 from dataclasses import dataclass
 from functools import cached_property
 
 import numpy as np
 
-from fieldvane.estimator.harmonics import harmonics, n_harmonics
+from fieldvane.estimator.harmonics import monomial_coefficients
+from fieldvane.estimator.monomials import derivative_maps, monomials, power_index
 from fieldvane.estimator.response import ResponseModel
 from fieldvane.estimator.samples import channel_probe
 from fieldvane.estimator.sphere import fibonacci_sphere, tangent_basis
 
 N_ROWS = 4  # value, d/dx, d/dy, d/dz
 DIRECTION = slice(0, 2)   # the direction error always leads the error state (see StateLayout)
-
-
-def monomial_exponents(degree: int) -> np.ndarray:
-    """Return exponents (M, 3) of all monomials x^a y^b z^c of total degree <= degree, by degree."""
-    return np.array([(a, b, l - a - b) for l in range(degree + 1) for a in range(l, -1, -1)
-                     for b in range(l - a, -1, -1)], dtype=np.int64)
-
-
-def harmonic_polynomials(degree: int) -> tuple[np.ndarray, np.ndarray]:
-    """Return (exponents (M, 3), coefficients (M, (L+1)^2)) with harmonics(u) = monomials(u) @ coefficients."""
-    exps = monomial_exponents(degree)
-    grid = fibonacci_sphere(max(400, 8 * n_harmonics(degree)))
-    ref = harmonics(degree, grid)
-    mono = np.prod(grid[:, None, :] ** exps[None, :, :], axis=2)
-    total = exps.sum(axis=1)
-    coef = np.zeros((exps.shape[0], n_harmonics(degree)))
-    col = 0
-    # A homogeneous polynomial is fixed by its values on the sphere, so each degree's fit is exact.
-    for l in range(degree + 1):
-        rows = np.flatnonzero(total == l)
-        sol, *_ = np.linalg.lstsq(mono[:, rows], ref[:, col:col + 2 * l + 1], rcond=None)
-        coef[np.ix_(rows, np.arange(col, col + 2 * l + 1))] = sol
-        col += 2 * l + 1
-    return exps, coef
 
 
 def _segment_polynomials(basis) -> tuple[np.ndarray, np.ndarray]:
@@ -80,24 +59,17 @@ class TrackerModel:
         self.n_meas = 2 * self.n_channels
         self.sigma = noise_scale * model.measurement_noise()   # (2C,) V
         degree = model.degree
-        exps, mono_coef = harmonic_polynomials(degree)
+        exps, mono_coef = monomial_coefficients(degree)
         self.degree = degree
-        # Complex monomial coefficients per knot and row: (K, M, 4, C).
+        # Complex monomial coefficients per knot, row (value, d/dx, d/dy, d/dz) and channel: (K, M, 4, C).
         a = np.einsum("mj,ckj->kmc", mono_coef, model.coef)
-        index = {tuple(e): i for i, e in enumerate(exps)}
-        table = np.zeros(a.shape[:2] + (N_ROWS,) + a.shape[2:], complex)
-        table[:, :, 0, :] = a
-        for m, e in enumerate(exps):
-            for axis in range(3):
-                if e[axis] > 0:
-                    lower = e.copy()
-                    lower[axis] -= 1
-                    table[:, index[tuple(lower)], 1 + axis, :] += e[axis] * a[:, m, :]
+        table = np.stack([a] + [np.einsum("kmc,mj->kjc", a, d) for d in derivative_maps(exps)], axis=2)
         real = np.empty(table.shape[:-1] + (self.n_meas,))
         real[..., 0::2] = table.real
         real[..., 1::2] = table.imag
         real /= self.sigma
         self._starts, seg = _segment_polynomials(model.basis)
+        self._starts_list = self._starts.tolist()
         self._range_nT = model.basis.range_nT
         # One knot: the model does not depend on |B|, so only the constant term is kept.
         self._powers = 1 if model.basis.size == 1 else 4
@@ -105,7 +77,7 @@ class TrackerModel:
         # W[s]: rows (power p, monomial m), columns (row r, measurement k)
         self._w = np.ascontiguousarray(w.reshape(w.shape[0], self._powers * w.shape[2], -1))
         self._exps = exps
-        self._flat_index = (exps + np.arange(3)[None, :] * (degree + 1)).T.copy()  # (3, M)
+        self._flat_index = power_index(exps, degree)  # (3, M)
         self._out_shape = (N_ROWS, self.n_meas)
         probes = sorted({channel_probe(c) for c in self.channels})
         self.n_probes = len(probes)
@@ -119,6 +91,14 @@ class TrackerModel:
         s = np.clip(np.searchsorted(self._starts, x, side="right") - 1, 0, self._starts.size - 1)
         return s, x - self._starts[s]
 
+    def segment_of(self, b_nT: float) -> tuple[int, float]:
+        """Return (segment index, t = log|B| - segment start) for one magnitude b_nT (nT), clamped like segments()."""
+        lo, hi = self._range_nT
+        b = lo if b_nT != b_nT else min(max(b_nT, lo), hi)
+        x = math.log(b)
+        s = min(max(bisect.bisect_right(self._starts_list, x) - 1, 0), len(self._starts_list) - 1)
+        return s, x - self._starts_list[s]
+
     def evaluate(self, u, b_nT: float) -> np.ndarray:
         """Return whitened rows (4, 2C): h(u, |B|) / sigma and its ambient gradient d/d(x, y, z), sensor frame."""
         s, t = self.segments(b_nT)
@@ -127,7 +107,7 @@ class TrackerModel:
     def evaluate_in_segment(self, u, segment: int, t: float, out: np.ndarray | None = None) -> np.ndarray:
         """Return whitened rows (4, 2C) at unit u (3 floats) in a magnitude segment from `segments`.
 
-        With `out` (a C-contiguous (4, 2C) array) the rows are written there and it is returned.
+        With `out` (a C-contiguous (4, 2C) array, or a flat (8C,) one) the rows are written there and it is returned.
         """
         x, y, z = u
         d = self.degree
@@ -142,7 +122,7 @@ class TrackerModel:
             mono = np.multiply.outer(np.array((1.0, t, t * t, t * t * t)), mono).ravel()
         if out is None:
             return (mono @ self._w[segment]).reshape(self._out_shape)
-        np.matmul(mono, self._w[segment], out=out.reshape(-1))
+        np.matmul(mono, self._w[segment], out=out if out.ndim == 1 else out.reshape(-1))
         return out
 
     def evaluate_many(self, u: np.ndarray, b_nT: float) -> np.ndarray:
@@ -153,10 +133,7 @@ class TrackerModel:
     def evaluate_many_in_segment(self, u: np.ndarray, segment: int, t: float) -> np.ndarray:
         """Return whitened rows (N, 4, 2C) at unit directions u (N, 3) in one magnitude segment."""
         u = np.atleast_2d(np.asarray(u, float))
-        pw = np.ones(u.shape + (self.degree + 1,))
-        for e in range(1, self.degree + 1):
-            pw[..., e] = pw[..., e - 1] * u
-        mono = pw[:, 0, self._exps[:, 0]] * pw[:, 1, self._exps[:, 1]] * pw[:, 2, self._exps[:, 2]]
+        mono = monomials(u, self._exps)
         if self._powers > 1:
             tp = np.array([1.0, t, t * t, t * t * t])
             mono = (tp[None, :, None] * mono[:, None, :]).reshape(u.shape[0], -1)

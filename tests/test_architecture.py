@@ -49,3 +49,13 @@ def test_live_path_imports_no_plotting():
             "heavy = [m for m in ('matplotlib', 'hypothesis', 'tqdm', 'pytest') if m in sys.modules]\n"
             "assert not heavy, heavy\n")
     subprocess.run([sys.executable, "-c", code], check=True, cwd=ROOT)
+
+
+def test_every_filter_setting_is_documented():
+    from dataclasses import fields
+
+    from fieldvane.estimator.filter_settings import FilterSettings
+
+    doc = (ROOT / "docs" / "config_files.md").read_text(encoding="utf-8")
+    missing = [f.name for f in fields(FilterSettings) if f"`{f.name}`" not in doc]
+    assert not missing, f"docs/config_files.md lacks filter keys: {missing}"

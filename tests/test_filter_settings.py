@@ -14,6 +14,7 @@ def test_defaults_are_valid_and_documented_units():
     assert s.lost_after_gated == 10
     assert not s.gain_drift and not s.phase_drift
     assert math.isinf(s.blind_threshold_deg)
+    assert s.adaptive_noise and s.adaptive_noise_window_samples <= 2 * s.lost_after_gated - 5
 
 
 def test_round_trip_through_dict_and_toml_text():
@@ -38,6 +39,14 @@ def test_round_trip_through_dict_and_toml_text():
     ({"nis_average_limit": 0.9}, "NIS/dof = 1"),
     ({"low_signal_fraction": 1.0}, "low_signal_fraction"),
     ({"max_gap_s": "1"}, "must be a number"),
+    ({"adaptive_noise": "yes"}, "true or false"),
+    ({"adaptive_noise_window_samples": 2}, "at least 3"),
+    ({"adaptive_noise_window_samples": 9.0}, "whole number"),
+    ({"adaptive_noise_max_scale": 0.5}, "adaptive_noise_max_scale must be finite and >= 1"),
+    ({"adaptive_noise_max_scale": math.inf}, "adaptive_noise_max_scale"),
+    ({"adaptive_noise_threshold": 0.9}, "between 1 and adaptive_noise_max_scale"),
+    ({"adaptive_noise_threshold": 2.0, "adaptive_noise_max_scale": 1.2}, "adaptive_noise_threshold"),
+    ({"adaptive_noise_threshold": math.nan}, "adaptive_noise_threshold"),
 ])
 def test_invalid_values_name_the_setting(changes, words):
     with pytest.raises(ValueError, match=words):

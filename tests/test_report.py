@@ -9,11 +9,14 @@ import math
 import re
 import statistics
 
+from pathlib import Path
+
 import numpy as np
 import pytest
 from scipy import stats
 
 from fieldvane.estimator.estimate import Estimate
+from fieldvane.estimator.flags import EstimateFlag
 from fieldvane.io.cli import main
 from fieldvane.io.estimates_csv import EstimatesWriter
 from fieldvane.io.recording import write_recording
@@ -21,10 +24,18 @@ from fieldvane.io.report import summarize, write_report
 
 PNG_SIGNATURE = b"\x89PNG\r\n\x1a\n"   # PNG specification (W3C / ISO 15948), file signature
 # Bit values of the flags table in README.md ("The flags bitfield"), typed in from the document.
-README_FLAGS = {"TRACKING": 1, "COASTING": 2, "REACQUIRED": 4, "GATED": 8, "BLIND": 16,
-                "MAGNITUDE_DISAGREE": 32, "LOW_SIGNAL": 64, "AMBIGUOUS": 128, "SNAPSHOT": 256,
-                "OUTSIDE_CALIBRATION": 512, "BAD_INPUT": 1024, "COVARIANCE_FAULT": 2048,
-                "NO_ESTIMATE": 4096}
+def _readme_flags() -> dict[str, int]:
+    """The flags table of README.md (| bit | value | NAME | meaning |): the documented contract."""
+    readme = (Path(__file__).resolve().parents[1] / "README.md").read_text(encoding="utf-8")
+    out = {}
+    for line in readme.splitlines():
+        cells = [c.strip() for c in line.strip().strip("|").split("|")]
+        if len(cells) == 4 and cells[0].isdigit() and cells[1].isdigit():
+            out[cells[2]] = int(cells[1])
+    return out
+
+
+README_FLAGS = _readme_flags()
 FIGURES = ("track.png", "components.png", "sigma.png", "nis.png", "flags.png", "magnitude.png")
 N, DT = 600, 0.01
 NO_EST = 5                     # first rows: nothing to report yet
@@ -131,6 +142,7 @@ def expected_summary(est, truth):
     has_u = np.isfinite(u).all(axis=1)
     exp = {"samples": N, "duration_s": t.max() - t.min(), "sample_period_s": float(np.median(np.diff(np.sort(t)))),
            "samples_with_direction": int(has_u.sum())}
+    assert README_FLAGS == {f.name: int(f) for f in EstimateFlag}   # README documents every bit
     for name, bit in README_FLAGS.items():
         exp[f"flag_rate_{name}"] = sum(1 for f in flags if int(f) & bit) / N
     exp["flag_rate_undocumented"] = 0.0

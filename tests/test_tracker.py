@@ -23,7 +23,10 @@ from fieldvane.estimator.response import to_real
 from fieldvane.estimator.samples import Sample, SampleBlock
 from fieldvane.estimator.sphere import (angle_between, exp_map, fibonacci_sphere, log_map, normalize,
                                         rotation_matrix, tangent_basis)
-from fieldvane.estimator.tracker import Tracker, covariance_ok, process_noise, rate_coupling
+from fieldvane.estimator import monomials, tracker_algebra as algebra
+from fieldvane.estimator.harmonics import monomial_coefficients, real_sph_harm_reference
+from fieldvane.estimator.tracker import (Tracker, covariance_ok, process_noise, process_noise_static, rate_coupling,
+                                         weak_direction_filter)
 from fieldvane.estimator.tracker_model import StateLayout, TrackerModel, apply_drifts, drift_jacobian
 from synthetic_sensor import make_sensor, scan
 
@@ -191,6 +194,29 @@ def test_drift_jacobian_matches_finite_differences(two_probe):
             assert np.abs(analytic[j] - numeric).max() < 1e-6 * np.abs(numeric).max() + 1e-9
 
 
+@pytest.mark.parametrize("degree", [0, 1, 3, 6])
+def test_shared_monomial_tables(degree):
+    """One monomial table for harmonics, snapshot and tracker: count (L+1)(L+2)(L+3)/6, values equal to
+    numpy's powers, derivative maps equal to central differences, and monomials @ T equal to scipy's real
+    spherical harmonics (scipy.special.sph_harm_y via real_sph_harm_reference)."""
+    exps = monomials.exponents(degree)
+    assert len(exps) == monomials.count(degree) == len({tuple(e) for e in exps.tolist()})
+    rng = np.random.default_rng(degree)
+    u = normalize(rng.normal(size=(40, 3)))
+    mono = monomials.monomials(u, exps)
+    assert np.allclose(mono, np.prod(u[:, None, :] ** exps[None, :, :], axis=2), rtol=1e-13, atol=1e-15)
+    coef = rng.normal(size=len(exps))
+    eps = 1e-6
+    for k, d in enumerate(monomials.derivative_maps(exps)):
+        step = np.zeros(3)
+        step[k] = eps
+        numeric = (monomials.monomials(u + step, exps) - monomials.monomials(u - step, exps)) @ coef / (2 * eps)
+        assert np.allclose(mono @ (coef @ d), numeric, atol=1e-7)
+        assert np.allclose(monomials.monomials_and_gradient(u, exps)[1][:, k] @ coef, numeric, atol=1e-7)
+    _, to_harm = monomial_coefficients(degree)
+    assert np.allclose(mono @ to_harm, real_sph_harm_reference(degree, u), atol=1e-12)
+
+
 # ------------------------------------------------------------------------------------ filter algebra
 def test_process_noise_matches_van_loan():
     """F and Q of the turning model equal van Loan's matrix-exponential discretization (filterpy) of
@@ -312,6 +338,62 @@ def test_covariance_check_agrees_with_eigenvalues():
     good = np.eye(4)
     for bad in (np.where(np.eye(4) > 0, np.nan, good), np.diag([1.0, 1.0, np.inf, 1.0]), np.zeros((4, 4))):
         assert not covariance_ok(bad)
+
+
+def _random_plain_covariance(rng):
+    a = rng.normal(size=(5, 5)) * np.array([1e-3, 1e-3, 0.05, 0.05, 0.05])[:, None]
+    return a @ a.T + np.diag([1e-8, 1e-8, 1e-6, 1e-6, 1e-6])
+
+
+def test_plain_algebra_equals_matrix_forms():
+    """The 15-float covariance algebra (estimator/tracker_algebra.py) against the matrix equations with numpy:
+    F P F^T + Q (process_noise), the information-form gain, the Joseph update for any gain (here also the
+    weak-direction-filtered one), the chart change, and positive definiteness against eigenvalues."""
+    rng = np.random.default_rng(8)
+    s = FilterSettings(angle_random_walk_deg_rt_s=0.05, rate_random_walk_deg_s_rt_s=2.0)
+    layout = StateLayout(2, 4, False, False)
+    for _ in range(200):
+        p = _random_plain_covariance(rng)
+        pp = algebra.from_matrix(p)
+        assert np.allclose(algebra.to_matrix(pp), p, rtol=1e-15, atol=0)
+        e1, e2 = tangent_basis(normalize(rng.normal(size=3)))
+        dt = float(rng.choice([0.001, 0.005, 0.1]))
+        f, q = process_noise(s, layout, dt, rate_coupling(e1, e2))
+        q_static, cross = process_noise_static(s, layout, dt)
+        predicted = algebra.predict(pp, tuple(e1), tuple(e2), dt, q_static[0, 0], cross, q_static[2, 2])
+        assert np.allclose(algebra.to_matrix(predicted), f @ p @ f.T + q, rtol=1e-12, atol=1e-20)
+
+        h = rng.normal(size=(8, 2)) * rng.choice([10.0, 1e3])          # whitened tangent Jacobian
+        info = h.T @ h
+        j00, j01, j11 = info[0, 0], info[0, 1], info[1, 1]
+        mt = np.linalg.solve(np.eye(2) + p[:2, :2] @ info, p[:2])
+        m0, m1 = algebra.gain(pp, j00, j01, j11)
+        assert np.allclose(np.array([m0, m1]), mt, rtol=1e-10, atol=1e-22)
+        for filtered in (False, True):
+            rows = mt @ weak_direction_filter(j00, j01, j11, layout, e1, e2) if filtered else mt
+            got = algebra.drop_weak_direction(m0, m1, j00, j01, j11, tuple(e1), tuple(e2)) if filtered else (m0, m1)
+            assert np.allclose(np.array(got), rows, rtol=1e-9, atol=1e-22)
+            k = rows.T @ h.T                                            # K (5, 8) with R = I (whitened)
+            t_mat = np.eye(5) - k @ np.hstack([h, np.zeros((8, 3))])
+            joseph = t_mat @ p @ t_mat.T + k @ k.T
+            assert np.allclose(algebra.to_matrix(algebra.joseph(pp, *got, j00, j01, j11)), joseph,
+                               rtol=1e-8, atol=1e-12 * np.abs(p).max())
+
+        g = np.eye(2) - 0.01 * np.outer(*(2 * [normalize(rng.normal(size=2))]))
+        big = np.eye(5)
+        big[:2, :2] = g
+        assert np.allclose(algebra.to_matrix(algebra.chart_change(pp, g[0, 0], g[0, 1], g[1, 1])), big @ p @ big.T,
+                           rtol=1e-12, atol=1e-24)
+    for _ in range(2000):
+        a = rng.normal(size=(5, 5))
+        p = a @ a.T + rng.normal() * np.eye(5)
+        smallest = np.linalg.eigvalsh(p).min()                       # reference: numpy eigenvalues
+        if abs(smallest) > 1e-9:
+            assert algebra.positive_definite(algebra.from_matrix(p)) == (smallest > 0)
+    bad = list(algebra.from_matrix(np.eye(5)))
+    for value in (math.nan, math.inf):
+        for i in range(15):
+            assert not algebra.positive_definite(tuple(bad[:i] + [value] + bad[i + 1:]))
 
 
 # ---------------------------------------------------------------------- accuracy against the CRLB
@@ -521,7 +603,7 @@ def test_covariance_fault_raises_bit_and_resets(two_probe):
         tracker.step(blk.sample(i))
     bad = tracker.covariance
     bad[0, 0] = -bad[0, 0]          # simulated corruption of the filter state
-    tracker._p = bad
+    tracker._set_covariance(bad)
     est = tracker.step(blk.sample(50))
     assert est.flags & F.COVARIANCE_FAULT and est.flags & F.REACQUIRED
     assert tracker.counters.covariance_faults == 1 and tracker.resets[-1].reason == "fault"

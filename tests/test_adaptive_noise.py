@@ -1,0 +1,253 @@
+"""Adaptive measurement noise: the noise-level statistic, and the tracker through noise bursts.
+
+The streams are tests/synthetic_sensor.py's (see tests/test_tracker.py); a burst adds extra white
+noise of `factor` times the calibrated std on the chosen channels, so the noise std there becomes
+sqrt(1 + factor^2) times calibrated.
+"""
+
+import math
+
+import numpy as np
+import pytest
+
+from fieldvane.estimator.calibration import fit_calibration
+from fieldvane.estimator.filter_settings import FilterSettings
+from fieldvane.estimator.flags import EstimateFlag as F
+from fieldvane.estimator.innovation import innovation_loglik
+from fieldvane.estimator.noise_level import NoiseLevel, NoiseLevelBatch, difference_median, effective_ratio
+from fieldvane.estimator.samples import SampleBlock
+from fieldvane.estimator.sphere import angle_between, normalize, rotation_matrix
+from fieldvane.estimator.tracker import Tracker
+from synthetic_sensor import make_sensor, scan
+from test_tracker import GridInitiator, calibrated, errors_deg, make_stream, rotating
+
+TURN_DEG_S = 6.0
+
+
+@pytest.fixture(scope="module")
+def two_probe():
+    return calibrated(2)
+
+
+@pytest.fixture(scope="module")
+def one_probe():
+    return calibrated(1)
+
+
+def add_burst(block, sigma, rows, factor, channels=None, seed=9):
+    """Add white noise of factor x the calibrated std (per channel) to the given rows and channels."""
+    rng = np.random.default_rng(seed)
+    cols = np.arange(block.z.shape[1]) if channels is None else np.asarray(channels)
+    shape = (rows.size, cols.size)
+    extra = factor * sigma[cols] * (rng.normal(size=shape) + 1j * rng.normal(size=shape))
+    block.z[np.ix_(rows, cols)] += extra
+
+
+def turning_stream(sensor, sigma, n=3000, seed=5):
+    t, u = rotating(n, TURN_DEG_S, [0.1, 0.3, 0.95], normalize(np.array([0.55, 0.25, 0.8])))
+    return make_stream(sensor, t, u, 5000.0, sigma, seed=seed), u
+
+
+# ------------------------------------------------------------------------------ the statistic itself
+@pytest.mark.parametrize("m", [2, 4, 8])
+def test_difference_median_matches_monte_carlo(m):
+    """The median of min(|a-b|^2, |a-c|^2), a, b, c ~ N(0, I_m), from the ncx2 integral, against a seeded
+    Monte Carlo estimate (4e5 draws: the sample median's relative standard error is about 0.3%)."""
+    rng = np.random.default_rng(m)
+    a, b, c = (rng.normal(size=(400_000, m)) for _ in range(3))
+    mc = np.median(np.minimum(((a - b) ** 2).sum(axis=1), ((a - c) ** 2).sum(axis=1)))
+    assert difference_median(m) == pytest.approx(mc, rel=0.01)
+
+
+def test_noise_level_is_median_unbiased_and_follows_a_rise():
+    """On white noise the running level stays at 1 (below the threshold); after the variance rises 100x
+    it follows within (W + 1) / 2 values and reads 100 within the spread of a 9-value median."""
+    rng = np.random.default_rng(3)
+    m, window = 4, 9
+    level = NoiseLevel(1, window, 2.5, 30.0 ** 2)
+    y = rng.normal(size=(3000, m))
+    y[2000:] *= 10.0
+    ratios = []
+    for k in range(2, y.shape[0]):
+        d = min(((y[k] - y[k - 1]) ** 2).sum(), ((y[k] - y[k - 2]) ** 2).sum()) / difference_median(m)
+        ratios.append(level.push([d])[0])
+    ratios = np.array(ratios)
+    calm, noisy = ratios[:1998], ratios[2004:]          # index k - 2
+    assert np.mean(calm == 1.0) > 0.99
+    assert np.all(noisy > 25.0) and 70.0 < np.median(noisy) < 140.0
+
+
+def test_noise_level_median_threshold_and_cap_against_numpy():
+    """The factor is numpy's median of the last W values when above the threshold, 1 below, capped."""
+    rng = np.random.default_rng(4)
+    values = rng.lognormal(0.5, 1.5, size=(400, 2))
+    level = NoiseLevel(2, 7, 2.5, 50.0)
+    for k in range(values.shape[0]):
+        got = level.push(list(values[k]))
+        if k >= 3:                                    # (7 + 1) / 2 values before the level may move
+            med = np.median(values[max(0, k - 6):k + 1], axis=0)    # reference: numpy.median
+            want = [1.0 if v <= 2.5 else min(v, 50.0) for v in med]
+            assert got == pytest.approx(want, rel=1e-12)
+    assert effective_ratio(math.nan, 2.5, 50.0) == 1.0
+
+
+def test_batch_noise_level_equals_scalar():
+    """NoiseLevelBatch (the tuner's, many filters at once) reproduces NoiseLevel filter by filter."""
+    rng = np.random.default_rng(5)
+    windows, thresholds, caps = [3, 9, 8], [2.5, 1.0, 4.0], [900.0, 10.0, 100.0]
+    batch = NoiseLevelBatch(2, windows, thresholds, caps)
+    single = [NoiseLevel(2, w, th, cap) for w, th, cap in zip(windows, thresholds, caps)]
+    for _ in range(300):
+        values = rng.lognormal(0.3, 1.2, size=(3, 2))
+        mask = rng.random(3) < 0.7
+        got = batch.push(values, mask).copy()
+        for i, level in enumerate(single):
+            if mask[i]:
+                level.push(list(values[i]))
+            assert got[i] == pytest.approx(level.ratios, rel=1e-12)
+
+
+# ------------------------------------------------------------------------- the tracker through bursts
+@pytest.mark.parametrize("n_probes", [2, 1])
+def test_noise_burst_is_tracked_honestly(two_probe, one_probe, n_probes):
+    """A 15x noise burst for 4 s while the field turns at 6 deg/s: the track is kept (no re-acquisition),
+    the error stays consistent with sigma_deg (>= 90% within 2 sigma inside the burst; 98% expected for a
+    2-D Gaussian, REFERENCES.md "Estimation") and the noise factor reads about sqrt(1 + 15^2). Without the
+    adaptive noise the same stream loses the track and reports a sigma the errors do not respect."""
+    sensor, cal, sigma = two_probe if n_probes == 2 else one_probe
+    blk, u = turning_stream(sensor, sigma)
+    burst = np.arange(1000, 1800)
+    add_burst(blk, sigma, burst, 15.0)
+    tracker = Tracker(cal, FilterSettings(), GridInitiator(cal.model))
+    rec = tracker.run_arrays(blk)
+    err = errors_deg(rec, u)
+    inside = np.mean(err[burst] < 2 * rec.sigma_deg[burst])
+    assert inside >= 0.9, inside
+    assert tracker.counters.acquisitions == 1
+    assert np.mean(rec.flags[burst] & F.GATED > 0) < 0.05            # gated only while the level follows
+    assert np.all(rec.flags[burst[:3]] & F.GATED)                   # the first samples of the burst
+    assert 12.0 < np.median(rec.noise_scale[burst]) < 20.0           # sqrt(226) = 15.03
+    calm = np.r_[200:990, 1815:3000]
+    assert np.mean(rec.noise_scale[calm] == 1.0) > 0.99
+    assert np.mean(err[calm] < 2 * rec.sigma_deg[calm]) > 0.95
+
+    fixed = Tracker(cal, FilterSettings(adaptive_noise=False), GridInitiator(cal.model))
+    rec0 = fixed.run_arrays(blk)
+    err0 = errors_deg(rec0, u)
+    assert fixed.counters.acquisitions > 10
+    assert np.mean(err0[burst] < 2 * rec0.sigma_deg[burst]) < 0.8
+    assert np.all(rec0.noise_scale == 1.0)
+
+
+def test_burst_on_one_probe_inflates_that_probe_only(two_probe):
+    """A 10x burst on probe 2's channels: probe 2's factor rises, probe 1's stays 1, so the direction keeps
+    probe 1's accuracy (RMS error in the burst well below what a uniform inflation would give). step()
+    gives exactly what run_arrays() gives, sample by sample."""
+    sensor, cal, sigma = two_probe
+    blk, u = turning_stream(sensor, sigma)
+    burst = np.arange(1000, 1800)
+    add_burst(blk, sigma, burst, 10.0, channels=[2, 3])
+    tracker = Tracker(cal, FilterSettings(), GridInitiator(cal.model))
+    rec = tracker.run_arrays(blk)
+    # Replay the burst sample by sample to read the per-probe factors.
+    by_step = Tracker(cal, FilterSettings(), GridInitiator(cal.model))
+    scales = []
+    for i in range(burst[-1] + 1):
+        est = by_step.step(blk.sample(i))
+        assert np.array_equal(est.u, rec.u[i]) and est.sigma_deg == rec.sigma_deg[i] and est.flags == rec.flags[i]
+        assert est.extras["noise_scale"] == rec.noise_scale[i] == by_step.noise_scales.max()
+        if i >= burst[0] + 20:
+            scales.append(by_step.noise_scales)
+    scales = np.array(scales)
+    assert np.median(scales[:, 0]) == 1.0 and scales[:, 0].max() < 2.0     # (rare brief false alarms, < 2)
+    assert 7.0 < np.median(scales[:, 1]) < 14.0                              # sqrt(101) = 10.05
+    err = errors_deg(rec, u)
+    assert np.mean(err[burst] < 2 * rec.sigma_deg[burst]) >= 0.9 and tracker.counters.acquisitions == 1
+    uniform = Tracker(cal, FilterSettings(adaptive_noise=False, measurement_noise_scale=math.sqrt(50.5)),
+                      GridInitiator(cal.model)).run_arrays(blk)
+    rms = np.sqrt(np.mean(err[burst] ** 2))
+    assert rms < 0.5 * np.sqrt(np.mean(errors_deg(uniform, u)[burst] ** 2))
+
+
+@pytest.mark.parametrize("n_probes", [2, 1])
+def test_direction_step_inside_a_burst_is_still_reacquired(two_probe, one_probe, n_probes):
+    """A 45-deg step in the middle of a 10x burst: the innovation is large but steady, so the noise level does
+    not absorb it; the step is gated, the track declared lost after K gated samples and re-acquired there,
+    with the initiator's covariance widened by the noise factor (sigma honest right after)."""
+    sensor, cal, sigma = two_probe if n_probes == 2 else one_probe
+    t, u = rotating(3000, 3.0, [0.1, 0.3, 0.95], normalize(np.array([0.55, 0.25, 0.8])))
+    step = 1400
+    u[step:] = u[step:] @ rotation_matrix([1.0, -0.5, 0.2], math.radians(45.0)).T
+    blk = make_stream(sensor, t, u, 5000.0, sigma)
+    burst = np.arange(1000, 1800)
+    add_burst(blk, sigma, burst, 10.0)
+    settings = FilterSettings()
+    k = settings.lost_after_gated
+    tracker = Tracker(cal, settings, GridInitiator(cal.model))
+    rec = tracker.run_arrays(blk)
+    err = errors_deg(rec, u)
+    reacquired = step + np.flatnonzero(rec.flags[step:] & F.REACQUIRED)[0]
+    assert reacquired - step + 1 <= k and np.all(rec.flags[step:reacquired] & F.GATED)
+    assert tracker.resets[-1].reason == "gated" and tracker.counters.acquisitions == 2
+    true_jump = math.degrees(angle_between(u[step - 1], u[step]))
+    assert tracker.resets[-1].jump_deg == pytest.approx(true_jump, abs=2.0)
+    after = np.arange(reacquired, burst[-1])
+    assert np.mean(err[after] < 2 * rec.sigma_deg[after]) >= 0.9
+    assert rec.noise_scale[reacquired] > 5.0
+
+
+def test_single_spikes_are_gated_inside_and_outside_a_burst(two_probe):
+    """Lone spikes of 80 calibrated sigma stay gated, and the noise level ignores them: it stays 1 but for the
+    rare brief false alarms of a calm stream (a 9-value median of white noise above 2.5, well under 1%)."""
+    sensor, cal, sigma = two_probe
+    blk, u = turning_stream(sensor, sigma)
+    rng = np.random.default_rng(12)
+    spikes = np.arange(300, 3000, 37)
+    blk.z[spikes, rng.integers(0, 4, spikes.size)] += 80 * sigma.max() * np.exp(2j * np.pi * rng.random(spikes.size))
+    tracker = Tracker(cal, FilterSettings(), GridInitiator(cal.model))
+    rec = tracker.run_arrays(blk)
+    assert np.all(rec.flags[spikes] & F.GATED)
+    assert rec.noise_scale.max() < 2.0 and np.mean(rec.noise_scale > 1.0) < 0.01
+    assert errors_deg(rec, u)[1:].max() < 0.3
+
+
+def test_innovation_loglik_matches_tracker_through_a_burst(two_probe):
+    """The tuner's objective runs the same adaptive noise as the tracker: through a burst (and with other
+    windows, thresholds and the switch off) its mean NIS and gated fraction equal the tracker's."""
+    sensor, cal, sigma = two_probe
+    blk, u = turning_stream(sensor, sigma, n=1500)
+    add_burst(blk, sigma, np.arange(600, 1000), 8.0)
+    add_burst(blk, sigma, np.arange(1200, 1300), 4.0, channels=[0, 1], seed=10)
+    base = FilterSettings()
+    candidates = [base, base.replace(adaptive_noise_window_samples=5), base.replace(adaptive_noise_threshold=1.5),
+                  base.replace(adaptive_noise=False), base.replace(adaptive_noise_max_scale=3.0)]
+    scores = innovation_loglik(cal, blk, candidates, GridInitiator(cal.model))
+    for k, s in enumerate(candidates):
+        tracker = Tracker(cal, s, GridInitiator(cal.model))
+        rec = tracker.run_arrays(blk)
+        fused = (rec.flags & F.TRACKING) > 0
+        assert scores.mean_nis[k] == pytest.approx(rec.nis[fused].mean(), rel=1e-9)
+        scored = np.isfinite(rec.nis)
+        assert scores.fraction_gated[k] == pytest.approx(np.mean(rec.flags[scored] & F.GATED > 0), abs=1e-12)
+        assert scores.reacquisitions[k] == tracker.counters.acquisitions - 1
+    assert scores.reacquisitions[3] > 0 and scores.reacquisitions[0] == 0
+
+
+def test_probes_with_unequal_channel_counts(two_probe):
+    """Three channels (probe 1 at both pumps, probe 2 at pump a only): the per-probe noise level works with
+    groups of unequal size (4 and 2 real measurements), and a burst on channel 2a is absorbed by probe 2."""
+    sensor, _, sigma = two_probe
+    _, pumps, probes = make_sensor(seed=1, n_probes=2)           # the nominal axes of the same sensor
+    u_scan, b_scan, z_scan, f_scan, _ = scan(sensor, [5000.0], 800, seed=2)
+    keep = [0, 1, 2]
+    cal = fit_calibration(u_scan, b_scan, z_scan[:, keep], f_scan, ("1a", "1b", "2a"), pumps, probes)
+    blk, u = turning_stream(sensor, sigma)
+    add_burst(blk, sigma, np.arange(1000, 1800), 10.0, channels=[2])
+    blk = SampleBlock(blk.t, blk.f, blk.z[:, keep], ("1a", "1b", "2a"))
+    tracker = Tracker(cal, FilterSettings(), GridInitiator(cal.model))
+    rec = tracker.run_arrays(blk)
+    err = errors_deg(rec, u)
+    burst = np.arange(1000, 1800)
+    assert tracker.counters.acquisitions == 1
+    assert np.mean(err[burst] < 2 * rec.sigma_deg[burst]) >= 0.9
+    assert 6.0 < np.median(rec.noise_scale[burst]) < 15.0
