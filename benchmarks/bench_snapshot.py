@@ -5,7 +5,6 @@ while these run). Both solvers get the same two-probe samples at SNR 300 and mus
 accuracy; extra_info carries solutions per second, the ratio, and the error statistics.
 """
 
-import os
 
 import numpy as np
 import pytest
@@ -23,17 +22,7 @@ STARTS = fibonacci_sphere(6)
 RESULTS = {}
 
 
-@pytest.fixture(scope="module", autouse=True)
-def one_core():
-    """Pin the process (and its BLAS threads) to a single CPU for a one-core figure."""
-    if not hasattr(os, "sched_setaffinity"):
-        yield
-        return
-    before = os.sched_getaffinity(0)
-    os.sched_setaffinity(0, {min(before)})
-    yield
-    os.sched_setaffinity(0, before)
-
+# one_core (pinning to a single CPU) comes from benchmarks/conftest.py.
 
 @pytest.fixture(scope="module")
 def problem():

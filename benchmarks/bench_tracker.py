@@ -12,7 +12,6 @@ of a long replay (tracemalloc).
 """
 
 import math
-import os
 import resource
 import tracemalloc
 
@@ -39,17 +38,7 @@ RESULTS = {}
 pytestmark = pytest.mark.benchmark_suite
 
 
-@pytest.fixture(scope="module", autouse=True)
-def one_core():
-    """Pin the process (and its BLAS threads) to a single CPU for a one-core figure."""
-    if not hasattr(os, "sched_setaffinity"):
-        yield
-        return
-    before = os.sched_getaffinity(0)
-    os.sched_setaffinity(0, {min(before)})
-    yield
-    os.sched_setaffinity(0, before)
-
+# one_core (pinning to a single CPU) comes from benchmarks/conftest.py.
 
 @pytest.fixture(scope="module", params=[0.0, 0.05], ids=["ideal", "distorted"])
 def problem(request):

@@ -12,7 +12,6 @@ the tuner's first round:
     (36 would take minutes); extra_info gives the per-candidate time and the total it implies.
 """
 
-import os
 import time
 
 import numpy as np
@@ -38,17 +37,7 @@ RESULTS = {}
 pytestmark = pytest.mark.benchmark_suite
 
 
-@pytest.fixture(scope="module", autouse=True)
-def one_core():
-    """Pin the process (and its BLAS threads) to a single CPU for a one-core figure."""
-    if not hasattr(os, "sched_setaffinity"):
-        yield
-        return
-    before = os.sched_getaffinity(0)
-    os.sched_setaffinity(0, {min(before)})
-    yield
-    os.sched_setaffinity(0, before)
-
+# one_core (pinning to a single CPU) comes from benchmarks/conftest.py.
 
 @pytest.fixture(scope="module")
 def problem(tmp_path_factory):

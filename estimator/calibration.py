@@ -8,7 +8,7 @@ import numpy as np
 from fieldvane.estimator.constants import CELL_PAIRS, gamma_hz_per_nt, identify_isotope
 from fieldvane.estimator.harmonics import harmonics, n_harmonics
 from fieldvane.estimator.magnitude_basis import MagnitudeBasis
-from fieldvane.estimator.physics import PhysicsParameters, channel_geometry
+from fieldvane.estimator.physics import PhysicsParameters
 from fieldvane.estimator.response import ResponseModel
 from fieldvane.estimator.sphere import axis_angle_deg, exp_map, fibonacci_sphere, normalize, tangent_basis
 

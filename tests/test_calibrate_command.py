@@ -61,7 +61,6 @@ def test_calibration_file_round_trip_and_tamper_detection(calibrated, tmp_path):
     d, _ = calibrated
     main(["calibrate", str(d / "scan.csv"), "-o", str(tmp_path / "c.json")])
     cal = load_calibration(tmp_path / "c.json")
-    from fieldvane.estimator.calibration import fit_calibration  # noqa: F401  (same model class)
     u = np.random.default_rng(0).normal(size=(20, 3))
     u /= np.linalg.norm(u, axis=1, keepdims=True)
     again = load_calibration(tmp_path / "c.json")

@@ -5,7 +5,7 @@ import pytest
 
 from fieldvane.estimator.calibration import CalibrationError, axis_errors_deg, fit_calibration
 from fieldvane.estimator.response import to_real
-from fieldvane.estimator.sphere import exp_map, fibonacci_sphere, normalize, tangent_basis
+from fieldvane.estimator.sphere import exp_map, fibonacci_sphere, tangent_basis
 from synthetic_sensor import make_sensor, scan
 
 KNOTS = [1000, 2000, 5000, 10000, 20000]

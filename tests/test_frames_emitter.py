@@ -403,7 +403,9 @@ def test_emitter_to_tcp(run):
 def test_tcp_read_with_pyserial_socket_url(run):
     serial = pytest.importorskip("serial")
     sink = TcpSink(0)
-    em = Emitter(run, sink, realtime=False).start()
+    # Real-time pacing: pyserial discards what has arrived when it opens a socket:// URL, and an
+    # as-fast-as-possible sender could have sent the whole run by then (seen as a flaky failure).
+    em = Emitter(run, sink, realtime=True).start()
     port = serial.serial_for_url(f"socket://{sink.host}:{sink.port}", timeout=0.2)
     dec = wire.FrameDecoder()
     got = []

@@ -22,7 +22,7 @@ from cobs import cobs
 from fieldvane.io.capture import CaptureWriter, read_capture
 from fieldvane.io.live import LiveLoop, frames_from_capture, make_decoder, replay_capture
 from fieldvane.io.serial_link import SerialLink
-from fieldvane.io.sinks import (CsvFormatter, Sink, StreamTransport, TcpServerTransport, Transport,
+from fieldvane.io.sinks import (CsvFormatter, Sink, TcpServerTransport, Transport,
                                 close_sinks, open_sink)
 from fieldvane.io.wire import Frame, encode_frame, encode_payload
 

@@ -12,7 +12,6 @@ import pytest
 from scipy.spatial import SphericalVoronoi
 from scipy.spatial.transform import Rotation
 
-from fieldvane.firmware_sim.atoms import atom
 from fieldvane.firmware_sim.response import response
 from fieldvane.firmware_sim.scenario import (
     ScenarioError, builtin_scenario_names, builtin_scenario_path, direction_at, load_scenario,

@@ -98,7 +98,6 @@ def run(args) -> int:
     # 4. live tracking
     solver = SnapshotSolver.from_calibration(cal, table)
     tracker = Tracker(cal, None, solver.initiate)
-    truth_u = {int(s): u for s, u in zip(track.seq, track.u)}
     last = {"err": float("nan"), "est": None}
 
     def estimate(sample):
