@@ -30,45 +30,53 @@ def add_arguments(parser) -> None:
 
 def run(args) -> int:
     """Calibrate and print the summary; returns the exit code."""
+    from fieldvane.io.sensorfile import read_sensor_file
+
+    sensor = read_sensor_file(args.sensor) if args.sensor else None
+    cal, block, out = calibrate_file(args.scan, args.output, sensor, args.cell, args.max_degree, args.folds,
+                                     sensor_path=args.sensor)
+    print(summary_text(cal, args.scan, len(block), block.skipped_rows, sensor))
+    print(f"wrote {out} and {out.with_suffix('.npz').name}")
+    return 0
+
+
+def calibrate_file(scan, output, sensor: dict | None = None, cell: str | None = None,
+                   max_degree: int = 6, folds: int = 5, sensor_path: str | None = None):
+    """Fit a scan recording and write CAL.json + .npz; returns (Calibration, SampleBlock, JSON path)."""
     import numpy as np
 
     from fieldvane.estimator.calibration import CalibrationError, fit_calibration
     from fieldvane.io.calfile import save_calibration
     from fieldvane.io.errors import InputError
     from fieldvane.io.recording import read_recording
-    from fieldvane.io.sensorfile import read_sensor_file
 
-    sensor = read_sensor_file(args.sensor) if args.sensor else None
-    block, warnings = read_recording(args.scan)
+    block, warnings = read_recording(scan)
     for w in warnings:
         print(f"warning: {w}", file=sys.stderr)
     if block.applied_b_nT is None:
         raise InputError("a calibration scan needs the applied-field columns bx_nT, by_nT, bz_nT",
-                         args.scan, 1, "bx_nT")
+                         scan, 1, "bx_nT")
     b_vec = block.applied_b_nT
     b = np.linalg.norm(b_vec, axis=1)
     if np.any(b <= 0):
         line = int(np.argmax(b <= 0))
-        raise InputError(f"applied field is zero in data row {line + 1}", args.scan, column="bx_nT")
-    cell = args.cell or (sensor or {}).get("cell", "Rb")
+        raise InputError(f"applied field is zero in data row {line + 1}", scan, column="bx_nT")
+    cell = cell or (sensor or {}).get("cell", "Rb")
     nominal_pumps = nominal_probes = None
     if sensor is not None:
         nominal_pumps = sensor["nominal_pumps"]
         nominal_probes = sensor["nominal_probes"]
         if nominal_probes.shape[0] != len(block.channels) // 2:
             raise InputError(f"sensor file describes {nominal_probes.shape[0]} probe(s) but the scan "
-                             f"has {len(block.channels) // 2}", args.sensor, column="probes")
+                             f"has {len(block.channels) // 2}", sensor_path, column="probes")
     try:
         cal = fit_calibration(b_vec / b[:, None], b, block.z, block.f, block.channels,
-                              nominal_pumps, nominal_probes, max_correction_degree=args.max_degree,
-                              folds=args.folds, cell=cell)
+                              nominal_pumps, nominal_probes, max_correction_degree=max_degree,
+                              folds=folds, cell=cell)
     except CalibrationError as exc:
-        raise InputError(str(exc), args.scan) from None
-    source = {"scan": str(args.scan), "rows": len(block), "skipped_rows": block.skipped_rows}
-    out = save_calibration(cal, args.output, source=source, sensor=sensor)
-    print(summary_text(cal, args.scan, len(block), block.skipped_rows, sensor))
-    print(f"wrote {out} and {out.with_suffix('.npz').name}")
-    return 0
+        raise InputError(str(exc), scan) from None
+    source = {"scan": str(scan), "rows": len(block), "skipped_rows": block.skipped_rows}
+    return cal, block, save_calibration(cal, output, source=source, sensor=sensor)
 
 
 def summary_text(cal, scan_name, rows, skipped, sensor=None) -> str:

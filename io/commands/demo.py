@@ -40,15 +40,13 @@ def run(args) -> int:
 
     import numpy as np
 
-    from fieldvane.estimator.calibration import fit_calibration
     from fieldvane.estimator.fisher import crlb_deg
     from fieldvane.estimator.snapshot import SnapshotSolver
     from fieldvane.estimator.sphere import angle_between
     from fieldvane.estimator.tracker import Tracker
     from fieldvane.firmware_sim.emitter import Emitter, PtySink
     from fieldvane.firmware_sim.scenario import builtin_scenario_path, load_scenario, simulate
-    from fieldvane.io.calfile import load_calibration, save_calibration
-    from fieldvane.io.commands.calibrate import summary_text
+    from fieldvane.io.commands.calibrate import calibrate_file, summary_text
     from fieldvane.io.errors import JobError
     from fieldvane.io.live import replay_capture, run_live
     from fieldvane.io.recording import write_recording
@@ -69,12 +67,8 @@ def run(args) -> int:
     _say(f"\n[1/6] calibration scan: {scan_run.n_samples} samples at "
          f"{', '.join(f'{b / 1000:g}' for b in sorted(set(np.round(scan_run.b_nT, -2))))} uT -> scan.csv")
 
-    # 2. calibrate, cache the lookup table, map the bound
-    b_scan = np.linalg.norm(scan_run.applied_b_nT, axis=1)
-    cal = fit_calibration(scan_run.applied_b_nT / b_scan[:, None], b_scan, scan_run.z, scan_run.f,
-                          scan_run.channels)
-    cal_path = save_calibration(cal, out / "cal.json", source={"scan": "scan.csv", "rows": scan_run.n_samples})
-    cal = load_calibration(cal_path)
+    # 2. calibrate (as `fieldvane calibrate` does), cache the lookup table, map the bound
+    cal, _, _ = calibrate_file(out / "scan.csv", out / "cal.json")
     _say("\n[2/6] calibration (cal.json):")
     _say("  " + summary_text(cal, "scan.csv", scan_run.n_samples, 0).replace("\n", "\n  "))
     table, info = load_or_build_table(cal, out / "tables")
@@ -82,9 +76,9 @@ def run(args) -> int:
          f"{info.size_bytes / 1024:.0f} KiB")
     plt = None if args.no_plots else _pyplot()
     from fieldvane.io.crlb_map import make_map, summary_lines
-    _, map_files, b_map = make_map(cal, out / "map", plt=plt)
+    maps, map_files, b_map = make_map(cal, out / "map", plt=plt)
     _say(f"  Cramer-Rao bound at {b_map:.0f} nT, per probe set:")
-    for line in summary_lines(make_map(cal, out / "map", plt=None)[0]):
+    for line in summary_lines(maps):
         _say("    " + line)
 
     # 3. simulated sensor on a pty

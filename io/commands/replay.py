@@ -58,6 +58,7 @@ def _is_capture(path) -> bool:
 
 def run(args) -> int:
     """Replay and write the estimates CSV; returns the exit code."""
+    from collections import Counter
     from pathlib import Path
 
     from fieldvane.estimator.flags import EstimateFlag
@@ -84,16 +85,11 @@ def run(args) -> int:
     solver = SnapshotSolver.from_calibration(cal, table, gain_free=args.gain_free)
 
     start = time.perf_counter()
-    counts: dict[int, int] = {}
-    rows = 0
+    flag_words: Counter = Counter()    # flags value -> samples; split into bits once at the end
     with EstimatesWriter(out) as writer:
         def emit(est):
-            nonlocal rows
             writer.write(est)
-            rows += 1
-            for bit in EstimateFlag:
-                if est.flags & bit:
-                    counts[bit] = counts.get(bit, 0) + 1
+            flag_words[int(est.flags)] += 1
 
         if args.mode == "track":
             tracker = Tracker(cal, settings, solver.initiate, report_channels=args.readouts)
@@ -112,25 +108,21 @@ def run(args) -> int:
 
             reader = RecordingReader(args.input)
             for block in _progress(reader, "chunks", args.no_progress):
-                if args.mode == "track":
-                    if args.readouts:
-                        ests = [tracker.step(s) for s in block]
-                    else:
-                        ests = tracker.run(block)
-                else:
-                    ests = solve_block(solver, block)
+                ests = tracker.run(block) if args.mode == "track" else solve_block(solver, block)
                 for est in ests:
                     emit(est)
             for w in reader.warnings:
                 print(f"warning: {w}", file=sys.stderr)
     seconds = time.perf_counter() - start
+    rows = sum(flag_words.values())
+    counts = {bit: sum(n for word, n in flag_words.items() if word & bit) for bit in EstimateFlag}
+    counts = {bit: n for bit, n in counts.items() if n}
     rate = rows / seconds if seconds > 0 else float("inf")
     print(f"replay ({args.mode}): {rows} estimates in {seconds:.2f} s ({rate:,.0f}/s) -> {out}")
     if counts:
-        print("flags: " + ", ".join(f"{EstimateFlag(b).name} {n}" for b, n in sorted(counts.items())))
+        print("flags: " + ", ".join(f"{bit.name} {n}" for bit, n in counts.items()))
     if args.mode == "track":
-        c = tracker.counters
-        print(f"tracker: {c.text() if hasattr(c, 'text') else c}")
+        print(f"tracker: {tracker.counters}")
     return 0
 
 
