@@ -10,7 +10,8 @@ from fieldvane.estimator.harmonics import harmonics, n_harmonics
 from fieldvane.estimator.magnitude_basis import MagnitudeBasis
 from fieldvane.estimator.physics import PhysicsParameters
 from fieldvane.estimator.response import ResponseModel
-from fieldvane.estimator.sphere import axis_angle_deg, exp_map, fibonacci_sphere, normalize, tangent_basis
+from fieldvane.estimator.sphere import (axis_angle_deg, exp_map, fibonacci_sphere, normalize, tangent_basis,
+                                         unit_to_spherical)
 
 PHYSICS_DEGREE = 2          # the ideal channel is exactly a degree-2 polynomial in u
 MIN_ROWS_PER_PARAMETER = 3  # common practice: a few data per fitted parameter before trusting a fit
@@ -22,11 +23,10 @@ class CalibrationError(ValueError):
 
 @dataclass
 class ChannelReport:
-    """Held-out quality of one channel: residual in volts, phase in degrees, amplitude in %."""
+    """Held-out quality of one channel: residual std of X and Y (V; the calibrated noise), phase (deg), amplitude (%)."""
 
     channel: str
     noise_std: float
-    heldout_rms: float
     heldout_phase_deg: float
     heldout_amplitude_pct: float
 
@@ -57,10 +57,6 @@ class Calibration:
     def magnitude_range_nT(self) -> tuple[float, float]:
         """Return the calibrated magnitude range (nT)."""
         return self.model.basis.range_nT
-
-    def magnitudes_nT(self, f: np.ndarray) -> np.ndarray:
-        """Return |B| (N, 2) in nT from the pump modulation frequencies f (N, 2) in Hz."""
-        return np.atleast_2d(f) / self.gammas_hz_per_nt
 
 
 def magnitude_knots(b_nT: np.ndarray, max_knots: int = 8, gap: float = 0.05) -> np.ndarray:
@@ -187,9 +183,7 @@ def sphere_coverage(u: np.ndarray, cells: int = 60, min_per_cell: int = 3):
     centers = fibonacci_sphere(cells)
     nearest = np.argmax(u @ centers.T, axis=1)
     counts = np.bincount(nearest, minlength=cells)
-    sparse = centers[counts < min_per_cell]
-    polar = np.degrees(np.arccos(np.clip(sparse[:, 2], -1, 1)))
-    azim = np.degrees(np.arctan2(sparse[:, 1], sparse[:, 0]))
+    polar, azim = np.degrees(unit_to_spherical(centers[counts < min_per_cell]))
     return float(np.mean(counts >= min_per_cell)), list(zip(polar.round(1), azim.round(1)))
 
 
@@ -248,10 +242,7 @@ def fit_calibration(u: np.ndarray, b_nT: np.ndarray, z: np.ndarray, f: np.ndarra
     else:
         pump0, probe0 = _init_axes_from_quadratic(u[densest], z[densest], channels)
     phys = _fit_physics(u, s_basis, z, channels, pump0, probe0)
-    if nominal_pumps is not None:
-        _align_signs(phys, nominal_pumps, nominal_probes)
-    else:
-        _align_signs(phys, None, None)
+    _align_signs(phys, nominal_pumps, nominal_probes)
 
     physics_pred = np.einsum("nk,ck->nc", s_basis, phys.gains) * phys.shapes(u)
     resid = z - physics_pred
@@ -321,7 +312,7 @@ def _channel_reports(channels, z, pred, noise) -> list[ChannelReport]:
         ratio = z[strong, k] / pred[strong, k]
         phase = np.degrees(np.angle(ratio))
         amp_pct = 100 * (np.abs(ratio) - 1)
-        out.append(ChannelReport(ch, float(noise[k]), float(noise[k]),
+        out.append(ChannelReport(ch, float(noise[k]),
                                  float(np.sqrt(np.mean(phase ** 2))), float(np.sqrt(np.mean(amp_pct ** 2)))))
     return out
 

@@ -20,8 +20,9 @@ from fieldvane.estimator.fisher import channel_selection, invert_2x2, probe_grou
 from fieldvane.estimator.flags import EstimateFlag
 from fieldvane.estimator.harmonics import harmonics, monomial_coefficients
 from fieldvane.estimator.lookup_table import DEFAULT_GRID_POINTS, LookupTable, build_table, calibration_key
-from fieldvane.estimator.magnitude import fuse_magnitudes
+from fieldvane.estimator.magnitude import fuse_magnitudes, magnitudes_from_frequencies
 from fieldvane.estimator.monomials import derivative_maps, monomials
+from fieldvane.estimator.response import to_real
 from fieldvane.estimator.sphere import angle_between, exp_map, tangent_basis
 
 F = EstimateFlag
@@ -207,7 +208,7 @@ class SnapshotSolver:
         if np.any(f_ok):
             b, _, disagree = fuse_magnitudes(f_hz[f_ok], self.gammas_hz_per_nt, s.magnitude_tolerance)
             res.b_nT[f_ok] = b
-            res.b_pair_nT[f_ok] = f_hz[f_ok] / self.gammas_hz_per_nt
+            res.b_pair_nT[f_ok] = magnitudes_from_frequencies(f_hz[f_ok], self.gammas_hz_per_nt)
             res.flags[np.flatnonzero(f_ok)[disagree]] |= int(F.MAGNITUDE_DISAGREE)
         if b_nT is not None:
             res.b_nT = np.broadcast_to(np.asarray(b_nT, float), (n,)).copy()
@@ -304,9 +305,7 @@ class SnapshotSolver:
         energy = np.sum(np.abs(zw) ** 2, axis=1)
         cost = np.broadcast_to(energy[:, None], (n, self.table.size)).copy()
         for g, mat in self._scan:
-            zr = np.empty((n, 2 * len(g)))
-            zr[:, 0::2], zr[:, 1::2] = zw[:, g].real, zw[:, g].imag
-            a = (weights[:, :, None] * zr[:, None, :]).reshape(n, -1)
+            a = (weights[:, :, None] * to_real(zw[:, g])[:, None, :]).reshape(n, -1)
             if self.gain_free:
                 # Best positive gain per probe: the residual falls by cross^2 / norm (in place: big arrays).
                 cross, norm = a @ mat[: a.shape[1]], wprod @ mat[a.shape[1]:]

@@ -84,11 +84,8 @@ def unit_to_spherical(u: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
     return np.arccos(np.clip(u[..., 2], -1, 1)), np.arctan2(u[..., 1], u[..., 0])
 
 
-def lambert_azimuthal(u: np.ndarray, center: np.ndarray | None = None) -> np.ndarray:
-    """Return equal-area (Lambert azimuthal) plane coordinates of unit vectors u about +z (or center)."""
+def lambert_azimuthal(u: np.ndarray) -> np.ndarray:
+    """Return equal-area (Lambert azimuthal) plane coordinates (..., 2) of unit vectors u about +z."""
     u = np.asarray(u, float)
-    if center is not None:
-        e1, e2 = tangent_basis(normalize(center))
-        u = np.stack([u @ e1, u @ e2, u @ normalize(center)], axis=-1)
     k = np.sqrt(2.0 / np.maximum(1.0 + u[..., 2], 1e-12))
     return np.stack([k * u[..., 0], k * u[..., 1]], axis=-1)

@@ -22,7 +22,7 @@ import numpy as np
 
 from fieldvane.estimator.harmonics import monomial_coefficients
 from fieldvane.estimator.monomials import derivative_maps, monomials, power_index
-from fieldvane.estimator.response import ResponseModel
+from fieldvane.estimator.response import ResponseModel, to_real
 from fieldvane.estimator.samples import channel_probe
 from fieldvane.estimator.sphere import fibonacci_sphere, tangent_basis
 
@@ -64,10 +64,7 @@ class TrackerModel:
         # Complex monomial coefficients per knot, row (value, d/dx, d/dy, d/dz) and channel: (K, M, 4, C).
         a = np.einsum("mj,ckj->kmc", mono_coef, model.coef)
         table = np.stack([a] + [np.einsum("kmc,mj->kjc", a, d) for d in derivative_maps(exps)], axis=2)
-        real = np.empty(table.shape[:-1] + (self.n_meas,))
-        real[..., 0::2] = table.real
-        real[..., 1::2] = table.imag
-        real /= self.sigma
+        real = to_real(table) / self.sigma
         self._starts, seg = _segment_polynomials(model.basis)
         self._starts_list = self._starts.tolist()
         self._range_nT = model.basis.range_nT

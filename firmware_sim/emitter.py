@@ -28,12 +28,11 @@ from typing import Callable, Iterator
 
 import numpy as np
 
-from .frames import (csv_header_line, csv_line, encode_frame, interleave_xy, metadata_lines,
-                     time_to_ns)
+from .frames import (TRUTH_COLUMNS, csv_header_line, csv_line, encode_frame, interleave_xy,
+                     metadata_lines, time_to_ns)
 from .scenario import SimulatedRun
 
 FORMATS = ("binary", "csv")
-TRUTH_COLUMNS = ("true_ux", "true_uy", "true_uz", "true_b_nT")
 _POLL_S = 0.05                 # how often blocked waits look at the stop event
 _PARTIAL_WRITE_LIMIT_S = 1.0   # real time: give up on the rest of a half-written record after this
 

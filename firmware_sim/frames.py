@@ -24,7 +24,6 @@ STATUS_BITS = {
     "PUMP_B_UNLOCKED": 1 << 2,
     "CELL_NOT_READY": 1 << 3,
 }
-STATUS_MASK = 0x000F
 
 # magic, version, kind, seq u32, t_ns u64, status u16, n_values u8, reserved u8, f_a f64, f_b f64
 _HEADER = struct.Struct("<2sBBIQHBBdd")
@@ -125,6 +124,9 @@ def time_to_ns(t_s: float) -> int:
 
 
 # ----- text input mode: recording-CSV lines -------------------------------------------------
+
+TRUTH_COLUMNS = ("true_ux", "true_uy", "true_uz", "true_b_nT")   # simulator ground truth, in this order
+
 
 def csv_columns(channels: Sequence[str], extra: Sequence[str] = ()) -> list[str]:
     """Return the recording-CSV column names for these channels: t, f_a, f_b, x/y pairs, extras."""

@@ -114,13 +114,6 @@ def _steady(parts: _Parts) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
     return p_l, np.stack([b0, b1], axis=1), omega
 
 
-def steady_polarization(config: SensorConfig, u: np.ndarray, b_nT) -> tuple[np.ndarray, np.ndarray]:
-    """Return the unmodulated steady state: longitudinal P_L (N, 2) and transverse beta parts (N, 2)."""
-    u, b = _prepare(u, b_nT)
-    p_l, beta0, _ = _steady(_Parts(config, u, b))
-    return p_l, beta0
-
-
 def _phasors(config: SensorConfig, parts: _Parts, f_mod: np.ndarray) -> np.ndarray:
     """Return probe phasors (N, P, 2) from precomputed parts and modulation frequencies (N, 2) Hz."""
     g, k = parts.damping, parts.k
@@ -149,18 +142,6 @@ def _phasors(config: SensorConfig, parts: _Parts, f_mod: np.ndarray) -> np.ndarr
         out[:, :, j] = (parts.q_long * mix_long[:, None]
                         + 0.5 * (parts.q_beta * mix_alpha[:, None] + q_alpha * mix_beta[:, None]))
     return out
-
-
-def probe_phasors(config: SensorConfig, u, b_nT, f_mod_hz=None) -> np.ndarray:
-    """Return the probe-signal phasors (N, P, 2) at each pump's modulation frequency (polarization units).
-
-    Entry [n, k, j] is the complex amplitude A of probe k's signal component at pump j's
-    frequency (real signal Re[A e^{i 2 pi f_j t}]), before any lock-in normalization or gain.
-    """
-    u, b = _prepare(u, b_nT)
-    parts = _Parts(config, u, b)
-    f_mod = parts.f_l if f_mod_hz is None else np.broadcast_to(np.asarray(f_mod_hz, float), parts.f_l.shape)
-    return _phasors(config, parts, f_mod)
 
 
 def response(config: SensorConfig, u, b_nT, f_mod_hz=None) -> tuple[np.ndarray, np.ndarray]:

@@ -28,7 +28,7 @@ try:
 except ModuleNotFoundError:  # Python < 3.11
     import tomli as tomllib
 
-from .frames import STATUS_BITS
+from .frames import STATUS_BITS, TRUTH_COLUMNS
 from .response import add_noise, response
 from .sensor import SensorConfig
 
@@ -258,19 +258,6 @@ def rotate_vectors(v: np.ndarray, axis: np.ndarray, angle_rad) -> np.ndarray:
     return v * np.cos(a) + cross * np.sin(a) + axis * dot * (1.0 - np.cos(a))
 
 
-def _rotation_between(a: np.ndarray, b: np.ndarray) -> tuple[np.ndarray, float]:
-    """Return (axis, angle rad) of the shortest rotation taking unit a to unit b."""
-    c = np.cross(a, b)
-    s, d = np.linalg.norm(c), float(a @ b)
-    if s < 1e-12:
-        if d > 0:
-            return np.array([0.0, 0.0, 1.0]), 0.0
-        helper = np.array([1.0, 0.0, 0.0]) if abs(a[0]) < 0.9 else np.array([0.0, 1.0, 0.0])
-        perp = np.cross(a, helper)
-        return perp / np.linalg.norm(perp), math.pi
-    return c / s, math.atan2(s, d)
-
-
 # ----- trajectory segments --------------------------------------------------------------
 
 @dataclass(frozen=True)
@@ -483,13 +470,12 @@ class GainDrift:
 
     def factor(self, t: np.ndarray) -> np.ndarray:
         """Return the gain multiplier (N,) at times t (s); 1 outside the drift."""
-        end = math.inf if self.duration_s is None else self.start_s + self.duration_s
         if self.mode == "linear":
+            end = math.inf if self.duration_s is None else self.start_s + self.duration_s
             tau = np.clip(t, self.start_s, end) - self.start_s
             return 1.0 + self.rate_pct_per_s / 100.0 * tau
-        inside = (t >= self.start_s) & (t < end)
         wave = 1.0 + self.amplitude_pct / 100.0 * np.sin(2 * np.pi * (t - self.start_s) / self.period_s)
-        return np.where(inside, wave, 1.0)
+        return np.where(_window(t, self.start_s, self.duration_s), wave, 1.0)
 
 
 @dataclass(frozen=True)
@@ -885,8 +871,7 @@ class SimulatedRun:
         if self.applied_b_nT is not None:
             for i, c in enumerate(("bx_nT", "by_nT", "bz_nT")):
                 cols[c] = self.applied_b_nT[:, i]
-        cols["true_ux"], cols["true_uy"], cols["true_uz"] = self.u[:, 0], self.u[:, 1], self.u[:, 2]
-        cols["true_b_nT"] = self.b_nT
+        cols.update(zip(TRUTH_COLUMNS, (self.u[:, 0], self.u[:, 1], self.u[:, 2], self.b_nT)))
         return cols
 
     def metadata(self) -> dict[str, str]:

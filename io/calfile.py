@@ -120,7 +120,7 @@ def load_calibration(path: str | Path) -> Calibration:
         phys = PhysicsParameters(np.array([p["direction"] for p in pumps], float),
                                  np.array([p["direction"] for p in probes], float), gains,
                                  np.array([c["handedness"] for c in doc["channels"]], float), channels)
-        reports = [ChannelReport(c["id"], float(c["noise_V"]), float(c["noise_V"]),
+        reports = [ChannelReport(c["id"], float(c["noise_V"]),
                                  float(c["heldout_phase_deg"]), float(c["heldout_amplitude_pct"]))
                    for c in doc["channels"]]
         diag = doc.get("diagnostics", {})

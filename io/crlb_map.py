@@ -87,9 +87,10 @@ def write_csv(path, m: ProbeSetMap) -> Path:
     return path
 
 
-# Plot charts: the upper hemisphere seen from +z (x right, y up), the lower one seen from -z
-# (x right, y down), each a right-handed frame (e1, e2, center) so neither view is mirrored.
-HEMISPHERES = (("upper hemisphere (uz > 0), seen from +z", np.array([[1.0, 0, 0], [0, 1.0, 0], [0, 0, 1.0]])),
+# Plot charts (also those of io/plots.py): the upper hemisphere seen from +z (x right, y up), the
+# lower one seen from -z (x right, y down), each a right-handed frame (e1, e2, center) so neither
+# view is mirrored.
+HEMISPHERES = (("upper hemisphere (uz >= 0), seen from +z", np.array([[1.0, 0, 0], [0, 1.0, 0], [0, 0, 1.0]])),
                ("lower hemisphere (uz < 0), seen from -z", np.array([[1.0, 0, 0], [0, -1.0, 0], [0, 0, -1.0]])))
 
 

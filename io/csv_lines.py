@@ -9,6 +9,7 @@ import numpy as np
 
 from fieldvane.estimator.samples import CHANNELS_ONE_PROBE, CHANNELS_TWO_PROBES, Sample
 from fieldvane.io.errors import InputError
+from fieldvane.io.recording import BASE_COLUMNS, channel_columns, is_float
 
 MAX_LINE_LEN = 4096          # a longer line is garbage: dropped up to the next newline
 MAX_METADATA_KEYS = 256      # '# key: value' comments kept (the rest are counted only)
@@ -28,26 +29,24 @@ class CsvLayout:
             if name in index:
                 raise InputError(f"column '{name}' appears twice", source, line, name)
             index[name] = i
-        for name in ("t", "f_a", "f_b"):
+        for name in BASE_COLUMNS:
             if name not in index:
                 raise InputError("required column is missing", source, line, name)
         self.t_i, self.fa_i, self.fb_i = index["t"], index["f_a"], index["f_b"]
         plan = []
         for ch in CHANNELS_TWO_PROBES:
-            xy = (f"x_{ch}" in index, f"y_{ch}" in index)
-            rth = (f"r_{ch}" in index, f"th_{ch}" in index)
-            if all(xy):
-                plan.append((ch, False, index[f"x_{ch}"], index[f"y_{ch}"]))
-            elif all(rth):
-                plan.append((ch, True, index[f"r_{ch}"], index[f"th_{ch}"]))
-            elif any(xy) or any(rth):
-                missing = [n for n in (f"x_{ch}", f"y_{ch}") if n not in index] if any(xy) else \
-                          [n for n in (f"r_{ch}", f"th_{ch}") if n not in index]
-                raise InputError(f"channel {ch} needs both columns of its pair", source, line,
-                                 missing[0])
+            xy, rth = channel_columns(ch, False), channel_columns(ch, True)
+            if all(n in index for n in xy):
+                plan.append((ch, False, index[xy[0]], index[xy[1]]))
+            elif all(n in index for n in rth):
+                plan.append((ch, True, index[rth[0]], index[rth[1]]))
+            elif any(n in index for n in xy + rth):
+                pair = xy if any(n in index for n in xy) else rth
+                missing = next(n for n in pair if n not in index)
+                raise InputError(f"channel {ch} needs both columns of its pair", source, line, missing)
             elif ch in CHANNELS_ONE_PROBE:
-                raise InputError(f"channel {ch} needs x_{ch},y_{ch} or r_{ch},th_{ch}", source,
-                                 line, f"x_{ch}")
+                raise InputError(f"channel {ch} needs {','.join(xy)} or {','.join(rth)}", source,
+                                 line, xy[0])
         if len(plan) == 3:
             ch = next(c for c in CHANNELS_TWO_PROBES if c not in [p[0] for p in plan])
             raise InputError(f"probe 2 is incomplete: channel {ch} is missing", source, line,
@@ -83,13 +82,7 @@ class CsvLayout:
 
 def _looks_like_header(fields: list[str]) -> bool:
     """Return True when no field parses as a number (a header row, not a data row)."""
-    for f in fields:
-        try:
-            float(f)
-            return False
-        except ValueError:
-            pass
-    return True
+    return not any(map(is_float, fields))
 
 
 class CsvLineDecoder:

@@ -13,15 +13,11 @@ from pathlib import Path
 import numpy as np
 
 from fieldvane.estimator.flags import EstimateFlag
-from fieldvane.estimator.sphere import lambert_azimuthal
+# The same two hemisphere views (label, frame rows e1, e2, center) and projection as the CRLB map.
+from fieldvane.io.crlb_map import HEMISPHERES, lambert_forward
 
 DPI = 110
 MAX_TRACK_POINTS = 20000     # the track scatter is thinned evenly beyond this (the figure looks the same)
-
-# The same two views as the CRLB map: upper hemisphere seen from +z (x right, y up), lower one seen
-# from -z (x right, y down); rows are (e1, e2, center) of a right-handed frame, so neither is mirrored.
-HEMISPHERES = (("upper hemisphere (uz >= 0), seen from +z", np.array([[1.0, 0, 0], [0, 1.0, 0], [0, 0, 1.0]])),
-               ("lower hemisphere (uz < 0), seen from -z", np.array([[1.0, 0, 0], [0, -1.0, 0], [0, 0, -1.0]])))
 
 
 class PlotsUnavailable(ImportError):
@@ -63,7 +59,7 @@ def time_axis(est: dict) -> tuple[float, str]:
 
 def disk_xy(u: np.ndarray, frame: np.ndarray) -> np.ndarray:
     """Return equal-area plane coordinates (..., 2) of unit vectors u on a hemisphere scaled to the unit disk."""
-    return lambert_azimuthal(np.asarray(u, float) @ frame.T) / math.sqrt(2.0)
+    return lambert_forward(u, frame) / math.sqrt(2.0)
 
 
 def legend_above(ax, ncol: int = 4) -> None:
@@ -222,11 +218,14 @@ def _share(mask: np.ndarray) -> str:
 
 def plot_flags(path, est: dict) -> Path:
     """Return the PNG path of the flags timeline: one row per flag bit that occurs, bars where it is set."""
+    from fieldvane.io.report import median_period
+
     t0, tlabel = time_axis(est)
     t = np.asarray(est["t"], float) - t0
     flags = np.asarray(est["flags"], np.int64)
-    d = np.diff(np.unique(t))
-    period = float(np.median(d)) if d.size else 1.0
+    period = median_period(t)
+    if not math.isfinite(period):
+        period = 1.0
     present = [f for f in EstimateFlag if np.any(flags & int(f))]
     extra = int(np.bitwise_or.reduce(flags)) & ~sum(int(f) for f in EstimateFlag) if flags.size else 0
     rows = [(f"{f.name} (bit {int(f).bit_length() - 1})", (flags & int(f)) != 0) for f in present]

@@ -219,21 +219,6 @@ def concatenate_blocks(blocks: list[SampleBlock]) -> SampleBlock:
     return out
 
 
-def block_columns(block: SampleBlock) -> dict[str, np.ndarray]:
-    """Return the recording CSV columns (name -> array) of a SampleBlock, in DESIGN order."""
-    cols: dict[str, np.ndarray] = {"t": block.t, "f_a": block.f[:, 0], "f_b": block.f[:, 1]}
-    for k, ch in enumerate(block.channels):
-        cols[f"x_{ch}"] = block.z[:, k].real
-        cols[f"y_{ch}"] = block.z[:, k].imag
-    if block.applied_b_nT is not None:
-        for i, c in enumerate(FIELD_COLUMNS):
-            cols[c] = block.applied_b_nT[:, i]
-    for c in TRUTH_COLUMNS:
-        if c in block.truth:
-            cols[c] = block.truth[c]
-    return cols
-
-
 def write_recording(path: str | Path, columns: dict[str, np.ndarray],
                     metadata: dict[str, str] | None = None) -> None:
     """Write a recording CSV: '# key: value' metadata lines, a header, then one row per sample."""

@@ -216,6 +216,7 @@ def _replay_summary(cal, block, settings, solver, bar, name: str) -> dict:
     """Return io.report.summarize numbers of the tracker run with `settings` over the whole block."""
     import numpy as np
 
+    from fieldvane.estimator.flags import EstimateFlag
     from fieldvane.estimator.samples import SampleBlock
     from fieldvane.estimator.tracker import Tracker
     from fieldvane.io.report import TRUTH_KEYS, summarize
@@ -231,28 +232,15 @@ def _replay_summary(cal, block, settings, solver, bar, name: str) -> dict:
         bar(sl.stop, n, f"replay {name}")
     u = np.concatenate([p.u for p in parts])
     est = {"t": np.concatenate([p.t for p in parts]), "ux": u[:, 0], "uy": u[:, 1], "uz": u[:, 2]}
-    for key, attr in (("b_nT", "b_nT"), ("sigma_deg", "sigma_deg"), ("flags", "flags"), ("nis", "nis"),
-                      ("nis_dof", "nis_dof"), ("b_a_nT", "b_a_nT"), ("b_b_nT", "b_b_nT")):
-        est[key] = np.concatenate([getattr(p, attr) for p in parts])
+    for key in ("b_nT", "sigma_deg", "flags", "nis", "nis_dof", "b_a_nT", "b_b_nT"):
+        est[key] = np.concatenate([getattr(p, key) for p in parts])
     truth = None
     if all(k in block.truth for k in TRUTH_KEYS):
         truth = {"t": np.asarray(block.t, float), **{k: np.asarray(block.truth[k], float) for k in TRUTH_KEYS}}
     summary = summarize(est, truth)
-    summary["gated_fraction"] = float(np.mean((est["flags"] & _gated_bit()) != 0))
-    summary["reacquisitions"] = int(np.sum((est["flags"] & _reacquired_bit()) != 0))
+    summary["gated_fraction"] = float(np.mean((est["flags"] & int(EstimateFlag.GATED)) != 0))
+    summary["reacquisitions"] = int(np.sum((est["flags"] & int(EstimateFlag.REACQUIRED)) != 0))
     return summary
-
-
-def _gated_bit() -> int:
-    from fieldvane.estimator.flags import EstimateFlag
-
-    return int(EstimateFlag.GATED)
-
-
-def _reacquired_bit() -> int:
-    from fieldvane.estimator.flags import EstimateFlag
-
-    return int(EstimateFlag.REACQUIRED)
 
 
 # ----------------------------------------------------------------------------------------- text
