@@ -11,11 +11,11 @@ import numpy as np
 from fieldvane.estimator.flags import EstimateFlag
 from fieldvane.estimator.sphere import angle_between
 from fieldvane.io.errors import InputError
+from fieldvane.io.recording import TRUTH_COLUMNS as TRUTH_KEYS
 
 CAUTION = ("The output is a measurement with stated uncertainty, not a safety or navigation instrument "
            "by itself. Check the `flags` column and `sigma_deg` before acting on a direction.")
 PLOTS_HINT = "install fieldvane[plots] for the figures (pip install 'fieldvane[plots]')"
-TRUTH_KEYS = ("true_ux", "true_uy", "true_uz", "true_b_nT")
 NIS_BAND = (0.025, 0.975)            # central 95% interval of the chi-square distribution
 DEFAULT_CHANNELS = 4                 # two probes x two pumps, when nothing in the file says otherwise
 KNOWN_BITS = sum(int(f) for f in EstimateFlag)
@@ -282,10 +282,18 @@ def load_truth(path: str | Path) -> tuple[dict[str, np.ndarray], list[str]]:
     from fieldvane.io.recording import read_recording
 
     block, warnings = read_recording(path)
-    if not all(k in block.truth for k in TRUTH_KEYS):
+    truth = truth_of(block)
+    if truth is None:
         raise InputError("no ground-truth columns (true_ux, true_uy, true_uz, true_b_nT); only simulator "
                          "recordings carry them", str(path), None, "true_ux")
-    return {"t": np.asarray(block.t, float), **{k: np.asarray(block.truth[k], float) for k in TRUTH_KEYS}}, warnings
+    return truth, warnings
+
+
+def truth_of(block) -> dict[str, np.ndarray] | None:
+    """Return a SampleBlock's ground truth (t s, true_u* sensor frame, true_b_nT nT), or None without it."""
+    if not all(k in block.truth for k in TRUTH_KEYS):
+        return None
+    return {"t": np.asarray(block.t, float), **{k: np.asarray(block.truth[k], float) for k in TRUTH_KEYS}}
 
 
 # ---------------------------------------------------------------------------------------- text

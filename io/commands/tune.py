@@ -219,7 +219,7 @@ def _replay_summary(cal, block, settings, solver, bar, name: str) -> dict:
     from fieldvane.estimator.flags import EstimateFlag
     from fieldvane.estimator.samples import SampleBlock
     from fieldvane.estimator.tracker import Tracker
-    from fieldvane.io.report import TRUTH_KEYS, summarize
+    from fieldvane.io.report import summarize, truth_of
 
     tracker = Tracker(cal, settings, solver.initiate)
     n = len(block)
@@ -234,10 +234,7 @@ def _replay_summary(cal, block, settings, solver, bar, name: str) -> dict:
     est = {"t": np.concatenate([p.t for p in parts]), "ux": u[:, 0], "uy": u[:, 1], "uz": u[:, 2]}
     for key in ("b_nT", "sigma_deg", "flags", "nis", "nis_dof", "b_a_nT", "b_b_nT"):
         est[key] = np.concatenate([getattr(p, key) for p in parts])
-    truth = None
-    if all(k in block.truth for k in TRUTH_KEYS):
-        truth = {"t": np.asarray(block.t, float), **{k: np.asarray(block.truth[k], float) for k in TRUTH_KEYS}}
-    summary = summarize(est, truth)
+    summary = summarize(est, truth_of(block))
     summary["gated_fraction"] = float(np.mean((est["flags"] & int(EstimateFlag.GATED)) != 0))
     summary["reacquisitions"] = int(np.sum((est["flags"] & int(EstimateFlag.REACQUIRED)) != 0))
     return summary
