@@ -32,6 +32,7 @@ class Sample:
     z: np.ndarray  # complex, one entry per channel in `channels` order (lock-in volts)
     channels: tuple[str, ...] = CHANNELS_TWO_PROBES
     status: int = 0
+    restarted: bool = False  # the source restarted just before this sample (sequence reset, new capture run)
 
 
 @dataclass
