@@ -1,24 +1,47 @@
-"""Calibration: fit the physics part and the smooth corrections of the response model to a scan."""
+"""Calibration: screen the scan's rows, fit the physics part and the smooth corrections of the response model.
+
+Order of work: (1) rows that cannot be used (non-finite, absurd lock-in values, a pump frequency
+that disagrees with the applied field) are set aside and named; (2) a robust screening fit rejects
+wild rows (estimator/outliers.py); (3) the physics part (estimator/physics.py) is fitted by
+variable projection (estimator/physics_fit.py), which also gives each beam axis its uncertainty;
+(4) harmonic corrections are fitted to its residual, their degree chosen by k-fold held-out
+residual; (5) rows whose held-out residual fails the chi-square test are rejected and (3)-(4)
+repeated; (6) both parts are folded into one coefficient table, and the model's accuracy between
+the scanned magnitude levels is checked by leaving each level out (estimator/magnitude_error.py).
+"""
 
 from __future__ import annotations
 
 from dataclasses import dataclass, field
 
 import numpy as np
+
 from fieldvane.estimator.constants import CELL_PAIRS, gamma_hz_per_nt, identify_isotope
 from fieldvane.estimator.harmonics import harmonics, n_harmonics
 from fieldvane.estimator.magnitude_basis import MagnitudeBasis
+from fieldvane.estimator.magnitude_error import MagnitudeCheck, check_magnitudes
+from fieldvane.estimator.outliers import robust_scale, row_statistic, row_threshold, screen_rows
 from fieldvane.estimator.physics import PhysicsParameters
+from fieldvane.estimator.physics_fit import N_LINEAR_TERMS, PhysicsFitError, fit_physics
 from fieldvane.estimator.response import ResponseModel
-from fieldvane.estimator.sphere import (axis_angle_deg, exp_map, fibonacci_sphere, normalize, tangent_basis,
-                                         unit_to_spherical)
+from fieldvane.estimator.sphere import axis_angle_deg, fibonacci_sphere, normalize, unit_to_spherical
 
 PHYSICS_DEGREE = 2          # the ideal channel is exactly a degree-2 polynomial in u
 MIN_ROWS_PER_PARAMETER = 3  # common practice: a few data per fitted parameter before trusting a fit
+ABSURD_V = 1e6              # no lock-in reports megavolts: such a value is a corrupted row
+FREQUENCY_TOLERANCE = 0.05  # a pump frequency this far (relative) from gamma |B| belongs to another row
+SCREEN_DEGREE = 3           # harmonic degree of the robust screening fit
+SCREEN_FACTOR = 100.0       # screening rejects only wild rows (x chi-square limit); the full model does the rest
+FAMILY_ALPHA = 0.01         # chance that a clean scan loses any row to the outlier test (common practice)
+TRUNCATION_FRACTION = 0.05  # physics harmonics smaller than this fraction of the noise are dropped
 
 
 class CalibrationError(ValueError):
-    """The scan cannot support a calibration (too few points, too little of the sphere, ...)."""
+    """The scan cannot support a calibration; `unusable` is True when the input itself is at fault."""
+
+    def __init__(self, message: str, unusable: bool = True):
+        super().__init__(message)
+        self.unusable = unusable
 
 
 @dataclass
@@ -29,6 +52,21 @@ class ChannelReport:
     noise_std: float
     heldout_phase_deg: float
     heldout_amplitude_pct: float
+
+
+@dataclass
+class RejectedRow:
+    """A scan row left out of the fit: its index in the arrays, file line if known, reason and detail."""
+
+    index: int
+    line: int | None
+    reason: str            # 'non-finite', 'absurd', 'frequency', 'outlier'
+    channel: str | None
+    detail: str
+
+    def where(self) -> str:
+        """Return 'line N' when the file line is known, else 'data row N' (1-based)."""
+        return f"line {self.line}" if self.line is not None else f"data row {self.index + 1}"
 
 
 @dataclass
@@ -47,6 +85,11 @@ class Calibration:
     warnings: list[str] = field(default_factory=list)
     nominal_pump_axes: np.ndarray | None = None
     nominal_probe_axes: np.ndarray | None = None
+    direction_std_deg: np.ndarray | None = None   # (2 + P,) pumps a, b then probes: sqrt(trace) of 2x2 cov
+    rejected_rows: list[RejectedRow] = field(default_factory=list)
+    correction_rms_V: np.ndarray | None = None    # (C,) sphere RMS of the corrections at the worst knot
+    magnitude_check: MagnitudeCheck | None = None
+    fit_info: dict = field(default_factory=dict)  # physics-fit diagnostics (iterations, inflation, stds)
 
     @property
     def gammas_hz_per_nt(self) -> np.ndarray:
@@ -57,6 +100,19 @@ class Calibration:
     def magnitude_range_nT(self) -> tuple[float, float]:
         """Return the calibrated magnitude range (nT)."""
         return self.model.basis.range_nT
+
+    def model_error_ratio(self, b_nT) -> np.ndarray:
+        """Return (N, C): the model's expected error variance at |B| = b_nT (nT, (N,)) over each channel's noise variance.
+
+        Averaged over the sphere, per component (X or Y). 0 where the scan verified the model (at
+        its magnitude levels), growing between sparse levels and outside the range; +inf where the
+        scan says nothing (a single level, far from it). A tracker adds ratio * noise_std^2 to its
+        measurement variance.
+        """
+        b = np.atleast_1d(np.asarray(b_nT, float))
+        if self.magnitude_check is None:
+            return np.zeros((b.size, self.model.n_channels))
+        return self.magnitude_check.ratio(b)
 
 
 def magnitude_knots(b_nT: np.ndarray, max_knots: int = 8, gap: float = 0.05) -> np.ndarray:
@@ -104,78 +160,16 @@ def _init_axes_from_quadratic(u, z, channels):
     return np.array(pump_axes), np.array([probes[k] for k in sorted(probes)])
 
 
-def _fit_gains(shapes, s_basis, z):
-    """Least-squares complex gains (C, K) for fixed channel shapes (N, C); returns gains, residual."""
-    gains = np.empty((shapes.shape[1], s_basis.shape[1]), complex)
-    resid = np.empty_like(z)
-    for k in range(shapes.shape[1]):
-        design = s_basis * shapes[:, k:k + 1]
-        g, *_ = np.linalg.lstsq(design, z[:, k], rcond=None)
-        gains[k] = g
-        resid[:, k] = z[:, k] - design @ g
-    return gains, resid
-
-
-def _fit_physics(u, s_basis, z, channels, pump0, probe0):
-    """Fit beam axes, per-knot complex gains and handedness by variable projection."""
-    n_probe = probe0.shape[0]
-    axes0 = np.vstack([pump0, probe0])
-    frames = [tangent_basis(a) for a in axes0]
-
-    def axes_from(params):
-        out = np.empty_like(axes0)
-        for i, (a0, (e1, e2)) in enumerate(zip(axes0, frames)):
-            out[i] = exp_map(a0, params[2 * i] * e1 + params[2 * i + 1] * e2)
-        return out
-
-    def params_of(axes, hand):
-        return PhysicsParameters(axes[:2], axes[2:], np.zeros((len(channels), s_basis.shape[1]), complex),
-                                 hand, tuple(channels))
-
-    hand = np.ones(len(channels))
-    # Handedness is discrete: choose per channel the sign that fits better at the initial axes.
-    for k in range(len(channels)):
-        best = None
-        for sign in (1.0, -1.0):
-            hand_try = hand.copy()
-            hand_try[k] = sign
-            _, r = _fit_gains(params_of(axes0, hand_try).shapes(u), s_basis, z)
-            cost = np.sum(np.abs(r[:, k]) ** 2)
-            if best is None or cost < best[0]:
-                best = (cost, sign)
-        hand[k] = best[1]
-
-    def residuals(params):
-        _, r = _fit_gains(params_of(axes_from(params), hand).shapes(u), s_basis, z)
-        return np.concatenate([r.real.ravel(), r.imag.ravel()])
-
-    from scipy.optimize import least_squares  # only the fit needs it; the live loop never does
-
-    sol = least_squares(residuals, np.zeros(2 * (2 + n_probe)), method="lm", x_scale=0.01)
-    axes = axes_from(sol.x)
-    phys = params_of(axes, hand)
-    phys.gains, _ = _fit_gains(phys.shapes(u), s_basis, z)
-    return phys
-
-
 def _correction_design(u, s_basis, degree):
     y = harmonics(degree, u)
     return (s_basis[:, :, None] * y[:, None, :]).reshape(u.shape[0], -1)
 
 
-def _solve_ridge(design, target, ridge):
-    """Tikhonov-regularized least squares for complex targets (N, C) -> (P, C)."""
-    gram = design.T @ design
-    gram[np.diag_indices_from(gram)] += ridge * (np.trace(gram) / gram.shape[0] + 1e-30)
-    return np.linalg.solve(gram, design.T @ target)
-
-
-def _physics_to_harmonics(phys: PhysicsParameters) -> np.ndarray:
-    """Exact degree-2 harmonic coefficients (C, K, 9) of the physics part."""
-    grid = fibonacci_sphere(200)
-    y = harmonics(PHYSICS_DEGREE, grid)
-    shape_coef, *_ = np.linalg.lstsq(y, phys.shapes(grid), rcond=None)  # (9, C)
-    return phys.gains[:, :, None] * shape_coef.T[:, None, :]
+def _solve_gram(gram, rhs, ridge):
+    """Tikhonov-regularized normal equations: (G + ridge * mean diag) x = rhs."""
+    g = gram.copy()
+    g[np.diag_indices_from(g)] += ridge * (np.trace(g) / g.shape[0] + 1e-30)
+    return np.linalg.solve(g, rhs)
 
 
 def sphere_coverage(u: np.ndarray, cells: int = 60, min_per_cell: int = 3):
@@ -187,101 +181,63 @@ def sphere_coverage(u: np.ndarray, cells: int = 60, min_per_cell: int = 3):
     return float(np.mean(counts >= min_per_cell)), list(zip(polar.round(1), azim.round(1)))
 
 
-def fit_calibration(u: np.ndarray, b_nT: np.ndarray, z: np.ndarray, f: np.ndarray, channels,
-                    nominal_pumps: np.ndarray | None = None, nominal_probes: np.ndarray | None = None,
-                    max_correction_degree: int = 6, folds: int = 5, cell: str = "Rb",
-                    ridge: float = 1e-7, seed: int = 0) -> Calibration:
-    """Fit a Calibration from scan arrays: u (N,3) applied direction, b_nT (N,), z (N,C) V, f (N,2) Hz."""
-    u = normalize(np.asarray(u, float))
-    b_nT = np.asarray(b_nT, float)
-    z = np.asarray(z, complex)
-    channels = tuple(channels)
+def _sane_rows(u, b_nT, z, f, channels, lines) -> tuple[np.ndarray, list[RejectedRow]]:
+    """Return (usable mask (N,), rejected rows) for non-finite, absurd and frequency-mismatched rows."""
     n = u.shape[0]
-    warnings: list[str] = []
-    if n < 40:
-        raise CalibrationError(f"only {n} usable rows; a calibration needs at least 40")
+    rejected: list[RejectedRow] = []
 
-    try:
-        candidates = CELL_PAIRS[cell]
-    except KeyError:
-        raise CalibrationError(f"unknown cell element {cell!r}; known: {', '.join(CELL_PAIRS)}") from None
-    isotopes = []
-    for j, pump in enumerate("ab"):
-        ratio = float(np.median(np.asarray(f)[:, j] / b_nT))
-        try:
-            isotopes.append(identify_isotope(ratio, candidates))
-        except ValueError as exc:
-            raise CalibrationError(f"pump {pump}: {exc}") from None
-    if isotopes[0] == isotopes[1]:
-        raise CalibrationError(f"both pumps appear modulated at the {isotopes[0]} Larmor frequency")
+    def line_of(i):
+        return None if lines is None else int(lines[i])
 
-    coverage, sparse = sphere_coverage(u)
-    if coverage < 0.5:
-        raise CalibrationError(f"the scan covers only {coverage:.0%} of the sphere (at least 50% of "
-                               f"60 equal cells need 3 samples); extend the scan")
-    if coverage < 0.9:
-        warnings.append(f"sphere coverage {coverage:.0%}: the model is extrapolated in {len(sparse)} "
-                        f"sparse cells; directions there are less trustworthy")
+    with np.errstate(invalid="ignore", over="ignore"):
+        finite = (np.all(np.isfinite(u), axis=1) & np.isfinite(b_nT) & np.all(np.isfinite(f), axis=1)
+                  & np.all(np.isfinite(z.real) & np.isfinite(z.imag), axis=1))
+        norm = np.linalg.norm(np.where(np.isfinite(u), u, 0.0), axis=1)
+        finite &= (norm > 0) & (b_nT > 0) & np.all(f > 0, axis=1)
+    for i in np.flatnonzero(~finite):
+        rejected.append(RejectedRow(int(i), line_of(i), "non-finite", None,
+                                    "non-finite or non-positive field, frequency or lock-in value"))
+    big = np.maximum(np.abs(np.where(np.isfinite(z.real), z.real, 0.0)),
+                     np.abs(np.where(np.isfinite(z.imag), z.imag, 0.0)))        # (N, C)
+    absurd = finite & np.any(big > ABSURD_V, axis=1)
+    for i in np.flatnonzero(absurd):
+        k = int(np.argmax(big[i]))
+        rejected.append(RejectedRow(int(i), line_of(i), "absurd", channels[k],
+                                    f"lock-in value {big[i, k]:.3g} V (limit {ABSURD_V:.0e} V)"))
+    ok = finite & ~absurd
+    if ok.sum() >= 2:
+        ratio = f[ok] / b_nT[ok, None]
+        med = np.median(ratio, axis=0)
+        off = np.zeros((n, 2))
+        off[ok] = np.abs(ratio / med - 1.0)
+        bad_f = ok & np.any(off > FREQUENCY_TOLERANCE, axis=1)
+        for i in np.flatnonzero(bad_f):
+            j = int(np.argmax(off[i]))
+            rejected.append(RejectedRow(int(i), line_of(i), "frequency", None,
+                                        f"f_{'ab'[j]} / |B| is {off[i, j]:.0%} away from the scan's median "
+                                        f"(applied field and frequency disagree)"))
+        ok &= ~bad_f
+    return ok, rejected
 
-    knots = magnitude_knots(b_nT)
-    basis = MagnitudeBasis(knots)
-    s_basis = basis(b_nT)
-    nearest_knot = np.argmin(np.abs(np.log(b_nT)[:, None] - np.log(knots)[None, :]), axis=1)
-    per_knot = np.bincount(nearest_knot, minlength=len(knots))
-    if len(knots) == 1:
-        warnings.append(f"single magnitude {knots[0]:.0f} nT: the model holds only near it; "
-                        f"estimates far from it are flagged OUTSIDE_CALIBRATION")
-    if per_knot.min() < MIN_ROWS_PER_PARAMETER * n_harmonics(PHYSICS_DEGREE):
-        raise CalibrationError(f"magnitude {knots[np.argmin(per_knot)]:.0f} nT has only "
-                               f"{per_knot.min()} rows; need at least "
-                               f"{MIN_ROWS_PER_PARAMETER * n_harmonics(PHYSICS_DEGREE)}")
 
-    densest = nearest_knot == np.argmax(per_knot)
-    if nominal_pumps is not None and nominal_probes is not None:
-        pump0, probe0 = normalize(nominal_pumps), normalize(nominal_probes)
-    else:
-        pump0, probe0 = _init_axes_from_quadratic(u[densest], z[densest], channels)
-    phys = _fit_physics(u, s_basis, z, channels, pump0, probe0)
-    _align_signs(phys, nominal_pumps, nominal_probes)
+def _check_channels(z: np.ndarray, channels) -> None:
+    """Refuse a scan with a dead channel: zero, or the same value, in every usable row."""
+    for k, ch in enumerate(channels):
+        v = z[:, k]
+        spread = robust_scale((v - np.median(v.real) - 1j * np.median(v.imag))[:, None])[0]
+        if np.all(v == 0):
+            raise CalibrationError(f"channel {ch} is zero in every row: is its lock-in connected?")
+        if spread == 0 or np.ptp(v.real) + np.ptp(v.imag) == 0:
+            raise CalibrationError(f"channel {ch} does not change with the field direction in most rows "
+                                   f"(constant value): is its lock-in connected?")
 
-    physics_pred = np.einsum("nk,ck->nc", s_basis, phys.gains) * phys.shapes(u)
-    resid = z - physics_pred
 
-    # Correction degree by k-fold held-out residual; the smallest degree within 2% of the best wins.
-    rng = np.random.default_rng(seed)
-    fold_of = rng.integers(0, folds, n)
-    scores: dict[int, float] = {-1: float(np.sqrt(np.mean(np.abs(resid) ** 2) / 2))}
-    heldout = {-1: resid}
-    for degree in range(0, max_correction_degree + 1):
-        n_par = basis.size * n_harmonics(degree)
-        if per_knot.min() < MIN_ROWS_PER_PARAMETER * n_harmonics(degree) or n * (folds - 1) / folds < 2 * n_par:
-            break
-        design = _correction_design(u, s_basis, degree)
-        pred = np.empty_like(resid)
-        for k in range(folds):
-            train, test = fold_of != k, fold_of == k
-            sol = _solve_ridge(design[train], resid[train], ridge)
-            pred[test] = design[test] @ sol
-        r = resid - pred
-        heldout[degree] = r
-        scores[degree] = float(np.sqrt(np.mean(np.abs(r) ** 2) / 2))
-    best = min(scores.values())
-    chosen = min(d for d, s in scores.items() if s <= 1.02 * best)
-
-    degree = max(PHYSICS_DEGREE, chosen)
-    coef = np.zeros((len(channels), basis.size, n_harmonics(degree)), complex)
-    coef[:, :, :n_harmonics(PHYSICS_DEGREE)] = _physics_to_harmonics(phys)
-    if chosen >= 0:
-        sol = _solve_ridge(_correction_design(u, s_basis, chosen), resid, ridge)
-        coef[:, :, :n_harmonics(chosen)] += sol.T.reshape(len(channels), basis.size, n_harmonics(chosen))
-
-    r = heldout[chosen]
-    noise = np.sqrt(np.mean(np.abs(r) ** 2, axis=0) / 2)
-    model = ResponseModel(channels, degree, knots, coef, noise)
-    reports = _channel_reports(channels, z, z - r, noise)
-    return Calibration(model, phys, tuple(isotopes), chosen, reports, scores, coverage, sparse, n,
-                       warnings, None if nominal_pumps is None else normalize(nominal_pumps),
-                       None if nominal_probes is None else normalize(nominal_probes))
+def _choose_start_level(b_nT, knots, nearest_knot):
+    """Return the knot index used for the starting axes: a well-filled level near the middle of the range."""
+    counts = np.bincount(nearest_knot, minlength=len(knots))
+    full = np.flatnonzero(counts >= 0.5 * counts.max())
+    mid = np.median(np.log(knots))
+    return int(full[np.argmin(np.abs(np.log(knots[full]) - mid))])
 
 
 def _align_signs(phys: PhysicsParameters, nominal_pumps, nominal_probes) -> None:
@@ -291,17 +247,241 @@ def _align_signs(phys: PhysicsParameters, nominal_pumps, nominal_probes) -> None
         return sign if sign != 0 else 1.0
 
     for j in range(2):
-        sgn = flip(phys.pump_axes[j], None if nominal_pumps is None else normalize(nominal_pumps[j]))
-        phys.pump_axes[j] *= sgn
-        for k, ch in enumerate(phys.channels):
-            if ch[1] == "ab"[j] and sgn < 0:
-                phys.gains[k] *= -1      # c and s both flip with p
+        ref = None if nominal_pumps is None else normalize(nominal_pumps[j])
+        if flip(phys.pump_axes[j], ref) < 0:
+            phys.flip_axis("pump", j)
     for i in range(phys.probe_axes.shape[0]):
-        sgn = flip(phys.probe_axes[i], None if nominal_probes is None else normalize(nominal_probes[i]))
-        phys.probe_axes[i] *= sgn
-        for k, ch in enumerate(phys.channels):
-            if int(ch[0]) == i + 1 and sgn < 0:
-                phys.gains[k] *= -1
+        ref = None if nominal_probes is None else normalize(nominal_probes[i])
+        if flip(phys.probe_axes[i], ref) < 0:
+            phys.flip_axis("probe", i)
+
+
+def _fit_corrections(u, s_basis, resid, per_knot, max_degree, folds, ridge, seed):
+    """Return (chosen degree, scores by degree, held-out residual of the chosen degree, solution or None)."""
+    n = u.shape[0]
+    rng = np.random.default_rng(seed)
+    fold_of = rng.permutation(np.arange(n) % folds)
+    scores: dict[int, float] = {-1: float(np.sqrt(np.mean(np.abs(resid) ** 2) / 2))}
+    heldout = {-1: resid}
+    solutions: dict[int, np.ndarray] = {}
+    k = s_basis.shape[1]
+    for degree in range(0, max_degree + 1):
+        n_par = k * n_harmonics(degree)
+        if per_knot.min() < MIN_ROWS_PER_PARAMETER * n_harmonics(degree) or n * (folds - 1) / folds < 2 * n_par:
+            break
+        design = _correction_design(u, s_basis, degree)
+        gram_total = design.T @ design
+        rhs_total = design.T @ resid
+        pred = np.empty_like(resid)
+        for f in range(folds):
+            test = fold_of == f
+            dt = design[test]
+            sol = _solve_gram(gram_total - dt.T @ dt, rhs_total - dt.T @ resid[test], ridge)
+            pred[test] = dt @ sol
+        r = resid - pred
+        heldout[degree] = r
+        scores[degree] = float(np.sqrt(np.mean(np.abs(r) ** 2) / 2))
+        solutions[degree] = _solve_gram(gram_total, rhs_total, ridge)
+    best = min(scores.values())
+    chosen = min(d for d, s in scores.items() if s <= 1.02 * best)
+    return chosen, scores, heldout[chosen], solutions.get(chosen)
+
+
+def _physics_table_degree(phys_coef: np.ndarray, noise: np.ndarray) -> int:
+    """Return the smallest degree (>= 2) beyond which the physics harmonics are below a fraction of the noise."""
+    full = int(round(np.sqrt(phys_coef.shape[2]))) - 1
+    power = np.abs(phys_coef) ** 2 / (4 * np.pi)            # sphere mean of |term|^2 (orthonormal Y)
+    for degree in range(PHYSICS_DEGREE, full + 1):
+        tail = power[:, :, n_harmonics(degree):].sum(axis=2)   # (C, K)
+        if np.all(np.sqrt(tail / 2) <= TRUNCATION_FRACTION * noise[:, None]):
+            return degree
+    return full
+
+
+def fit_calibration(u: np.ndarray, b_nT: np.ndarray, z: np.ndarray, f: np.ndarray, channels,
+                    nominal_pumps: np.ndarray | None = None, nominal_probes: np.ndarray | None = None,
+                    max_correction_degree: int = 6, folds: int = 5, cell: str = "Rb",
+                    ridge: float = 1e-7, seed: int = 0, line_numbers: np.ndarray | None = None,
+                    fit_efficiency: bool = True, fit_detuning: bool = True) -> Calibration:
+    """Fit a Calibration from scan arrays: u (N,3) applied direction, b_nT (N,), z (N,C) V, f (N,2) Hz.
+
+    line_numbers (N,): the file line of every row, used only to name rejected rows.
+    """
+    u = np.asarray(u, float)
+    b_nT = np.asarray(b_nT, float)
+    z = np.asarray(z, complex)
+    f = np.asarray(f, float)
+    channels = tuple(channels)
+    if not isinstance(folds, (int, np.integer)) or folds < 2:
+        raise CalibrationError(f"folds must be an integer of at least 2, got {folds!r}")
+    if not isinstance(max_correction_degree, (int, np.integer)) or not -1 <= max_correction_degree <= 10:
+        raise CalibrationError(f"max correction degree must be an integer from -1 to 10, got {max_correction_degree!r}")
+    n_all = u.shape[0]
+    if u.shape != (n_all, 3) or b_nT.shape != (n_all,) or z.shape != (n_all, len(channels)) or f.shape != (n_all, 2):
+        raise CalibrationError("scan arrays disagree in shape: u (N,3), b_nT (N,), z (N,C), f (N,2)")
+    warnings: list[str] = []
+
+    usable, rejected = _sane_rows(u, b_nT, z, f, channels, line_numbers)
+    if usable.sum() < 0.5 * n_all:
+        reasons = sorted({r.reason for r in rejected})
+        raise CalibrationError(f"{n_all - int(usable.sum())} of {n_all} rows are unusable "
+                               f"({', '.join(reasons)}): the scan is not a calibration recording")
+    if usable.sum() < 40:
+        raise CalibrationError(f"only {int(usable.sum())} usable rows; a calibration needs at least 40")
+    idx = np.flatnonzero(usable)
+    u, b_nT, z, f = normalize(u[idx]), b_nT[idx], z[idx], f[idx]
+    _check_channels(z, channels)
+
+    try:
+        candidates = CELL_PAIRS[cell]
+    except KeyError:
+        raise CalibrationError(f"unknown cell element {cell!r}; known: {', '.join(CELL_PAIRS)}") from None
+    isotopes = []
+    for j, pump in enumerate("ab"):
+        ratio = float(np.median(f[:, j] / b_nT))
+        try:
+            isotopes.append(identify_isotope(ratio, candidates))
+        except ValueError as exc:
+            raise CalibrationError(f"pump {pump}: {exc}") from None
+    if isotopes[0] == isotopes[1]:
+        raise CalibrationError(f"both pumps appear modulated at the {isotopes[0]} Larmor frequency")
+
+    knots = magnitude_knots(b_nT)
+    basis = MagnitudeBasis(knots)
+    s_all = basis(b_nT)
+    nearest_all = np.argmin(np.abs(np.log(b_nT)[:, None] - np.log(knots)[None, :]), axis=1)
+
+    # Robust screening: wild rows must not reach the physics fit.
+    n_keep = u.shape[0]
+    screen_degree = SCREEN_DEGREE
+    while screen_degree > 1 and n_keep < 4 * len(knots) * n_harmonics(screen_degree):
+        screen_degree -= 1
+    row_alpha = FAMILY_ALPHA / n_keep
+    screen = screen_rows(u, s_all, z, screen_degree, row_alpha)
+    # The screening model is simpler than the sensor: it only removes rows wild enough to pull the
+    # physics fit; the full model's held-out residual then applies the chi-square limit itself.
+    outlier_local = screen.statistic > SCREEN_FACTOR * screen.threshold
+
+    def reject_outliers(mask, stat, worst, limit):
+        for i in np.flatnonzero(mask):
+            rejected.append(RejectedRow(int(idx[i]), None if line_numbers is None else int(line_numbers[idx[i]]),
+                                        "outlier", channels[int(worst[i])],
+                                        f"whitened residual {stat[i]:.3g} over {2 * len(channels)} components "
+                                        f"(limit {limit:.3g})"))
+
+    reject_outliers(outlier_local, screen.statistic, screen.worst_channel, SCREEN_FACTOR * screen.threshold)
+    keep = ~outlier_local
+    noise0 = screen.scale
+
+    for attempt in range(3):
+        uk, bk, zk, sk = u[keep], b_nT[keep], z[keep], s_all[keep]
+        result = _fit_inliers(uk, bk, zk, sk, knots, basis, nearest_all[keep], channels, noise0,
+                              nominal_pumps, nominal_probes, max_correction_degree, folds, ridge, seed,
+                              fit_efficiency, fit_detuning, warnings if attempt == 0 else [])
+        stat, worst = row_statistic(result["heldout"], np.maximum(robust_scale(result["heldout"]), 1e-300))
+        limit = row_threshold(len(channels), row_alpha)
+        late = stat > limit
+        if not late.any() or attempt == 2:
+            break
+        kept_idx = np.flatnonzero(keep)
+        mask = np.zeros(keep.shape, bool)
+        mask[kept_idx[late]] = True
+        full_stat = np.zeros(keep.shape)
+        full_stat[kept_idx] = stat
+        full_worst = np.zeros(keep.shape, int)
+        full_worst[kept_idx] = worst
+        reject_outliers(mask, full_stat, full_worst, limit)
+        keep &= ~mask
+        noise0 = result["noise"]
+
+    rejected.sort(key=lambda r: r.index)
+    if rejected:
+        kinds = {}
+        for r in rejected:
+            kinds[r.reason] = kinds.get(r.reason, 0) + 1
+        warnings.append(f"{len(rejected)} row(s) left out of the fit ("
+                        + ", ".join(f"{v} {k}" for k, v in sorted(kinds.items())) + ")")
+    cal = result["calibration"]
+    cal.pump_isotopes = tuple(isotopes)
+    cal.rejected_rows = rejected
+    cal.warnings = warnings + cal.warnings
+    cal.nominal_pump_axes = None if nominal_pumps is None else normalize(nominal_pumps)
+    cal.nominal_probe_axes = None if nominal_probes is None else normalize(nominal_probes)
+    return cal
+
+
+def _fit_inliers(u, b_nT, z, s_basis, knots, basis, nearest_knot, channels, noise0, nominal_pumps,
+                 nominal_probes, max_correction_degree, folds, ridge, seed, fit_efficiency, fit_detuning,
+                 warnings) -> dict:
+    """Fit physics and corrections to inlier rows; return the Calibration and the held-out residual."""
+    n = u.shape[0]
+    if n < 40:
+        raise CalibrationError(f"only {n} usable rows after outlier rejection; a calibration needs at least 40")
+    coverage, sparse = sphere_coverage(u)
+    if coverage < 0.5:
+        raise CalibrationError(f"the scan covers only {coverage:.0%} of the sphere (at least 50% of "
+                               f"60 equal cells need 3 samples); extend the scan")
+    if coverage < 0.9:
+        warnings.append(f"sphere coverage {coverage:.0%}: the model is extrapolated in {len(sparse)} "
+                        f"sparse cells; directions there are less trustworthy")
+    per_knot = np.bincount(nearest_knot, minlength=len(knots))
+    if len(knots) == 1:
+        warnings.append(f"single magnitude {knots[0]:.0f} nT: the model holds only near it; "
+                        f"estimates far from it are flagged OUTSIDE_CALIBRATION")
+    need = MIN_ROWS_PER_PARAMETER * n_harmonics(PHYSICS_DEGREE)
+    if per_knot.min() < need:
+        raise CalibrationError(f"magnitude {knots[np.argmin(per_knot)]:.0f} nT has only "
+                               f"{per_knot.min()} rows; need at least {need}")
+
+    if nominal_pumps is not None and nominal_probes is not None:
+        pump0, probe0 = normalize(nominal_pumps), normalize(nominal_probes)
+    else:
+        level = nearest_knot == _choose_start_level(b_nT, knots, nearest_knot)
+        pump0, probe0 = _init_axes_from_quadratic(u[level], z[level], channels)
+    try:
+        pfit = fit_physics(u, s_basis, knots, z, channels, pump0, probe0, noise0, fit_efficiency, fit_detuning)
+    except PhysicsFitError as exc:
+        raise CalibrationError(str(exc)) from None
+    phys = pfit.params
+    _align_signs(phys, nominal_pumps, nominal_probes)
+    resid = z - phys.predict(u, s_basis)
+
+    chosen, scores, heldout, sol = _fit_corrections(u, s_basis, resid, per_knot, max_correction_degree,
+                                                    folds, ridge, seed)
+    noise = np.maximum(np.sqrt(np.mean(np.abs(heldout) ** 2, axis=0) / 2), 1e-300)
+
+    phys_coef = phys.harmonic_coefficients()
+    phys_degree = _physics_table_degree(phys_coef, noise)
+    degree = max(phys_degree, chosen)
+    c_n = len(channels)
+    coef = np.zeros((c_n, basis.size, n_harmonics(degree)), complex)
+    keep_h = min(n_harmonics(degree), phys_coef.shape[2])
+    coef[:, :, :keep_h] = phys_coef[:, :, :keep_h]
+    correction_rms = np.zeros(c_n)
+    if chosen >= 0 and sol is not None:
+        corr = sol.T.reshape(c_n, basis.size, n_harmonics(chosen))
+        coef[:, :, :n_harmonics(chosen)] += corr
+        correction_rms = np.sqrt(np.max(np.sum(np.abs(corr) ** 2, axis=2), axis=1) / (4 * np.pi) / 2)
+    model = ResponseModel(channels, degree, knots, coef, noise)
+    reports = _channel_reports(channels, z, z - heldout, noise)
+
+    std = pfit.parameter_std()
+    n_beams = 2 + phys.probe_axes.shape[0]
+    fit_info = {"iterations": pfit.iterations, "covariance_inflation": round(float(pfit.inflation), 4),
+                "physics_residual_V": [float(x) for x in pfit.noise_std],
+                "physics_table_degree": phys_degree}
+    col = 2 * n_beams
+    if fit_efficiency:
+        fit_info["efficiency_std"] = std[col:col + 4].reshape(2, 2).tolist()
+        col += 4
+    if fit_detuning:
+        fit_info["detuning_law_std"] = std[col:col + 8].reshape(2, 2, 2).tolist()
+    params_per_knot = N_LINEAR_TERMS + (n_harmonics(chosen) if chosen >= 0 else 0)
+    check = check_magnitudes(coef, knots, noise, b_nT, params_per_knot)
+    cal = Calibration(model, phys, ("", ""), chosen, reports, scores, coverage, sparse, n, warnings,
+                      direction_std_deg=pfit.direction_std_deg(), correction_rms_V=correction_rms,
+                      magnitude_check=check, fit_info=fit_info)
+    return {"calibration": cal, "heldout": heldout, "noise": noise}
 
 
 def _channel_reports(channels, z, pred, noise) -> list[ChannelReport]:

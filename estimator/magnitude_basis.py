@@ -39,6 +39,13 @@ class MagnitudeBasis:
         x = np.clip(np.log(np.maximum(b, 1e-300)), self._x[0], self._x[-1])
         return self._spline(x)
 
+    def derivative(self, b_nT) -> np.ndarray:
+        """Return dS/d(ln|B|) (N, K) at magnitudes b_nT (N,), nT; the spline's own slope, not clamped (zeros for 1 knot)."""
+        b = np.atleast_1d(np.asarray(b_nT, float))
+        if self._spline is None:
+            return np.zeros((b.size, 1))
+        return self._spline(np.log(np.maximum(b, 1e-300)), 1)
+
     def inside(self, b_nT, tolerance: float = 0.1) -> np.ndarray:
         """Return True where |B| lies within the knot range widened by a relative tolerance."""
         b = np.atleast_1d(np.asarray(b_nT, float))

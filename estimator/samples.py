@@ -47,6 +47,7 @@ class SampleBlock:
     truth: dict[str, np.ndarray] = field(default_factory=dict)  # true_ux.. true_b_nT (simulator)
     metadata: dict[str, str] = field(default_factory=dict)      # from '# key: value' comment lines
     skipped_rows: int = 0                     # malformed rows dropped (counted, never silent)
+    lines: np.ndarray | None = None           # (N,) int64 1-based source line of each row (text files)
 
     def __len__(self) -> int:
         return int(self.t.shape[0])

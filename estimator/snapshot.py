@@ -10,11 +10,13 @@ sphere (tangent step, exp_map retraction, step accepted only if the residual fal
 
 from __future__ import annotations
 
+import math
 from dataclasses import dataclass, field
 
 import numpy as np
 from scipy.stats import chi2 as _chi2
 
+from fieldvane.estimator.blind import BLIND_FACTOR, blind_mask, check_factor, median_bound_deg
 from fieldvane.estimator.estimate import Estimate
 from fieldvane.estimator.fisher import channel_selection, invert_2x2, probe_groups, sigma_deg_from_covariance
 from fieldvane.estimator.flags import EstimateFlag
@@ -37,7 +39,7 @@ class SnapshotSettings:
     polish_iterations: int = 3       # further trials for the best candidate
     max_step_rad: float = 0.25       # trust radius cap of one Gauss-Newton step
     scan_depth: int = 24             # lowest table cells examined for local minima
-    blind_deg: float = 5.0           # BLIND above this 1-sigma bound
+    blind_factor: float = BLIND_FACTOR  # BLIND where the 1-sigma bound exceeds this x its sphere median (blind.py)
     ambiguity_alpha: float = 0.01    # AMBIGUOUS: test level of the chi-square residual difference
     min_separation_deg: float = 10.0 # an alternative must lie at least this far away ...
     separation_sigmas: float = 3.0   # ... and this many sigma away to count as distinct
@@ -53,6 +55,7 @@ class SnapshotSettings:
             raise ValueError("scan_depth must be at least n_candidates")
         if not 0 < self.ambiguity_alpha < 1:
             raise ValueError("ambiguity_alpha must lie in (0, 1)")
+        check_factor(self.blind_factor)
 
 
 @dataclass
@@ -81,6 +84,7 @@ class SnapshotResult:
     candidate_chi2: np.ndarray
     gains: np.ndarray
     probes: tuple[int, ...] = field(default=())
+    probes_used: np.ndarray | None = None   # (N,) bitmask of the probes with data (1 = probe 1, 2 = probe 2)
 
     def __len__(self) -> int:
         return int(self.t.shape[0])
@@ -91,6 +95,8 @@ class SnapshotResult:
                   "b_a_nT": float(self.b_pair_nT[i, 0]), "b_b_nT": float(self.b_pair_nT[i, 1])}
         for j, p in enumerate(self.probes):
             extras[f"gain_{p}"] = float(self.gains[i, j])
+        if self.probes_used is not None:
+            extras["probes_used"] = int(self.probes_used[i])
         return Estimate(float(self.t[i]), self.u[i].copy(), float(self.b_nT[i]),
                         float(self.sigma_deg[i]), int(self.flags[i]), extras)
 
@@ -104,14 +110,19 @@ class SnapshotSolver:
 
     def __init__(self, model, gammas_hz_per_nt, table: LookupTable | None = None, *, probes=None,
                  gain_free: bool = False, settings: SnapshotSettings | None = None, noise_std=None,
-                 grid_points: int = DEFAULT_GRID_POINTS):
+                 grid_points: int = DEFAULT_GRID_POINTS, channel_index=None, median_bound: float | None = None):
         self.model = model
         self.settings = settings or SnapshotSettings()
         self.gammas_hz_per_nt = np.asarray(gammas_hz_per_nt, float)
         self.gain_free = bool(gain_free)
         self.table = table if table is not None else build_table(model, n_grid=grid_points)
         self._check_table(self.table)
-        self.idx = channel_selection(model.channels, probes)
+        # channel_index: an explicit subset of the model's channels (used for samples missing some channels).
+        self.idx = (np.asarray(channel_index, int) if channel_index is not None
+                    else channel_selection(model.channels, probes))
+        self._noise_arg = noise_std
+        self._subsets: dict[tuple, "SnapshotSolver"] = {}
+        self._median_bound = median_bound      # deg; subsets share their parent's (the sensor's normal)
         self.channels = tuple(model.channels[k] for k in self.idx)
         noise = model.noise_std if noise_std is None else np.broadcast_to(
             np.asarray(noise_std, float), (model.n_channels,))
@@ -142,6 +153,17 @@ class SnapshotSolver:
             from fieldvane.estimator.lookup_table import build_calibration_table
             table = build_calibration_table(calibration, kwargs.pop("grid_points", DEFAULT_GRID_POINTS))
         return cls(calibration.model, calibration.gammas_hz_per_nt, table, **kwargs)
+
+    @property
+    def median_bound_deg(self) -> float:
+        """Return the sphere median of the single-sample bound (deg) at the calibrated range's middle |B| (BLIND)."""
+        if self._median_bound is None:
+            lo, hi = self.model.basis.range_nT
+            noise = np.broadcast_to(np.asarray(self.model.noise_std if self._noise_arg is None else self._noise_arg,
+                                               float), (self.model.n_channels,))
+            probes = sorted({int(self.model.channels[k][0]) for k in self.idx})
+            self._median_bound = median_bound_deg(self.model, math.sqrt(lo * hi), probes, self.gain_free, noise)
+        return self._median_bound
 
     @property
     def evaluations_per_sample(self) -> int:
@@ -191,10 +213,10 @@ class SnapshotSolver:
         names = tuple(self.model.channels) if channels is None else tuple(channels)
         if z.shape[1] != len(names):
             raise ValueError(f"z has {z.shape[1]} columns for {len(names)} channel names")
-        missing = [ch for ch in self.channels if ch not in names]
-        if missing:
-            raise ValueError(f"samples lack channel(s) {', '.join(missing)} needed by the solver")
-        z = z[:, [names.index(ch) for ch in self.channels]]
+        if not any(ch in names for ch in self.channels):
+            raise ValueError(f"the samples hold none of the solver's channels {', '.join(self.channels)}")
+        z = np.stack([z[:, names.index(ch)] if ch in names else np.full(n, complex(np.nan, np.nan))
+                      for ch in self.channels], axis=1)
         t = np.arange(n, dtype=float) if t is None else np.broadcast_to(np.asarray(t, float), (n,)).copy()
 
         s = self.settings
@@ -213,24 +235,61 @@ class SnapshotSolver:
         if b_nT is not None:
             res.b_nT = np.broadcast_to(np.asarray(b_nT, float), (n,)).copy()
         b_ok = np.isfinite(res.b_nT) & (res.b_nT > 0)
-        good = b_ok & np.all(np.isfinite(z), axis=1)
-        res.flags[~good] |= int(F.BAD_INPUT)
+        finite = np.isfinite(z.real) & np.isfinite(z.imag)
+        complete = np.all(finite, axis=1)
+        # Probes wholly absent are expected (probes_used says which were there); a probe with only some of
+        # its channels is bad input, still solved from what is there.
+        probe_seen = finite.astype(float) @ self.member > 0                    # (N, P)
+        probe_full = (~finite).astype(float) @ self.member == 0
+        partial = np.any(probe_seen & ~probe_full, axis=1)
+        res.probes_used = (probe_seen * (1 << (np.array(self.probes) - 1))).sum(axis=1).astype(np.int64)
+        res.flags[~b_ok | ~np.any(finite, axis=1) | partial] |= int(F.BAD_INPUT)
         outside = np.flatnonzero(b_ok)[~self.model.basis.inside(res.b_nT[b_ok], s.calibration_margin)]
         res.flags[outside] |= int(F.OUTSIDE_CALIBRATION)
-        rows = np.flatnonzero(good)
+        rows = np.flatnonzero(b_ok & complete)
         for start in range(0, rows.size, s.chunk):
             sel = rows[start:start + s.chunk]
             self._solve_rows(z[sel] / self.noise_std, res.b_nT[sel], sel, res)
+        incomplete = np.flatnonzero(b_ok & ~complete & np.any(finite, axis=1))
+        if incomplete.size:
+            patterns, which = np.unique(finite[incomplete], axis=0, return_inverse=True)
+            for k, pattern in enumerate(patterns):
+                sel = incomplete[np.ravel(which) == k]
+                sub = self._subset_solver(tuple(np.flatnonzero(pattern)))
+                part = sub.solve(z[np.ix_(sel, np.flatnonzero(pattern))], f_hz[sel], t[sel], sub.channels,
+                                 res.b_nT[sel])
+                self._merge(res, sel, part, sub)
         return res
+
+    def _subset_solver(self, local: tuple) -> "SnapshotSolver":
+        """Return (cached) a solver using only this solver's channels at positions `local`."""
+        if local not in self._subsets:
+            noise = self._noise_arg
+            self._subsets[local] = SnapshotSolver(self.model, self.gammas_hz_per_nt, self.table,
+                                                  gain_free=self.gain_free, settings=self.settings,
+                                                  noise_std=noise, channel_index=self.idx[list(local)],
+                                                  median_bound=self.median_bound_deg)
+        return self._subsets[local]
+
+    def _merge(self, res: SnapshotResult, sel: np.ndarray, part: SnapshotResult, sub: "SnapshotSolver") -> None:
+        """Copy a subset solver's results into rows sel of res (keeping res's own BAD_INPUT and magnitude flags)."""
+        keep = int(F.BAD_INPUT | F.MAGNITUDE_DISAGREE | F.OUTSIDE_CALIBRATION)
+        res.flags[sel] = (res.flags[sel] & keep) | (part.flags & ~keep)
+        for name in ("u", "cov", "sigma_deg", "chi2", "alt_u", "alt_dchi2", "candidates", "candidate_chi2"):
+            getattr(res, name)[sel] = getattr(part, name)
+        for j, probe in enumerate(sub.probes):
+            res.gains[sel, self.probes.index(probe)] = part.gains[:, j]
 
     def initiate(self, sample, b_nT: float | None = None):
         """Return (u (3,), cov (2,2) rad^2 on tangent_basis(u)) from one Sample, or None if undecided.
 
-        The tracker's initiator: None for bad input, an ambiguous or a low-signal sample.
+        The tracker's initiator: None without a usable solution (no data, no |B|), for an ambiguous or a
+        low-signal sample. Channels missing from the sample (nan) are left out of the fit.
         """
         res = self.solve(np.asarray(sample.z)[None, :], [[sample.f_a, sample.f_b]], [sample.t],
                          sample.channels, None if b_nT is None else [b_nT])
-        if res.flags[0] & int(F.BAD_INPUT | F.AMBIGUOUS | F.LOW_SIGNAL) or not np.all(np.isfinite(res.cov[0])):
+        if (res.flags[0] & int(F.AMBIGUOUS | F.LOW_SIGNAL) or not np.all(np.isfinite(res.cov[0]))
+                or not np.all(np.isfinite(res.u[0]))):
             return None
         return res.u[0], res.cov[0]
 
@@ -282,7 +341,7 @@ class SnapshotSolver:
 
         flags = np.zeros(n, dtype=np.int64)
         flags[has_alt & (alt_d < _chi2.ppf(1 - s.ambiguity_alpha, 2))] |= int(F.AMBIGUOUS)
-        flags[~(sigma <= s.blind_deg)] |= int(F.BLIND)
+        flags[blind_mask(sigma, self.median_bound_deg, s.blind_factor)] |= int(F.BLIND)
         flags[np.all(np.abs(zw) < s.low_signal_snr, axis=1)] |= int(F.LOW_SIGNAL)
 
         res.u[rows] = u

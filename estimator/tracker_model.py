@@ -80,6 +80,26 @@ class TrackerModel:
         self.n_probes = len(probes)
         self.channel_probe_index = np.array([probes.index(channel_probe(c)) for c in self.channels])
 
+    @property
+    def exponents(self) -> np.ndarray:
+        """Return the monomial exponent table (M, 3) the tables are written in (int64)."""
+        return np.ascontiguousarray(self._exps, dtype=np.int64)
+
+    @property
+    def n_monomials(self) -> int:
+        """Return the number of monomials M of the tables."""
+        return int(self._exps.shape[0])
+
+    @property
+    def n_powers(self) -> int:
+        """Return the number of powers of the in-segment magnitude position (4: cubic; 1: one knot)."""
+        return int(self._powers)
+
+    def weights_table(self, sigma: np.ndarray) -> np.ndarray:
+        """Return the tables W (S, powers * M, 4 * 2C) whitened by `sigma` (2C,) instead of this model's own sigma."""
+        factor = np.tile(self.sigma / np.asarray(sigma, float), N_ROWS)
+        return np.ascontiguousarray(self._w * factor[None, None, :])
+
     def segments(self, b_nT) -> tuple[np.ndarray, np.ndarray]:
         """Return (segment index (N,), t = log|B| - segment start (N,)) for magnitudes b_nT (nT), clamped."""
         b = np.atleast_1d(np.asarray(b_nT, float))
@@ -146,6 +166,14 @@ class TrackerModel:
 
     def sphere_medians(self, b_nT: float, n_points: int = 600) -> tuple[float, float]:
         """Return sphere medians of the single-sample bound sqrt(trace J^-1) (rad) and of the RMS amplitude (V)."""
+        key = (float(b_nT), int(n_points))
+        cache = self.__dict__.setdefault("_medians", {})
+        if key not in cache:
+            cache[key] = self._sphere_medians(b_nT, n_points)
+        return cache[key]
+
+    def _sphere_medians(self, b_nT: float, n_points: int) -> tuple[float, float]:
+        """Compute sphere_medians (not cached)."""
         grid = fibonacci_sphere(n_points)
         info = self.tangent_fisher(grid, b_nT)
         det = info[:, 0, 0] * info[:, 1, 1] - info[:, 0, 1] ** 2

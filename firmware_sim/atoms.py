@@ -19,6 +19,12 @@ PLANCK_J_S = _const.h
 MU_B_HZ_PER_NT = MU_B_J_PER_T / PLANCK_J_S * 1e-9  # about 13.996 Hz/nT
 
 
+def _g_f(g_j: float, g_i: float, f: float, i: float) -> float:
+    """Return the Lande factor g_F of level F for electron g_J, nuclear g_I (Bohr magnetons), spin I."""
+    ff, ii, jj = f * (f + 1.0), i * (i + 1.0), J_GROUND * (J_GROUND + 1.0)
+    return (g_j * (ff - ii + jj) + g_i * (ff + ii - jj)) / (2.0 * ff)
+
+
 @dataclass(frozen=True)
 class AtomData:
     """Ground-state data of one alkali isotope (g_I in Bohr magnetons, sign convention of Steck)."""
@@ -35,11 +41,29 @@ class AtomData:
         return self.nuclear_spin + J_GROUND
 
     @property
+    def f_lower(self) -> float:
+        """Return F = I - 1/2 of the lower ground hyperfine level (dimensionless)."""
+        return self.nuclear_spin - J_GROUND
+
+    @property
     def g_f(self) -> float:
-        """Return the Lande factor g_F of the upper ground level (dimensionless)."""
-        f, i, j = self.f_upper, self.nuclear_spin, J_GROUND
-        ff, ii, jj = f * (f + 1.0), i * (i + 1.0), j * (j + 1.0)
-        return (self.g_j * (ff - ii + jj) + self.g_i * (ff + ii - jj)) / (2.0 * ff)
+        """Return the Lande factor g_F of the upper ground level (dimensionless, > 0)."""
+        return _g_f(self.g_j, self.g_i, self.f_upper, self.nuclear_spin)
+
+    @property
+    def g_f_lower(self) -> float:
+        """Return the Lande factor g_F of the lower ground level (dimensionless, < 0: precesses the other way)."""
+        return _g_f(self.g_j, self.g_i, self.f_lower, self.nuclear_spin)
+
+    @property
+    def gamma_lower_hz_per_nt(self) -> float:
+        """Return gamma/2pi of the lower ground level, |g_F| mu_B / h, in Hz/nT (slightly above the upper's)."""
+        return abs(self.g_f_lower) * MU_B_HZ_PER_NT
+
+    @property
+    def electron_gamma_hz_per_nt(self) -> float:
+        """Return g_J mu_B / h in Hz/nT: the precession rate of the bare electron spin (about 28 Hz/nT)."""
+        return self.g_j * MU_B_HZ_PER_NT
 
     @property
     def gamma_hz_per_nt(self) -> float:
@@ -72,6 +96,48 @@ class AtomData:
         """Return the upper level's m <-> m-1 frequencies (Hz) for m = -F+1..F, shape (..., 2F)."""
         e = self.breit_rabi_upper_hz(b_nT)
         return np.abs(np.diff(e, axis=-1))
+
+    def heading_hz_per_polarization(self, b_nT):
+        """Return how far the upper level's resonance moves down per unit longitudinal polarization, Hz.
+
+        The resonance is the centroid of the Breit-Rabi lines m <-> m-1 weighted by their strength
+        |<m|F+|m-1>|^2 = F(F+1) - m(m-1) times the population difference; with a spin-temperature
+        distribution rho_m ~ exp(beta m) the centroid is sum e^(beta m) M_m f_m / sum e^(beta m) M_m.
+        Its slope at beta = 0 is the covariance of m and f_m under the weights M_m, and the electron
+        polarization is P = tanh(beta / 2), so d(centroid)/dP = 2 Cov_M(m, f). Low-field value:
+        (2 f_L^2 / f_hfs) * A_F / 2 with A_F = 4.2 for F = 2 and 9.0 for F = 3 (about 2x apart).
+        Returns -d(centroid)/dP (positive: polarization along the field lowers the frequency).
+        """
+        lines = self.breit_rabi_transitions_hz(b_nT)
+        f = self.f_upper
+        m = np.arange(-f + 1.0, f + 0.5, 1.0)
+        weight = f * (f + 1.0) - m * (m - 1.0)
+        weight = weight / weight.sum()
+        cov = (lines * weight) @ (m - weight @ m)
+        return -2.0 * cov
+
+    def lower_level_spin_ratio(self) -> float:
+        """Return <S> in the lower level over <S> in the upper one at low spin-temperature polarization.
+
+        With rho ~ exp(beta F_z), level F holds <F_z> ~ beta F(F+1)(2F+1)/3 and its electron spin is
+        <S_z> = +-<F_z>/(2I+1) (upper +, lower -): the ratio is -(2I-1) I / ((2I+3)(I+1)),
+        -0.20 for I = 3/2 and -0.357 for I = 5/2. An upper bound for the lower level's share of the
+        probe signal; hyperfine-selective pumping leaves less.
+        """
+        i = self.nuclear_spin
+        return -(2.0 * i - 1.0) * i / ((2.0 * i + 3.0) * (i + 1.0))
+
+
+def optical_line_shape(detuning_ghz, width_ghz):
+    """Return z = 1 / (1 - 2i detuning / width) of a Lorentzian optical line (FWHM width, GHz).
+
+    Re z is the absorption (1 on resonance, ~ (width / 2 detuning)^2 far off), Im z the dispersion
+    (odd in the detuning, +-1/2 at +-width/2, ~ width / (2 detuning) far off): a pump's pumping rate
+    and light shift in units of its on-resonance pumping rate (Happer, Rev. Mod. Phys. 44, 169
+    (1972), complex line-shape description; from memory).
+    """
+    x = 2.0 * np.asarray(detuning_ghz, dtype=float) / float(width_ghz)
+    return 1.0 / (1.0 - 1j * x)
 
 
 # Rb: D. A. Steck, "Rubidium 87 D Line Data" and "Rubidium 85 D Line Data" (values as quoted in

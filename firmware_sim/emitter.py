@@ -56,6 +56,8 @@ def encode_records(run: SimulatedRun, fmt: str = "binary", pass_index: int = 0,
                    zero_before_each: bool = False) -> Iterator[tuple[float, bytes]]:
     """Yield (t in s since the stream's start, bytes) per sample: one wire frame or one CSV line.
 
+    A probe's missing values (run.missing) are NaN in a frame and empty fields in a CSV line.
+
     pass_index > 0 continues a repeated run: seq and time go on from the previous pass.
     zero_before_each puts a 0x00 before every frame too (wire_format.md allows it), so a frame
     that loses its delimiter spoils only itself.
@@ -73,7 +75,8 @@ def encode_records(run: SimulatedRun, fmt: str = "binary", pass_index: int = 0,
                                       run.f[i, 0], run.f[i, 1], interleave_xy(run.z[i]))
         else:
             extra = ((*run.u[i], run.b_nT[i]) if include_truth else ())
-            rec = csv_line(t, run.f[i, 0], run.f[i, 1], run.z[i], extra)
+            missing = None if run.missing is None else run.missing[i]
+            rec = csv_line(t, run.f[i, 0], run.f[i, 1], run.z[i], extra, missing)
         yield t, rec
 
 

@@ -147,10 +147,17 @@ def _num(x: float) -> str:
 
 
 def csv_line(t_s: float, f_a: float, f_b: float, z: Iterable[complex],
-             extra: Sequence[float] = ()) -> bytes:
-    """Return one sample as a CSV line (t s, f Hz, x/y V per channel, extras), '\\n' terminated."""
-    fields = [_num(t_s), _num(f_a), _num(f_b)] + [_num(v) for v in interleave_xy(z)]
-    fields += [_num(v) for v in extra]
+             extra: Sequence[float] = (), missing: Sequence[bool] | None = None) -> bytes:
+    """Return one sample as a CSV line (t s, f Hz, x/y V per channel, extras), '\\n' terminated.
+
+    missing: per channel, True where the probe's values are absent: both its fields are left empty.
+    """
+    values = [_num(v) for v in interleave_xy(z)]
+    if missing is not None:
+        for k, gone in enumerate(missing):
+            if gone:
+                values[2 * k] = values[2 * k + 1] = ""
+    fields = [_num(t_s), _num(f_a), _num(f_b)] + values + [_num(v) for v in extra]
     return (",".join(fields) + "\n").encode("ascii")
 
 

@@ -1,20 +1,20 @@
 """Fast response-level model of the simulated sensor: lock-in outputs from field direction and |B|.
 
 This is the steady-state, first-order-in-modulation solution of the same Bloch equations that
-`bloch.py` integrates in time (same parameters, same sign conventions), solved in closed form:
+`bloch.py` integrates in time (constants from `cell.py`, same sign conventions), solved directly:
 
-* Work in a frame (e1, e2, u) around the field direction u. Precession, relaxation, isotropic
-  pump loss and spin exchange all commute with rotations about u, so every vector splits into a
-  longitudinal part (along u) and two circular parts: beta = v.e1 - i v.e2 (co-rotating with the
-  Bell-Bloom drive, resonant) and alpha = v.e1 + i v.e2 (counter-rotating).
-* For each part the two isotopes form a 2x2 linear coupled-mode system (REFERENCES.md, 'Two
-  isotopes coupled by spin exchange'): (G_i + i(w - W_i)) P_i - k P_other = drive_i, with W_i the
-  isotope's precession rate including the nonlinear-Zeeman heading shift (which follows the
-  isotope's longitudinal polarization, hence the pump-field angle), w the pump's modulation
-  frequency and G_i the total damping (relaxation + mean pumping + exchange loss).
-* The resonant part gives the DESIGN.md channel factor: probe . beta-part = (c + i s)/2 times
-  the coupled-mode response; the counter-rotating and longitudinal parts are non-resonant terms of
-  order Gamma/omega (about 1 % at 1 uT), kept so the two models agree closely at low field.
+* Mean state: with the pumps unmodulated, dP_s/dt = 0 is a linear system for the species'
+  polarization vectors (3 per species; the two upper levels are coupled by spin exchange, a lower
+  level stands alone), except that the heading term moves each upper level's precession rate with
+  its own longitudinal polarization: solved by fixed-point iteration from the longitudinal steady
+  state (exact in one step unless a light shift tilts the precession axes).
+* Modulated part: linearized about the mean state (the heading term's derivative included), the
+  response to pump j's modulation m cos(w_j t) of the pumping rate and of the light-shift field is
+  the complex phasor dP solving (i w_j - J) dP = d_j. Probe k's phasor at w_j is q_k . sum_s w_s dP_s.
+
+Without coupling this reduces to the DESIGN.md channel factor (c + i s)/2 times the Bell-Bloom
+resonance; the counter-rotating and longitudinal responses (order Gamma/omega, about 1 % at 1 uT)
+come out of the same solve, so the two models agree closely at low field.
 
 Sign convention: with dP/dt = gamma P x B (gamma > 0) and lock-in reference exp(-i w t) the
 physics natively gives c + i s, i.e. handedness sigma = -1 in Z = g exp(i phi0) (c - i sigma s).
@@ -26,29 +26,12 @@ from __future__ import annotations
 
 import numpy as np
 
+from .cell import CellRates, cell_rates, longitudinal_polarization
 from .lockin import channel_outputs
+from .loop import modulation_hz
 from .sensor import SensorConfig
 
-
-def _solve2(a0, a1, k, d0, d1):
-    """Solve [[a0, -k], [-k, a1]] x = [d0, d1] elementwise; returns (x0, x1)."""
-    det = a0 * a1 - k * k
-    return (a1 * d0 + k * d1) / det, (k * d0 + a0 * d1) / det
-
-
-def transverse_frame(u: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
-    """Return unit vectors e1, e2 (N,3) with (e1, e2, u) right-handed, for unit directions u (N,3)."""
-    helper = np.zeros_like(u)
-    use_x = np.abs(u[:, 0]) < 0.9
-    helper[use_x, 0] = 1.0
-    helper[~use_x, 1] = 1.0
-    e1 = helper - np.sum(helper * u, axis=1, keepdims=True) * u
-    e1 /= np.sqrt(np.sum(e1 * e1, axis=1, keepdims=True))
-    e2 = np.empty_like(u)
-    e2[:, 0] = u[:, 1] * e1[:, 2] - u[:, 2] * e1[:, 1]
-    e2[:, 1] = u[:, 2] * e1[:, 0] - u[:, 0] * e1[:, 2]
-    e2[:, 2] = u[:, 0] * e1[:, 1] - u[:, 1] * e1[:, 0]
-    return e1, e2
+_HEADING_ITERATIONS = 3
 
 
 def _prepare(u, b_nT):
@@ -69,78 +52,149 @@ def _prepare(u, b_nT):
 
 
 def larmor_hz(config: SensorConfig, b_nT) -> np.ndarray:
-    """Return the Larmor frequencies (N, 2) in Hz of the isotopes pumped by pump a and pump b."""
+    """Return the linear Larmor frequencies gamma*|B| (N, 2) in Hz of the isotopes of pump a and pump b."""
     b = np.atleast_1d(np.asarray(b_nT, dtype=float))
     return b[:, None] * config.gamma_hz_per_nt()[None, :]
 
 
-def heading_shift_coefficient(config: SensorConfig, f_larmor_hz: np.ndarray) -> np.ndarray:
-    """Return kappa (N, 2) in rad/s: precession rate = 2 pi f_L - kappa * (longitudinal polarization).
+def transverse_frame(u: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """Return unit vectors e1, e2 (N,3) with (e1, e2, u) right-handed, for unit directions u (N,3)."""
+    helper = np.zeros_like(u)
+    use_x = np.abs(u[:, 0]) < 0.9
+    helper[use_x, 0] = 1.0
+    helper[~use_x, 1] = 1.0
+    e1 = helper - np.sum(helper * u, axis=1, keepdims=True) * u
+    e1 /= np.sqrt(np.sum(e1 * e1, axis=1, keepdims=True))
+    return e1, np.cross(u, e1)
 
-    kappa = heading_strength * 2 pi * 2 f_L^2 / f_hfs: the nonlinear Zeeman spacing of adjacent
-    lines (Breit-Rabi, see atoms.py); the resonance centroid moves with the population imbalance.
+
+def _inverse(m: list) -> list:
+    """Return the inverse of a 1x1 or 2x2 matrix given as nested lists of (N,) arrays."""
+    if len(m) == 1:
+        return [[1.0 / m[0][0]]]
+    det = m[0][0] * m[1][1] - m[0][1] * m[1][0]
+    return [[m[1][1] / det, -m[0][1] / det], [-m[1][0] / det, m[0][0] / det]]
+
+
+def _coupled(diagonal: list, exchange: np.ndarray) -> list:
+    """Return [[a0, -k0], [-k1, a1]] (a pair) or [[a0]] (one species) as nested lists."""
+    if len(diagonal) == 1:
+        return [[diagonal[0]]]
+    return [[diagonal[0], -exchange[0]], [-exchange[1], diagonal[1]]]
+
+
+def _solve(w, damping, precession, exchange, to_beta, to_alpha, light_beta, d_long, d_beta, d_alpha):
+    """Solve one group's linear system at angular frequency w (N,); return lists (L, beta, alpha).
+
+    Every argument but w and exchange (k_i, 1/s) is a list over the group's species of (N,) arrays.
+    In the circular components of the frame (e1, e2, u) (L = v.u, beta = v.e1 - i v.e2, alpha =
+    v.e1 + i v.e2), P x Omega with Omega = W u + transverse part omega_beta couples only L with
+    beta and alpha of the same species, and exchange couples the species component by component:
+
+        (G + i(w - W)) beta - k beta_other = d_beta + to_beta L
+        (G + i(w + W)) alpha - k alpha_other = d_alpha + to_alpha L
+        (G + i w) L - k L_other - (i/2)(omega_beta alpha - conj(omega_beta) beta) = d_long
+
+    Eliminating beta and alpha leaves a 2 x 2 (or 1 x 1) system for L: exact, in closed form.
     """
-    split = 2.0 * f_larmor_hz ** 2 / config.hyperfine_hz()[None, :]
-    return config.heading_strength * 2.0 * np.pi * split
+    g = len(damping)
+    inv_b = _inverse(_coupled([damping[a] + 1j * (w - precession[a]) for a in range(g)], exchange))
+    inv_a = _inverse(_coupled([damping[a] + 1j * (w + precession[a]) for a in range(g)], exchange))
+    side_b = [[0.5j * np.conj(light_beta[a]) * inv_b[a][c] for c in range(g)] for a in range(g)]
+    side_a = [[0.5j * light_beta[a] * inv_a[a][c] for c in range(g)] for a in range(g)]
+    system = _coupled([damping[a] + 1j * w for a in range(g)], exchange)
+    system = [[system[a][c] - side_a[a][c] * to_alpha[c] + side_b[a][c] * to_beta[c] for c in range(g)]
+              for a in range(g)]
+    rhs = [d_long[a] + sum(side_a[a][c] * d_alpha[c] - side_b[a][c] * d_beta[c] for c in range(g))
+           for a in range(g)]
+    inv_l = _inverse(system)
+    p_long = [sum(inv_l[a][c] * rhs[c] for c in range(g)) for a in range(g)]
+    beta = [sum(inv_b[a][c] * (d_beta[c] + to_beta[c] * p_long[c]) for c in range(g)) for a in range(g)]
+    alpha = [sum(inv_a[a][c] * (d_alpha[c] + to_alpha[c] * p_long[c]) for c in range(g)) for a in range(g)]
+    return p_long, beta, alpha
 
 
-class _Parts:
-    """Beam projections in the (e1, e2, u) frame and the cell constants, computed once per call."""
+class _Geometry:
+    """Beam projections in the frame (e1, e2, u) and the cell's per-row rates, computed once per call."""
 
-    def __init__(self, config: SensorConfig, u: np.ndarray, b: np.ndarray):
-        e1, e2 = transverse_frame(u)
-        pumps, probes = config.pump_array(), config.probe_array()
-        self.p_long = u @ pumps.T                             # (N, 2): p_j . u
-        self.p_beta = e1 @ pumps.T - 1j * (e2 @ pumps.T)      # (N, 2): p_j.e1 - i p_j.e2
-        self.q_long = u @ probes.T                            # (N, P)
-        self.q_beta = e1 @ probes.T - 1j * (e2 @ probes.T)
-        self.weights = config.pump_weights()
-        self.rates = np.array(config.pump_rate_per_s)
-        self.damping = config.total_damping_per_s()
-        self.k = config.spin_exchange_per_s
-        self.f_l = larmor_hz(config, b)
-        self.kappa = heading_shift_coefficient(config, self.f_l)
+    def __init__(self, cell: CellRates):
+        e1, e2 = transverse_frame(cell.u)
+        self.p_long = cell.u @ cell.pumps.T                                 # (N, 2): p_j . u
+        self.p_beta = e1 @ cell.pumps.T - 1j * (e2 @ cell.pumps.T)          # (N, 2)
+        self.q_long = cell.u @ cell.probes.T                                # (N, P)
+        self.q_beta = e1 @ cell.probes.T - 1j * (e2 @ cell.probes.T)
+        self.damping = cell.damping()                                       # (N, 2)
+        self.light = cell.light_rate()                                      # (N, S, 2) rad/s
+        self.light_beta = np.einsum("nsj,nj->ns", self.light, self.p_beta)  # transverse light field
+        self.larmor = cell.larmor_rate()                                    # (N, S) rad/s
 
 
-def _steady(parts: _Parts) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
-    """Return (P_L (N, 2), beta parts (N, 2), precession rates W (N, 2) rad/s) without modulation."""
-    g, k = parts.damping, parts.k
-    src_long = (parts.p_long * parts.rates[None, :]) @ parts.weights   # sum_j R_j W[j, i] p_j.u
-    src_beta = (parts.p_beta * parts.rates[None, :]) @ parts.weights
-    pl0, pl1 = _solve2(g[0], g[1], k, src_long[:, 0], src_long[:, 1])
-    p_l = np.stack([pl0, pl1], axis=1)
-    omega = 2.0 * np.pi * parts.f_l - parts.kappa * p_l
-    b0, b1 = _solve2(g[0] - 1j * omega[:, 0], g[1] - 1j * omega[:, 1], k, src_beta[:, 0], src_beta[:, 1])
-    return p_l, np.stack([b0, b1], axis=1), omega
-
-
-def _phasors(config: SensorConfig, parts: _Parts, f_mod: np.ndarray) -> np.ndarray:
-    """Return probe phasors (N, P, 2) from precomputed parts and modulation frequencies (N, 2) Hz."""
-    g, k = parts.damping, parts.k
-    wprobe = np.array(config.probe_weight)
-    w_mod = 2.0 * np.pi * f_mod
-    p_l, beta0, omega = _steady(parts)
-    alpha0 = np.conj(beta0)
-    p_alpha, q_alpha = np.conj(parts.p_beta), np.conj(parts.q_beta)
-    out = np.empty((p_l.shape[0], parts.q_long.shape[1], 2), dtype=complex)
+def _group_phasors(cell: CellRates, geo: _Geometry, group: list[int], f_mod: np.ndarray,
+                   p_long0: np.ndarray, iterations: int) -> np.ndarray:
+    """Return the probe phasors (N, P, 2) of species `group` (the exchange-coupled pair, or one alone)."""
+    n = cell.u.shape[0]
+    iso = [int(cell.isotope[s]) for s in group]
+    exchange = cell.exchange
+    damping = [geo.damping[:, i] for i in iso]
+    light_beta = [geo.light_beta[:, s] for s in group]
+    kappa = [cell.kappa[:, s] for s in group]
+    rate = [[cell.rates[:, j] * cell.cross[j, i] for i in iso] for j in range(2)]   # [pump][species]
+    src_long = [rate[0][a] * geo.p_long[:, 0] + rate[1][a] * geo.p_long[:, 1] for a in range(len(group))]
+    src_beta = [rate[0][a] * geo.p_beta[:, 0] + rate[1][a] * geo.p_beta[:, 1] for a in range(len(group))]
+    zero = np.zeros(n)
+    # Mean state: the heading term makes W depend on L, iterated from the longitudinal start.
+    p_long = [p_long0[:, s] for s in group]
+    for _ in range(iterations):
+        precession = [geo.larmor[:, s] - k * pl for s, k, pl in zip(group, kappa, p_long)]
+        p_long, beta, _ = _solve(zero, damping, precession, exchange, [-1j * lb for lb in light_beta],
+                                 [1j * np.conj(lb) for lb in light_beta], light_beta, src_long, src_beta,
+                                 [np.conj(sb) for sb in src_beta])
+        p_long = [pl.real for pl in p_long]
+    precession = [geo.larmor[:, s] - k * pl for s, k, pl in zip(group, kappa, p_long)]
+    alpha = [np.conj(b) for b in beta]
+    # Linearized about it: the heading term adds -kappa dL (P x u), i.e. -i kappa beta dL to beta.
+    to_beta = [-1j * (lb + k * b) for lb, k, b in zip(light_beta, kappa, beta)]
+    to_alpha = [1j * (np.conj(lb) + k * a) for lb, k, a in zip(light_beta, kappa, alpha)]
+    weight = cell.probe_weight[group]
+    out = np.empty((n, cell.probes.shape[0], 2), dtype=complex)
     for j in range(2):
-        wj = w_mod[:, j]
-        amp = parts.rates[j] * config.modulation_depth * parts.weights[j]   # (2,): drive on each isotope
-        d_long = amp[None, :] * (parts.p_long[:, j:j + 1] - p_l)
-        d_beta = amp[None, :] * (parts.p_beta[:, j:j + 1] - beta0)
-        d_alpha = amp[None, :] * (p_alpha[:, j:j + 1] - alpha0)
-        l0, l1 = _solve2(g[0] + 1j * wj, g[1] + 1j * wj, k, d_long[:, 0], d_long[:, 1])
-        b0, b1 = _solve2(g[0] + 1j * (wj - omega[:, 0]), g[1] + 1j * (wj - omega[:, 1]),
-                         k, d_beta[:, 0], d_beta[:, 1])
-        a0, a1 = _solve2(g[0] + 1j * (wj + omega[:, 0]), g[1] + 1j * (wj + omega[:, 1]),
-                         k, d_alpha[:, 0], d_alpha[:, 1])
-        mix_long = wprobe[0] * l0 + wprobe[1] * l1
-        mix_beta = wprobe[0] * b0 + wprobe[1] * b1
-        mix_alpha = wprobe[0] * a0 + wprobe[1] * a1
-        # probe . phasor = q_L L + (q_beta alpha + q_alpha beta) / 2; q_alpha beta is the resonant
-        # term and reduces to (c + i s) times the coupled-mode response.
-        out[:, :, j] = (parts.q_long * mix_long[:, None]
-                        + 0.5 * (parts.q_beta * mix_alpha[:, None] + q_alpha * mix_beta[:, None]))
+        pl, pb = geo.p_long[:, j], geo.p_beta[:, j]
+        d_long, d_beta, d_alpha = [], [], []
+        for a, s in enumerate(group):
+            m_rate = cell.depth * rate[j][a]
+            m_light = cell.depth * geo.light[:, s, j]
+            # Modulated pumping on the mean state, plus P x (m b_j p_j): the light shift follows the light.
+            d_long.append(m_rate * (pl - p_long[a]) + 0.5j * m_light * (alpha[a] * pb - beta[a] * np.conj(pb)))
+            d_beta.append(m_rate * (pb - beta[a]) + 1j * m_light * (pl * beta[a] - p_long[a] * pb))
+            d_alpha.append(m_rate * (np.conj(pb) - alpha[a]) - 1j * m_light * (pl * alpha[a] - p_long[a] * np.conj(pb)))
+        dl, db, da = _solve(2.0 * np.pi * f_mod[:, j], damping, precession, exchange, to_beta, to_alpha,
+                            light_beta, d_long, d_beta, d_alpha)
+        mix_l = sum(w * x for w, x in zip(weight, dl))
+        mix_b = sum(w * x for w, x in zip(weight, db))
+        mix_a = sum(w * x for w, x in zip(weight, da))
+        # probe . phasor = q_L L + (q_beta alpha + conj(q_beta) beta) / 2
+        out[:, :, j] = geo.q_long * mix_l[:, None] + 0.5 * (geo.q_beta * mix_a[:, None]
+                                                            + np.conj(geo.q_beta) * mix_b[:, None])
+    return out
+
+
+def probe_phasors(cell: CellRates, f_mod_hz: np.ndarray) -> np.ndarray:
+    """Return the probe-signal phasors (N, P, 2) at the two modulation frequencies f_mod_hz (N, 2) Hz.
+
+    Polarization units: probe k's signal is Re[A e^(i w_j t)] summed over the pumps j. The two
+    upper levels are solved together (exchange-coupled), each lower level alone.
+    """
+    n = cell.u.shape[0]
+    f_mod = np.asarray(f_mod_hz, dtype=float).reshape(n, 2)
+    p_long = np.zeros((n, cell.n_species))
+    p_long[:, :2] = longitudinal_polarization(cell)
+    # The heading term needs iterating only when a light shift tilts the axes off u.
+    iterations = _HEADING_ITERATIONS if np.any(cell.light_nT != 0.0) else 1
+    geo = _Geometry(cell)
+    out = _group_phasors(cell, geo, [0, 1], f_mod, p_long, iterations)
+    for s in range(2, cell.n_species):
+        # A lower level alone has no exchange gain and no heading term: one solve is exact.
+        out += _group_phasors(cell, geo, [s], f_mod, p_long, 1)
     return out
 
 
@@ -148,14 +202,16 @@ def response(config: SensorConfig, u, b_nT, f_mod_hz=None) -> tuple[np.ndarray, 
     """Return noise-free (f (N, 2) Hz [f_a, f_b], z (N, C) complex lock-in X+iY in V) at directions u.
 
     u: (N, 3) field directions in the sensor frame (normalized here); b_nT: (N,) or scalar |B| in nT.
-    The modulation frequencies track the Larmor frequencies gamma*|B| unless f_mod_hz (N, 2) is given.
+    The modulation frequencies are those the frequency loops set (loop.py: gamma*|B| for 'exact',
+    the pulled resonance for 'locked') unless f_mod_hz (N, 2) is given.
     """
     u, b = _prepare(u, b_nT)
-    parts = _Parts(config, u, b)
-    f = parts.f_l.copy()
-    if f_mod_hz is not None:
-        f = np.broadcast_to(np.asarray(f_mod_hz, float), f.shape).copy()
-    return f, channel_outputs(config, _phasors(config, parts, f))
+    cell = cell_rates(config, u, b)
+    if f_mod_hz is None:
+        f = modulation_hz(config, cell)
+    else:
+        f = np.broadcast_to(np.asarray(f_mod_hz, float), (u.shape[0], 2)).copy()
+    return f, channel_outputs(config, probe_phasors(cell, f))
 
 
 def add_noise(z: np.ndarray, config: SensorConfig, rng: np.random.Generator) -> np.ndarray:

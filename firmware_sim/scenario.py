@@ -1,9 +1,11 @@
 """Scenario files for the simulated sensor (docs/scenarios.md, version 1) and the simulation itself.
 
 A scenario is a TOML file: the sensor (`[sensor]`, see sensor.py), the run (`[run]`: sample rate,
-duration, seed), the field's trajectory in the sensor frame (`[direction]` and `[magnitude]` with
-timed segments, or a calibration `[scan]` over the sphere), and events applied on top
-(`[[events]]`: noise bursts, gain drift, dropouts, outliers, status bits).
+duration, seed), optionally the lock-in's output filter (`[lockin]`: RC stages and time constant;
+without it every output sample is the steady-state response plus independent white noise), the
+field's trajectory in the sensor frame (`[direction]` and `[magnitude]` with timed segments, or a
+calibration `[scan]` over the sphere), and events applied on top (`[[events]]`: noise bursts, gain
+drift, light fades, dropouts, missing probes, outliers, status bits).
 
 `load_scenario(path)` validates everything on the way in: any problem raises ScenarioError (a
 ValueError) naming the file, the line where it can be found, and the key path (e.g.
@@ -22,6 +24,7 @@ from pathlib import Path
 from typing import Any, Mapping, Union
 
 import numpy as np
+from scipy.signal import lfilter
 
 try:
     import tomllib
@@ -29,6 +32,7 @@ except ModuleNotFoundError:  # Python < 3.11
     import tomli as tomllib
 
 from .frames import STATUS_BITS, TRUTH_COLUMNS
+from .lockin import OutputFilter, default_oversample
 from .response import add_noise, response
 from .sensor import SensorConfig
 
@@ -37,6 +41,7 @@ KINDS = ("track", "scan")
 DEFAULT_SAMPLE_RATE_HZ = 200.0
 MAX_SAMPLES = 20_000_000            # about 28 h at 200 Hz: guards memory, not physics
 MAX_FIELD_NT = 1e6                  # 1 mT
+MAX_INTERNAL_SAMPLES = 2_000_000_000  # lock-in filter work (internal rate x duration): guards run time
 _REQUIRED = object()
 
 
@@ -419,17 +424,32 @@ def sphere_points(n: int) -> np.ndarray:
 
 @dataclass(frozen=True)
 class ScanPlan:
-    """Field stepped over the sphere: `points` directions per magnitude, dwell_samples at each."""
+    """Field stepped over the sphere: `points` directions per magnitude, dwell_samples recorded at each.
+
+    settle_samples more are spent at each point before the recorded ones (the lock-in's filter
+    settling after the step); they are simulated but left out of the run (a sequence gap).
+    """
 
     magnitudes_nT: tuple[float, ...]
     points: int
     dwell_samples: int
     vary_points: bool = True
+    settle_samples: int = 0
+
+    @property
+    def samples_per_point(self) -> int:
+        """Return the samples spent at each point: settling plus recorded."""
+        return self.settle_samples + self.dwell_samples
 
     @property
     def n_samples(self) -> int:
-        """Return the number of samples of the whole scan."""
-        return len(self.magnitudes_nT) * self.points * self.dwell_samples
+        """Return the number of samples of the whole scan (settling samples included)."""
+        return len(self.magnitudes_nT) * self.points * self.samples_per_point
+
+    def recorded(self) -> np.ndarray:
+        """Return, per scan sample (N,), True when it is recorded (False while the filter settles)."""
+        per_point = np.arange(self.samples_per_point) >= self.settle_samples
+        return np.tile(per_point, len(self.magnitudes_nT) * self.points)
 
     def field(self) -> tuple[np.ndarray, np.ndarray]:
         """Return the applied field of every scan sample: direction (N, 3) unit and |B| (N,) nT."""
@@ -439,8 +459,8 @@ class ScanPlan:
         for m, b in enumerate(self.magnitudes_nT):
             # Turn the lattice by the golden angle per magnitude so magnitudes do not share points.
             pts = rotate_vectors(base, tilt, m * GOLDEN_ANGLE_RAD) if self.vary_points else base
-            dirs.append(np.repeat(pts, self.dwell_samples, axis=0))
-            mags.append(np.full(self.points * self.dwell_samples, b))
+            dirs.append(np.repeat(pts, self.samples_per_point, axis=0))
+            mags.append(np.full(self.points * self.samples_per_point, b))
         return np.concatenate(dirs), np.concatenate(mags)
 
 
@@ -458,24 +478,87 @@ class NoiseBurst:
 
 @dataclass(frozen=True)
 class GainDrift:
-    """Gain of one probe's channels drifting: 'linear' (%/s, held after the window) or 'sine'."""
+    """Gain of one probe's channels (probe None: every probe) drifting: 'linear', 'sine' or 'random_walk'.
 
-    probe: int
+    'linear': %/s, held after the window. 'sine': amplitude % and period inside the window.
+    'random_walk': a first-order Gauss-Markov wander from 1 (stationary rms `rms_pct` %,
+    correlation time `correlation_time_s`), seeded from the run's seed, held after the window.
+    """
+
+    probe: int | None
     mode: str
     start_s: float = 0.0
     duration_s: float | None = None
     rate_pct_per_s: float = 0.0
     amplitude_pct: float = 0.0
     period_s: float = 1.0
+    rms_pct: float = 0.0
+    correlation_time_s: float = 1.0
 
-    def factor(self, t: np.ndarray) -> np.ndarray:
-        """Return the gain multiplier (N,) at times t (s); 1 outside the drift."""
+    def factor(self, t: np.ndarray, walk: tuple[np.ndarray, np.ndarray] | None = None) -> np.ndarray:
+        """Return the gain multiplier (N,) at times t (s); 1 before the drift. walk: random_walk's knots."""
         if self.mode == "linear":
             end = math.inf if self.duration_s is None else self.start_s + self.duration_s
             tau = np.clip(t, self.start_s, end) - self.start_s
             return 1.0 + self.rate_pct_per_s / 100.0 * tau
+        if self.mode == "random_walk":
+            knots_t, knots_g = walk
+            return np.interp(t, knots_t, knots_g, left=1.0, right=float(knots_g[-1]))
         wave = 1.0 + self.amplitude_pct / 100.0 * np.sin(2 * np.pi * (t - self.start_s) / self.period_s)
         return np.where(_window(t, self.start_s, self.duration_s), wave, 1.0)
+
+    def walk_knots(self, seed: int, index: int, run_end_s: float) -> tuple[np.ndarray, np.ndarray]:
+        """Return (times s, gains) of a random_walk drift, linearly interpolated in between.
+
+        Knots every min(correlation time / 50, 0.1 s) from start_s to the window's end (or the run's);
+        the noise comes from a generator of its own (seed, event index), so adding this event
+        leaves the lock-in noise of the run unchanged.
+        """
+        end = run_end_s if self.duration_s is None else min(run_end_s, self.start_s + self.duration_s)
+        step = min(self.correlation_time_s / 50.0, 0.1)
+        m = max(2, int(math.ceil(max(end - self.start_s, 0.0) / step)) + 1)
+        rng = np.random.default_rng([int(seed), 0x6761696E, int(index)])
+        decay = math.exp(-step / self.correlation_time_s)
+        kick = self.rms_pct / 100.0 * math.sqrt(-math.expm1(-2.0 * step / self.correlation_time_s))
+        x = np.zeros(m)
+        x[1:] = lfilter([1.0], [1.0, -decay], rng.standard_normal(m - 1) * kick)
+        return self.start_s + step * np.arange(m), 1.0 + x
+
+
+@dataclass(frozen=True)
+class Fade:
+    """A probe's light fading: its gain falls smoothly to to_pct % over fall_s, and back if hold_s is given."""
+
+    probe: int
+    start_s: float
+    fall_s: float
+    to_pct: float = 2.0
+    hold_s: float | None = None
+    rise_s: float | None = None
+
+    def factor(self, t: np.ndarray) -> np.ndarray:
+        """Return the gain multiplier (N,) at times t (s): raised-cosine fall, hold, raised-cosine rise."""
+        low = self.to_pct / 100.0
+        down = _smooth_step((t - self.start_s) / self.fall_s)
+        g = 1.0 - (1.0 - low) * down
+        if self.hold_s is not None:
+            t_up = self.start_s + self.fall_s + self.hold_s
+            g = g + (1.0 - low) * _smooth_step((t - t_up) / (self.rise_s or self.fall_s))
+        return g
+
+
+def _smooth_step(x: np.ndarray) -> np.ndarray:
+    """Return 0 for x <= 0, 1 for x >= 1 and a raised cosine in between."""
+    return 0.5 - 0.5 * np.cos(np.pi * np.clip(x, 0.0, 1.0))
+
+
+@dataclass(frozen=True)
+class ProbeMissing:
+    """A probe's lock-in values absent from start_s for duration_s: rows stay, its channels are empty."""
+
+    probe: int
+    start_s: float
+    duration_s: float
 
 
 @dataclass(frozen=True)
@@ -515,7 +598,7 @@ class StatusFlags:
         return m
 
 
-Event = Union[NoiseBurst, GainDrift, Dropout, Outliers, StatusFlags]
+Event = Union[NoiseBurst, GainDrift, Fade, Dropout, ProbeMissing, Outliers, StatusFlags]
 
 
 def _window(t: np.ndarray, start: float, duration: float | None) -> np.ndarray:
@@ -543,6 +626,7 @@ class Scenario:
     scan: ScanPlan | None = None
     events: tuple = ()
     source: str = "<scenario>"
+    lockin: OutputFilter | None = None
 
     @property
     def n_samples(self) -> int:
@@ -562,8 +646,10 @@ class Scenario:
         """Return the true field at times t (default: every sample): direction (N, 3) unit, |B| (N,) nT."""
         if self.kind == "scan":
             u, b = self.scan.field()
+            # A point starts at its first sample's time and holds until the next point's (times
+            # between samples, e.g. the lock-in's internal ones, see the point of the sample before).
             idx = np.arange(self.n_samples) if t is None else \
-                np.clip(np.round(np.asarray(t) * self.sample_rate_hz).astype(int), 0, len(b) - 1)
+                np.clip(np.floor(np.asarray(t) * self.sample_rate_hz + 1e-6).astype(int), 0, len(b) - 1)
             return u[idx], b[idx]
         t = self.times() if t is None else np.asarray(t, float)
         return (direction_at(self.direction_start, self.direction_segments, t),
@@ -588,15 +674,20 @@ class Scenario:
                 if d > full + 1e-9:
                     raise ScenarioError(f"{d:g} s is longer than the scan ({full:g} s); a scan can "
                                         f"only be shortened", "run.duration_s (override)")
+            internal = d * self.sample_rate_hz * (self.lockin.oversample if self.lockin else 0)
+            if internal > MAX_INTERNAL_SAMPLES:
+                raise ScenarioError(f"{d:g} s through the lock-in filter needs more than "
+                                    f"{MAX_INTERNAL_SAMPLES} internal samples; shorten it",
+                                    "run.duration_s (override)")
             changes["duration_s"] = d
         return dataclasses.replace(self, **changes)
 
 
 # ----- parsing --------------------------------------------------------------------------
 
-_TOP_KEYS = ("version", "name", "description", "kind", "sensor", "run", "direction", "magnitude",
-             "scan", "events")
-_EVENT_KINDS = ("noise_burst", "gain_drift", "dropout", "outliers", "status")
+_TOP_KEYS = ("version", "name", "description", "kind", "sensor", "run", "lockin", "direction",
+             "magnitude", "scan", "events")
+_EVENT_KINDS = ("noise_burst", "gain_drift", "fade", "dropout", "probe_missing", "outliers", "status")
 
 
 def load_scenario(path: str | Path, seed: int | None = None,
@@ -658,8 +749,10 @@ def parse_scenario(data: Mapping[str, Any], source: str = "<scenario>", text: st
     rate = run.number("sample_rate_hz", DEFAULT_SAMPLE_RATE_HZ, lo=0.0, hi=1e5, lo_open=True)
     seed = run.integer("seed", 0, lo=0, hi=2**63 - 1)
     duration = run.number("duration_s", None, lo=0.0, lo_open=True)
+    lockin_table = top.table("lockin")
+    lockin = _parse_lockin(lockin_table, rate) if lockin_table is not None else None
 
-    fields: dict[str, Any] = {}
+    fields: dict[str, Any] = {"lockin": lockin}
     if kind == "scan":
         for k in ("direction", "magnitude"):
             if top.has(k):
@@ -668,7 +761,7 @@ def parse_scenario(data: Mapping[str, Any], source: str = "<scenario>", text: st
         scan_table = top.table("scan")
         if scan_table is None:
             raise ctx.error("scan", "a scan scenario needs a [scan] table")
-        plan = _parse_scan(scan_table)
+        plan = _parse_scan(scan_table, rate, lockin)
         full = plan.n_samples / rate
         if duration is None:
             duration = full
@@ -697,6 +790,11 @@ def parse_scenario(data: Mapping[str, Any], source: str = "<scenario>", text: st
         raise run.error("duration_s", f"{duration:g} s at {rate:g} Hz exceeds {MAX_SAMPLES} samples")
     if duration * rate < 0.5:
         raise run.error("duration_s", f"{duration:g} s at {rate:g} Hz is shorter than one sample")
+    if lockin is not None and duration * rate * lockin.oversample > MAX_INTERNAL_SAMPLES:
+        key = "oversample" if lockin_table.has("oversample") else "time_constant_s"
+        raise lockin_table.error(key, f"the filter would run {duration * rate * lockin.oversample:.3g} "
+                                      f"internal samples (limit {MAX_INTERNAL_SAMPLES}); give a larger "
+                                      f"time constant, a smaller oversample or a shorter run")
 
     events = tuple(_parse_event(e, sensor, duration) for e in top.tables("events"))
     return Scenario(name=name, kind=kind, sensor=sensor, sample_rate_hz=rate, duration_s=duration,
@@ -778,12 +876,30 @@ def _parse_magnitude(tab: _Table) -> tuple[float, tuple]:
     return b0, tuple(segs)
 
 
-def _parse_scan(tab: _Table) -> ScanPlan:
-    tab.check_keys(("magnitudes_nT", "points", "dwell_samples", "vary_points"))
+def _parse_lockin(tab: _Table, rate: float) -> OutputFilter:
+    tab.check_keys(("time_constant_s", "filter_order", "oversample", "noise_reference_bandwidth_hz"))
+    tau = tab.number("time_constant_s", lo=0.0, hi=100.0, lo_open=True)
+    order = tab.integer("filter_order", 4, lo=1, hi=8)
+    oversample = tab.integer("oversample", None, lo=1, hi=100_000)
+    if oversample is None:
+        oversample = default_oversample(tau, rate)
+    reference = tab.number("noise_reference_bandwidth_hz", None, lo=0.0, hi=1e9, lo_open=True)
+    return OutputFilter(tau, order, oversample, reference)
+
+
+def _parse_scan(tab: _Table, rate: float, lockin: OutputFilter | None) -> ScanPlan:
+    tab.check_keys(("magnitudes_nT", "points", "dwell_samples", "vary_points", "settle_s"))
+    default_settle = 0.0 if lockin is None else lockin.settle_time_s()
+    settle_s = tab.number("settle_s", default_settle, lo=0.0, hi=3600.0)
     return ScanPlan(magnitudes_nT=tab.numbers("magnitudes_nT", 0.0, MAX_FIELD_NT),
                     points=tab.integer("points", 200, lo=4, hi=1_000_000),
                     dwell_samples=tab.integer("dwell_samples", 10, lo=1, hi=1_000_000),
-                    vary_points=tab.boolean("vary_points", True))
+                    vary_points=tab.boolean("vary_points", True),
+                    settle_samples=int(math.ceil(settle_s * rate - 1e-9)))
+
+
+_DRIFT_KEYS = {"linear": ("rate_pct_per_s",), "sine": ("amplitude_pct", "period_s"),
+               "random_walk": ("rms_pct", "correlation_time_s")}
 
 
 def _parse_event(e: _Table, sensor: SensorConfig, run_duration: float) -> Event:
@@ -795,25 +911,43 @@ def _parse_event(e: _Table, sensor: SensorConfig, run_duration: float) -> Event:
                           e.number("factor", lo=0.0), e.names("channels", channels, None))
     if kind == "gain_drift":
         e.check_keys(("kind", "probe", "mode", "start_s", "duration_s", "rate_pct_per_s",
-                      "amplitude_pct", "period_s"))
-        probe = e.integer("probe", lo=1, hi=sensor.n_probes)
-        mode = e.text("mode", "linear", ("linear", "sine"))
+                      "amplitude_pct", "period_s", "rms_pct", "correlation_time_s"))
+        probe = e.integer("probe", None, lo=1, hi=sensor.n_probes)
+        mode = e.text("mode", "linear", tuple(_DRIFT_KEYS))
+        for k in ("rate_pct_per_s", "amplitude_pct", "period_s", "rms_pct", "correlation_time_s"):
+            if e.has(k) and k not in _DRIFT_KEYS[mode]:
+                owner = next(m for m, keys in _DRIFT_KEYS.items() if k in keys)
+                raise e.error(k, f"only for mode = \"{owner}\"")
         start = e.number("start_s", 0.0, lo=0.0)
         duration = e.number("duration_s", None, lo=0.0, lo_open=True)
         if mode == "linear":
-            for k in ("amplitude_pct", "period_s"):
-                if e.has(k):
-                    raise e.error(k, "only for mode = \"sine\"")
             rate = e.number("rate_pct_per_s")
             span = (run_duration - start) if duration is None else duration
             if 1.0 + rate / 100.0 * max(span, 0.0) <= 0.0:
                 raise e.error("rate_pct_per_s", f"the gain would reach zero within {span:g} s")
             return GainDrift(probe, mode, start, duration, rate_pct_per_s=rate)
-        if e.has("rate_pct_per_s"):
-            raise e.error("rate_pct_per_s", "only for mode = \"linear\"")
+        if mode == "random_walk":
+            return GainDrift(probe, mode, start, duration, rms_pct=e.number("rms_pct", lo=0.0, hi=10.0),
+                             correlation_time_s=e.number("correlation_time_s", lo=0.0, hi=1e6,
+                                                         lo_open=True))
         return GainDrift(probe, mode, start, duration,
                          amplitude_pct=e.number("amplitude_pct", lo=0.0, hi=99.0),
                          period_s=e.number("period_s", lo=0.0, lo_open=True))
+    if kind == "fade":
+        e.check_keys(("kind", "probe", "start_s", "fall_s", "to_pct", "hold_s", "rise_s"))
+        probe = e.integer("probe", lo=1, hi=sensor.n_probes)
+        hold = e.number("hold_s", None, lo=0.0)
+        if e.has("rise_s") and hold is None:
+            raise e.error("rise_s", "only with hold_s (without it the light stays low)")
+        return Fade(probe, e.number("start_s", lo=0.0), e.number("fall_s", lo=0.0, lo_open=True),
+                    e.number("to_pct", 2.0, lo=0.0, hi=100.0, lo_open=True), hold,
+                    e.number("rise_s", None, lo=0.0, lo_open=True))
+    if kind == "probe_missing":
+        e.check_keys(("kind", "probe", "start_s", "duration_s"))
+        if sensor.n_probes < 2:
+            raise e.error("kind", "a one-probe sensor has no other probe left; use a dropout instead")
+        return ProbeMissing(e.integer("probe", lo=1, hi=sensor.n_probes), e.number("start_s", lo=0.0),
+                            e.number("duration_s", lo=0.0, lo_open=True))
     if kind == "dropout":
         e.check_keys(("kind", "start_s", "duration_s", "mode"))
         return Dropout(e.number("start_s", lo=0.0), e.number("duration_s", lo=0.0, lo_open=True),
@@ -836,7 +970,9 @@ class SimulatedRun:
 
     t (N,) s; seq (N,) sample numbers (gaps where rows are missing); f (N, 2) Hz [f_a, f_b];
     z (N, C) complex lock-in X+iY in V; u (N, 3) true unit direction; b_nT (N,) true |B|;
-    status (N,) u16 wire-format status bits; applied_b_nT (N, 3) nT for scans, else None.
+    status (N,) u16 wire-format status bits; applied_b_nT (N, 3) nT for scans, else None;
+    missing (N, C) bool, True where a probe's values are absent (z is NaN there; CSV writers
+    leave those fields empty), or None when nothing is missing; lockin: the output filter or None.
     """
 
     t: np.ndarray
@@ -853,6 +989,8 @@ class SimulatedRun:
     kind: str = "track"
     applied_b_nT: np.ndarray | None = None
     n_samples: int = 0                      # samples of the whole run before dropouts (seq period)
+    missing: np.ndarray | None = None
+    lockin: OutputFilter | None = None
 
     @property
     def duration_s(self) -> float:
@@ -875,39 +1013,48 @@ class SimulatedRun:
         return cols
 
     def metadata(self) -> dict[str, str]:
-        """Return '# key: value' metadata for a recording of this run (scenario, seed, rate)."""
-        return {"source": "fieldvane simulated sensor", "scenario": self.name, "kind": self.kind,
+        """Return '# key: value' metadata for a recording of this run (scenario, seed, rate, lock-in)."""
+        meta = {"source": "fieldvane simulated sensor", "scenario": self.name, "kind": self.kind,
                 "seed": str(self.seed), "sample_rate_hz": f"{self.sample_rate_hz:g}",
                 "channels": " ".join(self.channels)}
+        if self.lockin is not None:
+            meta["lockin_time_constant_s"] = f"{self.lockin.time_constant_s:.12g}"
+            meta["lockin_filter_order"] = str(self.lockin.order)
+            meta["lockin_noise_bandwidth_hz"] = f"{self.lockin.noise_bandwidth_hz:.12g}"
+        return meta
 
 
 def simulate(scenario: Scenario) -> SimulatedRun:
-    """Return the SimulatedRun of a scenario (fast steady-state sensor model, seeded noise)."""
+    """Return the SimulatedRun of a scenario (fast steady-state sensor model, seeded noise).
+
+    Without a lock-in filter every sample is the response at its own time plus independent noise.
+    With one, the response (times the gain events) and white noise (times the noise bursts) are
+    formed at the filter's internal rate, filtered, and every oversample-th value is kept.
+    """
     sensor = scenario.sensor
     n, nc = scenario.n_samples, len(sensor.channels)
     t = scenario.times()
-    u, b = scenario.true_field()
-    f, z_clean = response(sensor, u, b)
     rng = np.random.default_rng(scenario.seed)
-    noise = add_noise(np.zeros((n, nc), complex), sensor, rng)
+    gain_of = _SignalGain(scenario)
+    grid = _Grid(scenario)
+    parts = []
+    for t_eval, take in grid.chunks():
+        u, b = scenario.true_field(t_eval)
+        f, z_clean = response(sensor, u, b)
+        noise = grid.noise(rng, t_eval.shape[0]) * _noise_scale(scenario, t_eval)
+        z = grid.filter(z_clean * gain_of(t_eval), noise)
+        parts.append((f[take], z[take], u[take], b[take]))
+    f, z, u, b = (np.concatenate(p) for p in zip(*parts))
 
-    gain = np.ones((n, nc))
-    noise_scale = np.ones((n, nc))
     status = np.zeros(n, np.uint16)
-    probe_of = sensor.channel_probe_index()
     for ev in scenario.events:
-        if isinstance(ev, NoiseBurst):
-            cols = _channel_mask(ev.channels, sensor.channels)
-            rows = _window(t, ev.start_s, ev.duration_s)
-            noise_scale[np.ix_(rows, cols)] *= ev.factor
-        elif isinstance(ev, GainDrift):
-            gain[:, probe_of == ev.probe - 1] *= ev.factor(t)[:, None]
-        elif isinstance(ev, StatusFlags):
+        if isinstance(ev, StatusFlags):
             status[_window(t, ev.start_s, ev.duration_s)] |= np.uint16(ev.mask)
-    z = z_clean * gain + noise * noise_scale
 
-    keep = np.ones(n, bool)
+    keep = scenario.scan.recorded()[:n].copy() if scenario.kind == "scan" else np.ones(n, bool)
     nan_rows = np.zeros(n, bool)
+    missing = np.zeros((n, nc), bool)
+    probe_of = sensor.channel_probe_index()
     for ev in scenario.events:
         if isinstance(ev, Dropout):
             rows = _window(t, ev.start_s, ev.duration_s)
@@ -915,9 +1062,12 @@ def simulate(scenario: Scenario) -> SimulatedRun:
                 nan_rows |= rows
             else:
                 keep &= ~rows
+        elif isinstance(ev, ProbeMissing):
+            missing[np.ix_(_window(t, ev.start_s, ev.duration_s), probe_of == ev.probe - 1)] = True
     for ev in scenario.events:
         if isinstance(ev, Outliers):
-            # Spikes land on rows that survive the dropouts, so `count` of them are seen.
+            # Spikes land on rows that survive the dropouts, so `count` of them are seen (those
+            # on a missing probe's channels are lost with it).
             rows = np.flatnonzero(_window(t, ev.start_s, ev.duration_s) & keep & ~nan_rows)
             cols = np.flatnonzero(_channel_mask(ev.channels, sensor.channels))
             if rows.size == 0:
@@ -928,11 +1078,111 @@ def simulate(scenario: Scenario) -> SimulatedRun:
             z[pick, which] += ev.size_V * np.exp(1j * phase)
     f[nan_rows] = np.nan
     z[nan_rows] = complex(np.nan, np.nan)
+    z[missing] = complex(np.nan, np.nan)
+    missing &= ~nan_rows[:, None]
     applied = (u * b[:, None])[keep] if scenario.kind == "scan" else None
     return SimulatedRun(t=t[keep], seq=np.arange(n, dtype=np.int64)[keep], f=f[keep], z=z[keep],
                         u=u[keep], b_nT=b[keep], status=status[keep], channels=sensor.channels,
                         sample_rate_hz=scenario.sample_rate_hz, name=scenario.name,
-                        seed=scenario.seed, kind=scenario.kind, applied_b_nT=applied, n_samples=n)
+                        seed=scenario.seed, kind=scenario.kind, applied_b_nT=applied, n_samples=n,
+                        missing=missing[keep] if missing.any() else None, lockin=scenario.lockin)
+
+
+class _SignalGain:
+    """The gain events' signal multipliers (M, C) at any times: drifts and fades, per probe."""
+
+    def __init__(self, scenario: Scenario):
+        self.events = [ev for ev in scenario.events if isinstance(ev, (GainDrift, Fade))]
+        self.probe_of = scenario.sensor.channel_probe_index()
+        self.nc = len(scenario.sensor.channels)
+        self.walks = {}
+        for i, ev in enumerate(scenario.events):
+            if isinstance(ev, GainDrift) and ev.mode == "random_walk":
+                self.walks[id(ev)] = ev.walk_knots(scenario.seed, i, scenario.duration_s)
+
+    def __call__(self, t: np.ndarray) -> np.ndarray:
+        """Return the gain multiplier (M, C) at times t (s)."""
+        gain = np.ones((t.shape[0], self.nc))
+        for ev in self.events:
+            cols = np.ones(self.nc, bool) if ev.probe is None else self.probe_of == ev.probe - 1
+            if isinstance(ev, GainDrift):
+                gain[:, cols] *= ev.factor(t, self.walks.get(id(ev)))[:, None]
+            else:
+                gain[:, cols] *= ev.factor(t)[:, None]
+        return gain
+
+
+def _noise_scale(scenario: Scenario, t: np.ndarray) -> np.ndarray:
+    """Return the noise bursts' multiplier (M, C) of the lock-in noise at times t (s)."""
+    channels = scenario.sensor.channels
+    scale = np.ones((t.shape[0], len(channels)))
+    for ev in scenario.events:
+        if isinstance(ev, NoiseBurst):
+            rows = _window(t, ev.start_s, ev.duration_s)
+            scale[np.ix_(rows, _channel_mask(ev.channels, channels))] *= ev.factor
+    return scale
+
+
+class _Grid:
+    """The times the sensor is evaluated at, in chunks, with the noise and the lock-in filter there.
+
+    Without a lock-in: one chunk, the sample times, independent noise per sample (as drawn by
+    response.add_noise) and no filter. With one: internal times k / (oversample x rate) from
+    -warm-up on, in chunks of about CHUNK internal samples; the filter state is carried across.
+    """
+
+    CHUNK = 1 << 17
+
+    def __init__(self, scenario: Scenario):
+        self.scenario = scenario
+        self.sensor = scenario.sensor
+        self.lockin = scenario.lockin
+        self.state = None
+        if self.lockin is not None:
+            lk = self.lockin
+            self.dt = 1.0 / (scenario.sample_rate_hz * lk.oversample)
+            scale = lk.noise_std_ratio() / lk.noise_gain(self.dt)
+            self.sx = np.array(self.sensor.noise_x_V) * scale
+            self.sy = np.array(self.sensor.noise_y_V) * scale
+
+    def chunks(self):
+        """Yield (times (M,) s, indices of the output samples among them) chunk by chunk."""
+        t_out = self.scenario.times()
+        if self.lockin is None:
+            yield t_out, slice(None)
+            return
+        m = self.lockin.oversample
+        rate_in = self.scenario.sample_rate_hz * m
+        first = -int(math.ceil(self.lockin.warmup_s() * rate_in))
+        last = (t_out.shape[0] - 1) * m          # internal index of the last output sample
+        per_chunk = max(1, self.CHUNK // m) * m
+        for i0 in range(first, last + 1, per_chunk):
+            idx = np.arange(i0, min(i0 + per_chunk, last + 1))
+            t = idx / rate_in
+            at_output = np.flatnonzero((idx >= 0) & (idx % m == 0))
+            t[at_output] = t_out[idx[at_output] // m]    # the exact sample times (steps fall on them)
+            yield t, at_output
+
+    def noise(self, rng: np.random.Generator, m: int) -> np.ndarray:
+        """Return m rows of complex lock-in noise (V): per output sample, or white at the internal rate."""
+        nc = len(self.sensor.channels)
+        if self.lockin is None:
+            return add_noise(np.zeros((m, nc), complex), self.sensor, rng)
+        return (self.sx[None, :] * rng.standard_normal((m, nc))
+                + 1j * self.sy[None, :] * rng.standard_normal((m, nc)))
+
+    def filter(self, signal: np.ndarray, noise: np.ndarray) -> np.ndarray:
+        """Return signal + noise (M, C) V, through the lock-in filter when there is one (state carried on)."""
+        if self.lockin is None:
+            return signal + noise
+        lk = self.lockin
+        if self.state is None:    # at rest: on the first signal value, the noise from zero
+            self.state = (lk.initial_state(self.dt, signal[0], "signal"),
+                          lk.initial_state(self.dt, np.zeros_like(noise[0]), "noise"))
+        out_signal, state_signal = lk.run(signal, self.dt, self.state[0], "signal")
+        out_noise, state_noise = lk.run(noise, self.dt, self.state[1], "noise")
+        self.state = (state_signal, state_noise)
+        return out_signal + out_noise
 
 
 def _channel_mask(names: tuple[str, ...] | None, channels: tuple[str, ...]) -> np.ndarray:

@@ -4,9 +4,14 @@
 plain dict of a TOML `[sensor]` table with `from_dict` / `to_dict`. All default numbers are our own
 invention for a plausible heated two-isotope Rb cell; they describe no real instrument.
 
-Isotope-indexed values (relaxation, probe weight) are stored in `pump_isotopes` order: index 0 is
-the isotope pump a is tuned to, index 1 the one pump b is tuned to. Channel-indexed values are
-stored in `channels` order: ("1a", "1b") or ("1a", "1b", "2a", "2b").
+Isotope-indexed values (relaxation, probe weight, lower-level weight, density fraction) are stored
+in `pump_isotopes` order: index 0 is the isotope pump a is tuned to, index 1 the one pump b is tuned
+to. Pump-indexed values (rate, power, detuning, angle efficiency) are stored in pump order (a, b).
+Channel-indexed values are stored in `channels` order: ("1a", "1b") or ("1a", "1b", "2a", "2b").
+
+The realism options (light shift, locked frequency loops, Breit-Rabi heading error, lower hyperfine
+level, density-weighted spin exchange, pump efficiency over the sphere) are all off in the default
+sensor, which therefore behaves exactly as the original idealized one; scenarios switch them on.
 """
 
 from __future__ import annotations
@@ -18,14 +23,17 @@ from typing import Any, Mapping
 
 import numpy as np
 
-from .atoms import ATOMS, atom
+from .atoms import ATOMS, atom, optical_line_shape
 
 CHANNELS_ONE_PROBE = ("1a", "1b")
 CHANNELS_TWO_PROBES = ("1a", "1b", "2a", "2b")
 PUMP_LETTERS = ("a", "b")
 
 _PER_CHANNEL = ("gain_V", "phase_deg", "handedness", "noise_x_V", "noise_y_V")
-_PER_ISOTOPE = ("relaxation_per_s", "probe_weight")
+_PER_ISOTOPE = ("relaxation_per_s", "probe_weight", "lower_level_weight", "density_fraction")
+_PER_PUMP = ("pump_rate_per_s", "pump_power", "pump_detuning_GHz", "pump_angle_efficiency")
+FREQUENCY_LOOPS = ("exact", "locked")
+HEADING_MODELS = ("spacing", "breit_rabi")
 _UNIT_TOL = 1e-3
 
 
@@ -84,7 +92,36 @@ def _scalar(name: str, value: Any, lo: float | None = None, hi: float | None = N
 
 @dataclass(frozen=True)
 class SensorConfig:
-    """Simulated sensor: beam axes (sensor frame, unit), cell physics (1/s), lock-in gains (V, deg)."""
+    """Simulated sensor: beam axes (sensor frame, unit), cell physics (1/s), lock-in gains (V, deg).
+
+    Realism options (defaults switch each one off):
+
+    * pump_power (relative, per pump, default 1): scales the pump's pumping rate and light shift.
+    * pump_detuning_GHz (per pump, default 0) and optical_width_GHz (FWHM of the pressure-broadened
+      optical line, default 3): the pump's complex line shape z = 1 / (1 - 2i detuning / width)
+      gives its pumping rate pump_rate_per_s * power * Re z and its light shift, a fictitious
+      magnetic field along the pump axis whose electron-spin precession rate is
+      pump_rate_per_s * power * Im z (dispersive: zero on resonance, sign flips across it, ~ power /
+      detuning far off). Both isotopes (and their lower levels) feel it through their own g_F.
+    * frequency_loop: "exact" (default: pumps modulated at, and f_a, f_b reporting, gamma*|B|) or
+      "locked" (each pump's loop sits on its isotope's resonance: pulled by spin exchange, moved by
+      the heading error and the light shift; f_a, f_b report it and the pumps are modulated there).
+    * heading_model: "spacing" (default: shift per unit longitudinal polarization = one nonlinear
+      Zeeman line spacing 2 f_L^2 / f_hfs) or "breit_rabi" (the spin-temperature centroid slope of
+      the Breit-Rabi lines, about 2.1 and 4.5 line spacings for 87Rb F=2 and 85Rb F=3); both
+      times heading_strength.
+    * lower_level_weight (per isotope, default 0, signed, |w| <= 1): the lower hyperfine level
+      F = I - 1/2 (g_F < 0, precessing the other way) is pumped like the upper one and adds w times
+      the upper level's probe weight to the probe signal; the spin-temperature limit is -0.20 (87Rb)
+      and -0.36 (85Rb) (atoms.AtomData.lower_level_spin_ratio), real pumping leaves less.
+    * density_fraction (per isotope, default unset): unset, each isotope exchanges with the other
+      at spin_exchange_per_s (symmetric); set (e.g. natural Rb 0.2783 / 0.7217), isotope i exchanges
+      at spin_exchange_per_s * fraction of the other isotope (spin_exchange_per_s is then the rate
+      per atom against the whole vapor).
+    * pump_angle_efficiency (per pump, e2, default 0): the pump's efficiency (rate and light shift)
+      is 1 + e2 (p.u)^2 for field direction u: an even, smooth distortion over the sphere
+      (e2 = 0.1 is +-5 % about its mean value).
+    """
 
     pump_axes: tuple = ((1.0, 0.0, 0.0), (0.0, 1.0, 0.0))
     probe_axes: tuple = ((0.0, 0.0, 1.0), (0.6, 0.3, 0.7416198487095663))
@@ -101,6 +138,14 @@ class SensorConfig:
     heading_strength: float = 1.0
     noise_x_V: tuple = (1e-3, 1e-3, 1e-3, 1e-3)
     noise_y_V: tuple = (1e-3, 1e-3, 1e-3, 1e-3)
+    pump_power: tuple = (1.0, 1.0)
+    pump_detuning_GHz: tuple = (0.0, 0.0)
+    optical_width_GHz: float = 3.0
+    frequency_loop: str = "exact"
+    heading_model: str = "spacing"
+    lower_level_weight: tuple = (0.0, 0.0)
+    density_fraction: tuple = ()
+    pump_angle_efficiency: tuple = (0.0, 0.0)
 
     def __post_init__(self) -> None:
         put = lambda k, v: object.__setattr__(self, k, v)  # noqa: E731 (frozen dataclass)
@@ -143,6 +188,33 @@ class SensorConfig:
         put("cross_pumping", _scalar("cross_pumping", self.cross_pumping, 0.0, 1.0))
         put("spin_exchange_per_s", _scalar("spin_exchange_per_s", self.spin_exchange_per_s, 0.0))
         put("heading_strength", _scalar("heading_strength", self.heading_strength))
+        put("pump_power", _floats("pump_power", self.pump_power, 2))
+        if min(self.pump_power) <= 0.0:
+            raise ValueError(f"pump_power: must be > 0, got {self.pump_power}")
+        put("pump_detuning_GHz", _floats("pump_detuning_GHz", self.pump_detuning_GHz, 2))
+        put("optical_width_GHz", _scalar("optical_width_GHz", self.optical_width_GHz, 0.0, lo_open=True))
+        for name, choices in (("frequency_loop", FREQUENCY_LOOPS), ("heading_model", HEADING_MODELS)):
+            value = getattr(self, name)
+            if value not in choices:
+                raise ValueError(f"{name}: expected one of {', '.join(repr(c) for c in choices)}, got {value!r}")
+        put("lower_level_weight", _floats("lower_level_weight", self.lower_level_weight, 2))
+        if max(abs(w) for w in self.lower_level_weight) > 1.0:
+            raise ValueError(f"lower_level_weight: must lie in [-1, 1], got {self.lower_level_weight}")
+        if self.density_fraction is None or (not np.isscalar(self.density_fraction)
+                                             and len(tuple(self.density_fraction)) == 0):
+            put("density_fraction", ())
+        else:
+            if not np.isscalar(self.density_fraction) and any(x is None for x in self.density_fraction):
+                raise ValueError(f"density_fraction: give both isotopes, got {self.density_fraction!r}")
+            frac = _floats("density_fraction", self.density_fraction, 2)
+            if min(frac) <= 0.0:
+                raise ValueError(f"density_fraction: both isotopes need a fraction > 0, got {frac}")
+            total = sum(frac)
+            put("density_fraction", tuple(x / total for x in frac))
+        put("pump_angle_efficiency", _floats("pump_angle_efficiency", self.pump_angle_efficiency, 2))
+        if min(self.pump_angle_efficiency) <= -1.0:
+            raise ValueError(f"pump_angle_efficiency: must be > -1 (efficiency 1 + e2 (p.u)^2 stays > 0), "
+                             f"got {self.pump_angle_efficiency}")
 
     # ----- derived quantities -------------------------------------------------------------
     @property
@@ -176,10 +248,33 @@ class SensorConfig:
         x = self.cross_pumping
         return np.array([[1.0, x], [x, 1.0]])
 
+    def exchange_per_s(self) -> np.ndarray:
+        """Return each isotope's spin-exchange rate with the other isotope (1/s), shape (2,).
+
+        Symmetric (spin_exchange_per_s for both) unless density_fraction is set; then isotope i
+        exchanges in proportion to the other's density: spin_exchange_per_s * fraction[other].
+        """
+        k = self.spin_exchange_per_s
+        if not self.density_fraction:
+            return np.array([k, k])
+        return k * np.array(self.density_fraction)[::-1]
+
+    def pump_line_shape(self) -> np.ndarray:
+        """Return each pump's complex optical line shape z = 1 / (1 - 2i detuning / width), shape (2,).
+
+        Re z is the pumping rate and Im z the electron-spin light-shift rate, both in units of the
+        on-resonance pumping rate: the absorptive and dispersive parts of one Lorentzian line
+        (Happer, Rev. Mod. Phys. 44, 169 (1972), complex line-shape description; from memory).
+        """
+        return optical_line_shape(np.array(self.pump_detuning_GHz), self.optical_width_GHz)
+
     def total_damping_per_s(self) -> np.ndarray:
-        """Return each isotope's total transverse damping (1/s): relaxation + mean pumping + exchange loss."""
+        """Return each isotope's nominal transverse damping (1/s): relaxation + pumping + exchange loss.
+
+        Nominal: pumps at power 1, on resonance, efficiency 1 (what the gains are referred to).
+        """
         rates = np.array(self.pump_rate_per_s) @ self.pump_weights()
-        return np.array(self.relaxation_per_s) + rates + self.spin_exchange_per_s
+        return np.array(self.relaxation_per_s) + rates + self.exchange_per_s()
 
     def drive_normalization(self) -> np.ndarray:
         """Return, per pump (2,), the ideal on-resonance probe-signal phasor per unit geometry factor.
@@ -187,6 +282,8 @@ class SensorConfig:
         For one isotope with no coupling, pumped by R (1 + m cos wt), the resonant transverse
         polarization phasor is R m (p_T) / Gamma and its probe projection is (c + i s) R m w / (2 Gamma);
         dividing the lock-in phasor by w R m / (2 Gamma) leaves the dimensionless geometry factor.
+        Fixed electronics: computed from the nominal pumps (power 1, on resonance), so a scenario
+        that changes the pump power or detuning sees the signal change.
         """
         damping = self.total_damping_per_s()
         w = np.abs(np.array(self.probe_weight))
@@ -221,9 +318,16 @@ class SensorConfig:
             "cross_pumping": self.cross_pumping,
             "spin_exchange_per_s": self.spin_exchange_per_s,
             "heading_strength": self.heading_strength,
+            "pump_power": list(self.pump_power),
+            "pump_detuning_GHz": list(self.pump_detuning_GHz),
+            "optical_width_GHz": self.optical_width_GHz,
+            "frequency_loop": self.frequency_loop,
+            "heading_model": self.heading_model,
+            "pump_angle_efficiency": list(self.pump_angle_efficiency),
         }
         for name in _PER_ISOTOPE:
-            d[name] = dict(zip(self.pump_isotopes, getattr(self, name)))
+            if getattr(self, name):                 # an unset density_fraction is left out
+                d[name] = dict(zip(self.pump_isotopes, getattr(self, name)))
         for name in _PER_CHANNEL:
             d[name] = dict(zip(self.channels, getattr(self, name)))
         return d
@@ -232,8 +336,8 @@ class SensorConfig:
     def from_dict(cls, d: Mapping[str, Any]) -> "SensorConfig":
         """Return a SensorConfig from a TOML [sensor] table; missing keys take the defaults.
 
-        Per-channel and per-isotope values may be a table keyed by channel ('1a') or isotope
-        ('87Rb'), a list in channel / pump order, or one number for all.
+        Per-channel, per-isotope and per-pump values may be a table keyed by channel ('1a'),
+        isotope ('87Rb') or pump ('a', 'b'), a list in channel / pump order, or one number for all.
         """
         if not isinstance(d, Mapping):
             raise ValueError(f"[sensor]: expected a table, got {type(d).__name__}")
@@ -256,9 +360,12 @@ class SensorConfig:
             if key in _PER_CHANNEL:
                 kwargs[key] = _keyed(key, value, base.channels, getattr(base, key))
             elif key in _PER_ISOTOPE:
-                default = dict(zip(base.pump_isotopes, getattr(base, key)))
-                fallback = tuple(default.get(n, getattr(base, key)[k]) for k, n in enumerate(isotopes))
+                base_value = getattr(base, key) or (None, None)
+                default = dict(zip(base.pump_isotopes, base_value))
+                fallback = tuple(default.get(n, base_value[k]) for k, n in enumerate(isotopes))
                 kwargs[key] = _keyed(key, value, isotopes, fallback)
+            elif key in _PER_PUMP:
+                kwargs[key] = _keyed(key, value, PUMP_LETTERS, getattr(base, key))
             else:
                 kwargs[key] = value
         return dataclasses.replace(base, **kwargs)

@@ -3,8 +3,10 @@
 from __future__ import annotations
 
 import argparse
+import contextlib
 import importlib
 import sys
+import warnings
 
 from fieldvane import __version__
 from fieldvane.io.errors import EXIT_BAD_INPUT, EXIT_FAILURE, EXIT_INTERRUPTED, InputError, JobError
@@ -47,6 +49,30 @@ def _load(module_name: str):
     return importlib.import_module(f"fieldvane.io.commands.{module_name}")
 
 
+@contextlib.contextmanager
+def _warnings_as_notes(command: str):
+    """Show Python/numpy warnings as one-line notes naming the command (each text once), never raw."""
+    seen: dict[str, int] = {}
+
+    def show(message, category, filename, lineno, file=None, line=None):
+        text = f"{category.__name__}: {str(message).splitlines()[0] if str(message) else ''}"
+        seen[text] = seen.get(text, 0) + 1
+        if seen[text] == 1:
+            print(f"fieldvane {command}: note: {text} (in {filename.rsplit('/', 1)[-1]}:{lineno})",
+                  file=sys.stderr)
+
+    with warnings.catch_warnings():
+        warnings.simplefilter("always")
+        warnings.showwarning = show
+        try:
+            yield
+        finally:
+            repeats = sum(n - 1 for n in seen.values())
+            if repeats:
+                print(f"fieldvane {command}: note: the warnings above came {repeats} more time(s)",
+                      file=sys.stderr)
+
+
 def main(argv: list[str] | None = None) -> int:
     """Entry point of the `fieldvane` console command; returns the process exit code."""
     parser = build_parser()
@@ -55,20 +81,20 @@ def main(argv: list[str] | None = None) -> int:
         parser.print_help()
         return EXIT_BAD_INPUT
     module = _load(args._module)
-    try:
-        return int(module.run(args) or 0)
-    except InputError as exc:
-        print(f"fieldvane {args.command}: error: {exc}", file=sys.stderr)
-        return EXIT_BAD_INPUT
-    except JobError as exc:
-        print(f"fieldvane {args.command}: failed: {exc}", file=sys.stderr)
-        return EXIT_FAILURE
-    except KeyboardInterrupt:
-        print(f"fieldvane {args.command}: interrupted", file=sys.stderr)
-        return EXIT_INTERRUPTED
-    except BrokenPipeError:
-        return EXIT_FAILURE
-
+    with _warnings_as_notes(args.command):
+        try:
+            return int(module.run(args) or 0)
+        except InputError as exc:
+            print(f"fieldvane {args.command}: error: {exc}", file=sys.stderr)
+            return EXIT_BAD_INPUT
+        except JobError as exc:
+            print(f"fieldvane {args.command}: failed: {exc}", file=sys.stderr)
+            return EXIT_FAILURE
+        except KeyboardInterrupt:
+            print(f"fieldvane {args.command}: interrupted", file=sys.stderr)
+            return EXIT_INTERRUPTED
+        except BrokenPipeError:
+            return EXIT_FAILURE
 
 if __name__ == "__main__":
     raise SystemExit(main())

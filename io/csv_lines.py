@@ -14,8 +14,10 @@ from fieldvane.io.recording import BASE_COLUMNS, channel_columns, is_float
 MAX_LINE_LEN = 4096          # a longer line is garbage: dropped up to the next newline
 MAX_METADATA_KEYS = 256      # '# key: value' comments kept (the rest are counted only)
 
-COUNTER_NAMES = ("lines_ok", "bad_lines", "comment_lines", "header_lines", "bytes_discarded",
-                 "bytes_fed")
+BOM = b"\xef\xbb\xbf"          # UTF-8 byte order mark (spreadsheets write one): ignored
+
+COUNTER_NAMES = ("lines_ok", "bad_lines", "comment_lines", "header_lines", "long_lines",
+                 "bytes_discarded", "resync_bytes", "resyncs", "bytes_fed")
 
 
 class CsvLayout:
@@ -54,7 +56,7 @@ class CsvLayout:
         self.plan = tuple(plan)
         self.channels = CHANNELS_TWO_PROBES if len(plan) == 4 else CHANNELS_ONE_PROBE
 
-    def parse(self, fields: list[str], source: str, line: int) -> Sample:
+    def parse(self, fields: list[str], source: str, line: int, restarted: bool = False) -> Sample:
         """Return the Sample in one row's fields (t in s, f in Hz, z = x + i y in volts)."""
         if len(fields) != len(self.columns):
             raise InputError(f"expected {len(self.columns)} fields, got {len(fields)}", source,
@@ -77,7 +79,7 @@ class CsvLayout:
                 z[k] = complex(a * math.cos(th), a * math.sin(th))
             else:
                 z[k] = complex(a, b)
-        return Sample(t, f_a, f_b, z, self.channels, 0)
+        return Sample(t, f_a, f_b, z, self.channels, 0, restarted)
 
 
 def _looks_like_header(fields: list[str]) -> bool:
@@ -86,7 +88,14 @@ def _looks_like_header(fields: list[str]) -> bool:
 
 
 class CsvLineDecoder:
-    """Pure text decoder: feed(bytes) returns the Samples of completed lines; counts bad ones."""
+    """Pure text decoder: feed(bytes) returns the Samples of completed lines; counts bad ones.
+
+    Memory stays bounded: a line longer than max_line_len bytes is dropped as it arrives (counted
+    in long_lines, bad_lines and bytes_discarded). The first line of a fresh stream (at start,
+    after resync()) that does not parse counts as resynchronisation (resync_bytes), not as a bad
+    line; after resync(lost=True) the first line is dropped whole (it is a fragment). A header
+    arriving again (a restarted sender) marks the next sample `restarted`.
+    """
 
     def __init__(self, columns: Sequence[str] | None = None, max_line_len: int = MAX_LINE_LEN,
                  source: str = "<serial>"):
@@ -97,12 +106,19 @@ class CsvLineDecoder:
         self.last_error: str | None = None
         self._buf = bytearray()
         self._discarding = False
+        self._discard_resync = False  # the long run being dropped is a resync, not a bad line
+        self._fresh = True            # the next complete line may be a fragment
+        self._skip_line = False       # drop the next line whole (bytes were lost before it)
+        self._restart_next = False
         self.line_no = 0
         self.lines_ok = 0
         self.bad_lines = 0
         self.comment_lines = 0
         self.header_lines = 0
+        self.long_lines = 0
         self.bytes_discarded = 0
+        self.resync_bytes = 0
+        self.resyncs = 0
         self.bytes_fed = 0
 
     def counters(self) -> dict[str, int]:
@@ -110,6 +126,26 @@ class CsvLineDecoder:
         c = {name: getattr(self, name) for name in COUNTER_NAMES}
         c["pending"] = len(self._buf)
         return c
+
+    def resync(self, lost: bool = False) -> None:
+        """Start afresh at the next byte (link reopened; lost=True: bytes went missing mid-line)."""
+        self.resyncs += 1
+        self.resync_bytes += len(self._buf)
+        self._buf.clear()
+        if self._discarding:
+            self._discarding = False
+            self.line_no += 1
+        self._fresh = True
+        self._skip_line = lost
+
+    def _long(self, line: int, n: int) -> None:
+        """Count a line longer than the limit (n bytes dropped so far)."""
+        if self._fresh or self._skip_line:
+            self.resync_bytes += n
+            return
+        self.long_lines += 1
+        self._bad(f"line longer than {self.max_line_len} bytes", line)
+        self.bytes_discarded += n
 
     def feed(self, data: bytes) -> list[Sample]:
         """Return the Samples of the lines completed by data; bad lines are counted, never raised."""
@@ -124,10 +160,13 @@ class CsvLineDecoder:
             if end < 0:
                 rest = n - start
                 if self._discarding:
-                    self.bytes_discarded += rest
+                    if self._discard_resync:
+                        self.resync_bytes += rest
+                    else:
+                        self.bytes_discarded += rest
                 elif len(buf) + rest > self.max_line_len:
-                    self._bad(f"line longer than {self.max_line_len} bytes", self.line_no + 1)
-                    self.bytes_discarded += len(buf) + rest
+                    self._discard_resync = self._fresh or self._skip_line
+                    self._long(self.line_no + 1, len(buf) + rest)
                     buf.clear()
                     self._discarding = True
                 else:
@@ -136,13 +175,22 @@ class CsvLineDecoder:
             seg = end - start
             if self._discarding:
                 self.line_no += 1
-                self.bytes_discarded += seg
+                if self._discard_resync:
+                    self.resync_bytes += seg
+                else:
+                    self.bytes_discarded += seg
                 self._discarding = False
+                self._fresh = self._skip_line = False
             elif len(buf) + seg > self.max_line_len:
                 self.line_no += 1
-                self._bad(f"line longer than {self.max_line_len} bytes", self.line_no)
-                self.bytes_discarded += len(buf) + seg
+                self._long(self.line_no, len(buf) + seg)
                 buf.clear()
+                self._fresh = self._skip_line = False
+            elif self._skip_line:
+                self.line_no += 1
+                self.resync_bytes += len(buf) + seg
+                buf.clear()
+                self._fresh = self._skip_line = False
             else:
                 buf += data[start:end]
                 self._line(bytes(buf), out)
@@ -156,6 +204,9 @@ class CsvLineDecoder:
 
     def _line(self, raw: bytes, out: list[Sample]) -> None:
         self.line_no += 1
+        fresh, self._fresh = self._fresh, False
+        if raw.startswith(BOM):
+            raw = raw[len(BOM):]
         text = raw.decode("utf-8", errors="replace").rstrip("\r")
         stripped = text.strip()
         if not stripped:
@@ -169,21 +220,32 @@ class CsvLineDecoder:
         fields = text.split(",")
         if _looks_like_header(fields):
             try:
-                self.layout = CsvLayout(fields, self.source, self.line_no)
+                layout = CsvLayout(fields, self.source, self.line_no)
             except InputError as exc:
-                self.bad_lines += 1
-                self.last_error = str(exc)
+                self._fail(exc, fresh, len(raw))
                 return
+            self.layout = layout
+            if self.header_lines:
+                self._restart_next = True     # the sender started over
             self.header_lines += 1
             return
         if self.layout is None:
-            self._bad("a header line (column names) must come first", self.line_no)
+            self._fail(InputError("a header line (column names) must come first", self.source,
+                                  self.line_no), fresh, len(raw))
             return
         try:
-            sample = self.layout.parse(fields, self.source, self.line_no)
+            sample = self.layout.parse(fields, self.source, self.line_no, self._restart_next)
         except InputError as exc:
-            self.bad_lines += 1
-            self.last_error = str(exc)
+            self._fail(exc, fresh, len(raw))
             return
+        self._restart_next = False
         self.lines_ok += 1
         out.append(sample)
+
+    def _fail(self, exc: InputError, fresh: bool, n: int) -> None:
+        """Count a line that did not parse: resynchronisation on a fresh stream, else a bad line."""
+        if fresh:
+            self.resync_bytes += n
+            return
+        self.bad_lines += 1
+        self.last_error = str(exc)

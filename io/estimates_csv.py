@@ -1,88 +1,301 @@
-"""Estimates CSV (DESIGN.md section 4): a lossless synchronous writer and a validating reader."""
+"""Estimates CSV (DESIGN.md section 4): a lossless synchronous writer and a fast validating reader.
+
+Bytes: every row is exactly what the CSV logger sink writes for the same record (io/sinks.py
+CsvFormatter): floats as Python's repr (shortest text that reads back to the same double), integers
+as str, an absent value as an empty field, the fixed columns first and the extras after them in
+sorted order unless given. `write` formats one record through the sink's own formatter (live use);
+`write_columns` and `write_estimates` format whole blocks in one compiled pass (io/float_text.py).
+The two must agree byte for byte: tests/test_estimates_csv.py checks it on random records.
+"""
 
 from __future__ import annotations
 
+from collections.abc import Iterable, Mapping, Sequence
+from contextlib import ExitStack
 from pathlib import Path
 
 import numpy as np
 
 from fieldvane.estimator.estimate import ESTIMATE_COLUMNS, Estimate
-from fieldvane.io.errors import InputError
-from fieldvane.io.recording import is_float
+from fieldvane.io.errors import InputError, JobError
+from fieldvane.io.recording import TextLines, fast_parse_lines
+
+WRITE_BLOCK_ROWS = 8192        # rows formatted per compiled call (bounds the text buffer: ~3.5 MB)
+READ_CHUNK_ROWS = 65536        # lines parsed per compiled call when reading
+_INT64_MAX = np.iinfo(np.int64).max
+
+
+def estimate_columns(t, u, b_nT, sigma_deg, flags, extras: Mapping[str, np.ndarray] | None = None
+                     ) -> dict[str, np.ndarray]:
+    """Return the estimates CSV columns (name -> array) of N estimates: t s, u (N, 3) sensor frame, nT, deg, flags.
+
+    bx_nT..bz_nT are b_nT * u, computed as Estimate.row() computes them (same bytes).
+    """
+    u = np.asarray(u, float).reshape(-1, 3)
+    b = np.asarray(b_nT)
+    cols = {"t": np.asarray(t), "ux": u[:, 0], "uy": u[:, 1], "uz": u[:, 2], "b_nT": b,
+            "bx_nT": b * u[:, 0], "by_nT": b * u[:, 1], "bz_nT": b * u[:, 2],
+            "sigma_deg": np.asarray(sigma_deg), "flags": np.asarray(flags, np.int64)}
+    cols.update(extras or {})
+    return cols
+
+
+def _as_column(values) -> np.ndarray | None:
+    """Return values as a float64 or int64 array when that writes the same text as the sink, else None."""
+    if isinstance(values, np.ndarray):
+        kind = values.dtype.kind
+        if kind == "f":
+            return values.astype(np.float64, copy=False)
+        if kind in "ib":
+            return values.astype(np.int64, copy=False)
+        if kind == "u" and (values.size == 0 or int(values.max()) <= _INT64_MAX):
+            return values.astype(np.int64, copy=False)
+        return None
+    values = list(values)
+    types = set(map(type, values))
+    if all(issubclass(tp, (float, np.floating)) for tp in types):
+        return np.array(values, np.float64)
+    if all(issubclass(tp, (int, np.integer, np.bool_)) for tp in types):
+        try:
+            return np.array(values, np.int64)
+        except OverflowError:
+            return None
+    return None                    # mixed ints and floats, None, text: the per-record path
 
 
 class EstimatesWriter:
-    """Writes estimates to a CSV file synchronously (never drops), with the same formatter as the CSV sink."""
+    """Writes estimates to a CSV file synchronously (never drops); the same bytes as the CSV sink.
 
-    def __init__(self, path: str | Path, extras: list[str] | None = None, metadata: dict | None = None):
+    With atomic=True (default) the rows go to a temporary name renamed over `path` by close(); an
+    exception inside a `with` block leaves nothing behind (io/outputs.py atomic_file).
+    """
+
+    def __init__(self, path: str | Path, extras: Sequence[str] | None = None, metadata: dict | None = None,
+                 *, atomic: bool = True):
+        from fieldvane.io.outputs import atomic_file
         from fieldvane.io.sinks import make_formatter
 
         self.path = Path(path)
-        self.path.parent.mkdir(parents=True, exist_ok=True)
-        self._fh = open(self.path, "w", encoding="utf-8", newline="")
+        self._stack = ExitStack()
+        try:
+            if atomic:
+                target = self._stack.enter_context(atomic_file(self.path))
+            else:
+                self.path.parent.mkdir(parents=True, exist_ok=True)
+                target = self.path
+            self._fh = open(target, "wb")
+        except OSError as exc:
+            self._stack.close()
+            raise InputError(f"cannot write estimates: {exc.strerror}", str(self.path)) from None
         self._formatter = make_formatter("csv", extras)
         self._metadata = metadata or {}
+        self._started = False
+        self._closed = False
+        self._buffer: np.ndarray | None = None
         self.rows = 0
+
+    def _put(self, data: bytes | memoryview) -> None:
+        try:
+            self._fh.write(data)
+        except OSError as exc:
+            raise JobError(f"{self.path}: cannot write estimates: {exc.strerror}") from None
+
+    def _start(self, names: Iterable[str]) -> None:
+        """Fix the extra columns from the first record's names and write metadata and header."""
+        self._formatter.bind({k: None for k in names})
+        text = "".join(f"# {k}: {v}\n" for k, v in self._metadata.items()) + self._formatter.header()
+        self._put(text.encode("utf-8"))
+        self._started = True
+
+    @property
+    def columns(self) -> tuple[str, ...] | None:
+        """Return the column names in file order once the header is fixed, else None."""
+        extras = self._formatter.extras
+        return None if extras is None or not self._started else ESTIMATE_COLUMNS + tuple(extras)
 
     def write(self, est: Estimate | dict) -> None:
         """Append one estimate (or a record dict) as a row; the header goes with the first row."""
         row = est.row() if isinstance(est, Estimate) else est
-        if self.rows == 0:
-            self._formatter.bind(row)
-            for k, v in self._metadata.items():
-                self._fh.write(f"# {k}: {v}\n")
-            self._fh.write(self._formatter.header())
-        self._fh.write(self._formatter.format(row))
+        if not self._started:
+            self._start(row)
+        self._put(self._formatter.format(row).encode("utf-8"))
         self.rows += 1
 
+    def write_columns(self, columns: Mapping[str, Sequence]) -> None:
+        """Append N rows given as columns (name -> N values; the estimates CSV names, e.g. from estimate_columns)."""
+        if not self._started:
+            self._start(columns)
+        names = self.columns
+        lengths = {len(v) for v in columns.values()}
+        if len(lengths) > 1:
+            raise ValueError(f"columns of different lengths: {sorted(lengths)}")
+        n = lengths.pop() if lengths else 0
+        if n == 0:
+            return
+        arrays = [None if name not in columns else _as_column(columns[name]) for name in names]
+        if any(a is None and name in columns for a, name in zip(arrays, names)):
+            self._write_records(columns, n)
+            return
+        try:
+            from fieldvane.io.float_text import MAX_FIELD_CHARS, format_rows
+        except ImportError:                 # no compiler: the sink's own per-record path
+            self._write_records(columns, n)
+            return
+        if self._buffer is None:
+            self._buffer = np.empty(WRITE_BLOCK_ROWS * len(names) * (MAX_FIELD_CHARS + 1), np.uint8)
+        for lo in range(0, n, WRITE_BLOCK_ROWS):
+            hi = min(lo + WRITE_BLOCK_ROWS, n)
+            self._put(format_rows([None if a is None else a[lo:hi] for a in arrays], out=self._buffer))
+        self.rows += n
+
+    def _write_records(self, columns: Mapping[str, Sequence], n: int) -> None:
+        """Append rows one record at a time through the sink's formatter (values of unusual types)."""
+        names = list(columns)
+        lists = [columns[k].tolist() if isinstance(columns[k], np.ndarray) else list(columns[k]) for k in names]
+        fmt = self._formatter.format
+        for values in zip(*lists):
+            self._put(fmt(dict(zip(names, values))).encode("utf-8"))
+        self.rows += n
+
+    def write_estimates(self, estimates: Sequence[Estimate]) -> None:
+        """Append a batch of Estimate objects (the same bytes as write() on each, formatted as one block)."""
+        if not estimates:
+            return
+        if not self._started:
+            self._start(estimates[0].row())
+        cols: dict[str, object] = {"t": _as_column([e.t for e in estimates]),
+                                   "b_nT": _as_column([e.b_nT for e in estimates]),
+                                   "sigma_deg": _as_column([e.sigma_deg for e in estimates]),
+                                   "flags": np.array([int(e.flags) for e in estimates], np.int64)}
+        missing = object()
+        extras = {}
+        usual = all(cols[k] is not None and cols[k].dtype == np.float64 for k in ("t", "b_nT", "sigma_deg"))
+        for name in self._formatter.extras:
+            values = [e.extras.get(name, missing) for e in estimates]
+            present = sum(v is not missing for v in values)
+            if present == len(values):
+                extras[name] = _as_column(values)
+                usual = usual and extras[name] is not None
+            elif present:
+                usual = False                # absent in some rows only
+        if not usual:
+            for e in estimates:              # values of mixed types, or gaps: record by record
+                self.write(e)
+            return
+        u = np.array([np.asarray(e.u, float) for e in estimates]).reshape(-1, 3)
+        self.write_columns(estimate_columns(cols["t"], u, cols["b_nT"], cols["sigma_deg"], cols["flags"], extras))
+
     def close(self) -> None:
-        """Flush and close the file (a file with no rows still gets the header)."""
-        if self.rows == 0:
-            self._formatter.bind({})
-            self._fh.write(self._formatter.header())
-        self._fh.close()
+        """Flush and close the file (a file with no rows still gets the header); renames it into place."""
+        if self._closed:
+            return
+        self._closed = True
+        try:
+            if not self._started:
+                self._start({})
+            try:
+                self._fh.close()
+            except OSError as exc:
+                raise JobError(f"{self.path}: cannot write estimates: {exc.strerror}") from None
+        except BaseException as exc:
+            self._discard(exc)
+            raise
+        self._stack.close()
+
+    def _discard(self, exc: BaseException) -> None:
+        """Close quietly and remove the temporary file after a failure."""
+        try:
+            self._fh.close()
+        except OSError:
+            pass
+        try:
+            self._stack.__exit__(type(exc), exc, exc.__traceback__)
+        except BaseException:           # atomic_file re-raises the failure it was handed
+            pass
 
     def __enter__(self):
         return self
 
-    def __exit__(self, *exc):
-        self.close()
+    def __exit__(self, exc_type, exc, tb):
+        if exc_type is None:
+            self.close()
+        elif not self._closed:
+            self._closed = True
+            self._discard(exc)
+        return False
 
 
 def read_estimates(path: str | Path) -> dict[str, np.ndarray]:
-    """Return the columns of an estimates CSV (name -> float array); checks the fixed columns' order."""
+    """Return the columns of an estimates CSV (name -> float64 array, 'flags' int64); checks columns and values.
+
+    Empty fields (an absent value) read as NaN; flags must be non-negative integers.
+    """
     path = str(path)
-    header, rows, meta = None, [], {}
     try:
-        fh = open(path, encoding="utf-8", errors="replace")
+        fh = open(path, "rb")
     except OSError as exc:
         raise InputError(f"cannot open estimates: {exc.strerror}", path) from None
     with fh:
-        for lineno, line in enumerate(fh, 1):
+        source = TextLines(fh)
+        header = None
+        while (line := source.readline()) is not None:
             s = line.strip()
-            if not s:
-                continue
-            if s.startswith("#"):
-                if ":" in s:
-                    k, v = s[1:].split(":", 1)
-                    meta[k.strip()] = v.strip()
-                continue
-            parts = s.split(",")
-            if header is None:
-                header = parts
-                if tuple(header[:len(ESTIMATE_COLUMNS)]) != ESTIMATE_COLUMNS:
-                    raise InputError("the first columns must be " + ", ".join(ESTIMATE_COLUMNS), path, lineno)
-                continue
-            if len(parts) != len(header):
-                raise InputError(f"expected {len(header)} fields, found {len(parts)}", path, lineno)
-            try:
-                rows.append([float(p) for p in parts])
-            except ValueError:
-                bad = next(i for i, p in enumerate(parts) if not is_float(p))
-                raise InputError(f"not a number ({parts[bad][:30]!r})", path, lineno, header[bad]) from None
-    if header is None:
-        raise InputError("no header row", path)
-    data = np.array(rows, float).reshape(-1, len(header))
+            if s and not s.startswith("#"):
+                header = [h.strip() for h in s.split(",")]
+                break
+        lineno = source.line_number
+        if header is None:
+            raise InputError("no header row", path)
+        if tuple(header[:len(ESTIMATE_COLUMNS)]) != ESTIMATE_COLUMNS:
+            raise InputError("the first columns must be " + ", ".join(ESTIMATE_COLUMNS), path, lineno)
+        seen = set()
+        for name in header:
+            if name in seen:
+                raise InputError("column appears twice", path, lineno, name)
+            seen.add(name)
+        parts = []
+        while lines := source.take(READ_CHUNK_ROWS):
+            values = fast_parse_lines(lines, len(header))
+            if values is not None:
+                line_numbers = np.arange(lineno + 1, lineno + 1 + len(lines))
+            else:
+                values, line_numbers = _parse_lines_one_by_one(lines, header, path, lineno + 1)
+            _check_flags(values, line_numbers, header, path)
+            parts.append(values)
+            lineno += len(lines)
+    data = np.concatenate(parts) if parts else np.empty((0, len(header)))
     out = {name: data[:, i] for i, name in enumerate(header)}
     out["flags"] = out["flags"].astype(np.int64)
     return out
+
+
+def _parse_lines_one_by_one(lines: list[str], header: list[str], path: str,
+                            first_line: int) -> tuple[np.ndarray, np.ndarray]:
+    """Return (values, line numbers) of data lines (blank and comment lines dropped); InputError at the first bad one."""
+    rows, numbers, ncol = [], [], len(header)
+    for k, line in enumerate(lines):
+        s = line.strip()
+        if not s or s.startswith("#"):
+            continue
+        fields = s.split(",")
+        if len(fields) != ncol:
+            raise InputError(f"expected {ncol} fields, found {len(fields)}", path, first_line + k)
+        row = []
+        for name, text in zip(header, fields):
+            text = text.strip()
+            try:
+                row.append(float(text) if text else np.nan)
+            except ValueError:
+                raise InputError(f"not a number ({text[:30]!r})", path, first_line + k, name) from None
+        rows.append(row)
+        numbers.append(first_line + k)
+    return np.array(rows, float).reshape(-1, ncol), np.array(numbers, np.int64)
+
+
+def _check_flags(values: np.ndarray, line_numbers: np.ndarray, header: list[str], path: str) -> None:
+    """Raise InputError naming the line when a flags value is not a non-negative integer."""
+    flags = values[:, header.index("flags")]
+    bad = ~(np.isfinite(flags) & (flags >= 0) & (flags == np.floor(flags)) & (flags < 2.0 ** 53))
+    if bad.any():
+        k = int(np.flatnonzero(bad)[0])
+        raise InputError(f"not a non-negative integer ({float(flags[k])!r})", path, int(line_numbers[k]), "flags")

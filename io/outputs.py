@@ -126,3 +126,22 @@ def atomic_folder(path: str | os.PathLike) -> Iterator[Path]:
     except BaseException:
         shutil.rmtree(tmp, ignore_errors=True)
         raise
+
+
+def check_folder_outputs(written: str | os.PathLike, final: str | os.PathLike, *,
+                         inputs: Iterable[str | os.PathLike | None] = (), force: bool = False,
+                         option: str = "--output") -> None:
+    """Apply the overwrite rule file by file before atomic_folder moves `written` (its temporary
+    folder) into `final`: raise InputError naming the first file that exists there (unless force)
+    or that is an input (always)."""
+    written, final = Path(written), Path(final)
+    inputs = [i for i in inputs if i is not None]
+    for item in sorted(written.rglob("*")):
+        if item.is_dir():
+            continue
+        target = final / item.relative_to(written)
+        if any(same_path(target, i) for i in inputs):
+            raise InputError("the output would overwrite an input; choose another folder", str(target),
+                             column=option)
+        if target.exists() and not force:
+            raise InputError("output file exists (use --force to replace it)", str(target), column=option)

@@ -1,4 +1,17 @@
-"""Recording CSV (DESIGN.md section 4): streaming reader with clear errors, and a writer."""
+"""Recording CSV (DESIGN.md section 4): a chunked, vectorized reader with per-line errors, and a writer.
+
+Reading: lines are taken a chunk at a time and parsed by numpy's compiled text reader; a chunk (or a
+piece of one) that numpy cannot parse falls back to a line-by-line parser that names the bad line,
+and only rows that fail the vectorized checks are parsed again one by one for their message. Both
+paths apply the same rules (`_RowRules.parse_line` is the reference):
+
+- a row needs a finite t, f_a, f_b (and applied-field and truth columns when the file has them);
+- lock-in values that are empty or NaN are missing: that channel becomes NaN+NaNj, and the row is
+  kept when at least one probe has all its values (a one-probe file thus needs probe 1 complete);
+- an infinite value, a wrong number of fields or text that is not a number skips the row,
+  counted and reported as `file:line: column 'x': message`;
+- columns the reader does not know are ignored (a warning names them once).
+"""
 
 from __future__ import annotations
 
@@ -9,13 +22,20 @@ from typing import Iterator
 
 import numpy as np
 
-from fieldvane.estimator.samples import CHANNELS_ONE_PROBE, CHANNELS_TWO_PROBES, SampleBlock
+from fieldvane.estimator.samples import (CHANNELS_ONE_PROBE, CHANNELS_TWO_PROBES, SampleBlock,
+                                         channel_probe)
 from fieldvane.io.errors import InputError
 
 BASE_COLUMNS = ("t", "f_a", "f_b")
 FIELD_COLUMNS = ("bx_nT", "by_nT", "bz_nT")
 TRUTH_COLUMNS = ("true_ux", "true_uy", "true_uz", "true_b_nT")
 MAX_REPORTED_PROBLEMS = 20
+DEFAULT_CHUNK_ROWS = 65536
+SLOW_PIECE_ROWS = 64          # below this many lines a failing piece is parsed line by line
+_SPLIT = 16                   # a failing piece is retried as this many smaller pieces
+
+# Line status inside a chunk.
+_FAST, _SLOW_ROW, _IGNORED, _BAD = 0, 1, 2, 3
 
 
 def channel_columns(channel: str, polar: bool) -> tuple[str, str]:
@@ -73,18 +93,207 @@ def resolve_layout(header: list[str], path: str = "<input>", line: int = 1) -> L
     return Layout(names, channels, polar, index, unknown)
 
 
-class RecordingReader:
-    """Streams a recording CSV in bounded-size chunks of SampleBlock; counts and reports bad rows."""
+class TextLines:
+    """Lines (without endings) of a UTF-8 text file read in large binary blocks; `line_number` counts them.
 
-    def __init__(self, path: str | Path, chunk_rows: int = 65536):
+    As Python's text files read them: a leading BOM dropped, bad bytes as U+FFFD, and \\n, \\r\\n
+    or a lone \\r each end a line.
+    """
+
+    def __init__(self, fh, block_bytes: int = 1 << 22):
+        self._fh = fh
+        self._block_bytes = block_bytes
+        self._carry = b""
+        self._pending: list[str] = []
+        self._pos = 0
+        self._eof = False
+        self._first = True
+        self.line_number = 0          # lines handed out so far
+
+    def _refill(self) -> bool:
+        """Decode the next block of whole lines into the pending list; return False at the end of the file."""
+        while not self._eof:
+            data = self._fh.read(self._block_bytes)
+            buf = self._carry + data
+            if not data:
+                self._eof = True
+                complete, self._carry = buf, b""
+            else:
+                cut = buf.rfind(b"\n")
+                if cut < 0:
+                    cut = buf.rfind(b"\r", 0, len(buf) - 1)      # a final \r may start a \r\n
+                if cut < 0:
+                    self._carry = buf                            # a line longer than the block
+                    continue
+                complete, self._carry = buf[:cut + 1], buf[cut + 1:]
+            if self._first:
+                self._first = False
+                if complete.startswith(b"\xef\xbb\xbf"):
+                    complete = complete[3:]
+            if not complete:
+                continue
+            text = complete.decode("utf-8", errors="replace")
+            if "\r" in text:
+                text = text.replace("\r\n", "\n").replace("\r", "\n")
+            lines = text.split("\n")
+            if text.endswith("\n"):
+                lines.pop()
+            self._pending = self._pending[self._pos:] + lines
+            self._pos = 0
+            return True
+        return False
+
+    def readline(self) -> str | None:
+        """Return the next line, or None at the end of the file."""
+        if self._pos >= len(self._pending) and not self._refill():
+            return None
+        line = self._pending[self._pos]
+        self._pos += 1
+        self.line_number += 1
+        return line
+
+    def take(self, n: int) -> list[str]:
+        """Return up to n next lines (fewer only at the end of the file)."""
+        while len(self._pending) - self._pos < n and self._refill():
+            pass
+        out = self._pending[self._pos:self._pos + n]
+        self._pos += len(out)
+        self.line_number += len(out)
+        if self._pos > (1 << 16) and self._pos * 2 > len(self._pending):
+            self._pending, self._pos = self._pending[self._pos:], 0
+        return out
+
+
+def fill_empty_fields(text: str) -> str:
+    """Return CSV text ('\\n' between lines) with every empty field written as 'nan'."""
+    if not text:
+        return text
+    out = text.replace(",,", ",nan,").replace(",,", ",nan,")
+    out = out.replace(",\n", ",nan\n").replace("\n,", "\nnan,")
+    if out[0] == ",":
+        out = "nan" + out
+    if out[-1] == ",":
+        out += "nan"
+    return out
+
+
+def fast_parse_lines(lines: list[str], ncol: int) -> np.ndarray | None:
+    """Return the (len(lines), ncol) float64 values of CSV lines (no line endings; empty fields NaN), or None
+    if any line does not parse as exactly ncol numbers."""
+    for attempt in (0, 1):
+        if attempt:
+            text = "\n".join(lines)
+            filled = fill_empty_fields(text)
+            if filled == text:
+                return None
+            lines = filled.split("\n")
+        try:
+            values = np.loadtxt(lines, delimiter=",", comments=None, dtype=np.float64, ndmin=2)
+        except (ValueError, OverflowError):
+            continue
+        # numpy skips blank lines silently: the count check keeps rows and lines aligned.
+        if values.shape == (len(lines), ncol):
+            return values
+        return None
+    return None
+
+
+class _RowRules:
+    """The row rules of one layout: the line-by-line reference parser and its vectorized twin."""
+
+    def __init__(self, layout: Layout, require_all_probes: bool):
+        ix = layout.index
+        self.layout = layout
+        self.ncol = len(layout.header)
+        required = [ix[c] for c in BASE_COLUMNS]
+        if layout.has_field:
+            required += [ix[c] for c in FIELD_COLUMNS]
+        if layout.has_truth:
+            required += [ix[c] for c in TRUTH_COLUMNS]
+        self.required = np.array(sorted(required), np.intp)
+        self.chan_cols = np.array([[ix[c] for c in channel_columns(ch, layout.polar)]
+                                   for ch in layout.channels], np.intp)          # (C, 2)
+        self.used = sorted(required + self.chan_cols.ravel().tolist())
+        self._required_set = set(required)
+        self._channel_set = set(self.chan_cols.ravel().tolist())
+        probes = sorted({channel_probe(ch) for ch in layout.channels})
+        self.probes = [(p, [k for k, ch in enumerate(layout.channels) if channel_probe(ch) == p])
+                       for p in probes]
+        self.require_all_probes = require_all_probes
+
+    def channel_missing(self, values: np.ndarray) -> np.ndarray:
+        """Return (N, C) True where a channel has an empty or NaN value."""
+        miss = np.isnan(values[:, self.chan_cols.ravel()])
+        return miss[:, 0::2] | miss[:, 1::2]
+
+    def rows_ok(self, values: np.ndarray) -> np.ndarray:
+        """Return (N,) True for rows the reference parser keeps (values already parsed, empty = NaN)."""
+        ok = np.isfinite(values[:, self.required]).all(axis=1)
+        ok &= ~np.isinf(values[:, self.chan_cols.ravel()]).any(axis=1)
+        complete = self._complete_probes(self.channel_missing(values))
+        return ok & (complete.all(axis=1) if self.require_all_probes else complete.any(axis=1))
+
+    def _complete_probes(self, missing: np.ndarray) -> np.ndarray:
+        """Return (N, P) True where every channel of the probe is present."""
+        return np.column_stack([~missing[:, cols].any(axis=1) for _, cols in self.probes])
+
+    def parse_line(self, raw: str) -> tuple[int, list[float] | None, str | None]:
+        """Return (status, values, problem) for one data line: the reference rules, one line at a time."""
+        s = raw.strip()
+        if not s or s.startswith("#"):
+            return _IGNORED, None, None
+        parts = s.split(",")
+        if len(parts) != self.ncol:
+            return _BAD, None, f"expected {self.ncol} fields, found {len(parts)}; row skipped"
+        header = self.layout.header
+        values = [math.nan] * self.ncol
+        empty = set()
+        for i in self.used:
+            text = parts[i].strip()
+            try:
+                values[i] = float(text)
+            except ValueError:
+                if text == "" and i in self._channel_set:
+                    empty.add(i)
+                    continue
+                return _BAD, None, f"column '{header[i]}': not a number ({text[:30]!r}); row skipped"
+        for i in self.used:
+            v = values[i]
+            if (i in self._required_set and not math.isfinite(v)) or (i in self._channel_set and math.isinf(v)):
+                return _BAD, None, f"column '{header[i]}': non-finite value; row skipped"
+        missing = [math.isnan(values[a]) or math.isnan(values[b]) for a, b in self.chan_cols.tolist()]
+        complete = [not any(missing[k] for k in cols) for _, cols in self.probes]
+        if all(complete) if self.require_all_probes else any(complete):
+            return _SLOW_ROW, values, None
+        first = min(i for i in self._channel_set if math.isnan(values[i]))
+        if first in empty:
+            return _BAD, None, f"column '{header[first]}': not a number (''); row skipped"
+        return _BAD, None, f"column '{header[first]}': non-finite value; row skipped"
+
+
+class RecordingReader:
+    """Streams a recording CSV in chunks of at most chunk_rows rows (SampleBlock); counts and reports bad rows.
+
+    After iteration: `skipped_rows`, `rows_read`, `rows_without_probe` {probe: rows kept with that
+    probe incomplete}, `metadata` ('# key: value' lines before the header) and `warnings`
+    (file:line: ... messages, then one summary line per kind of problem).
+    """
+
+    def __init__(self, path: str | Path, chunk_rows: int = DEFAULT_CHUNK_ROWS, *,
+                 require_all_probes: bool = False, fast: bool = True):
         self.path = str(path)
-        self.chunk_rows = int(chunk_rows)
+        self.chunk_rows = max(1, int(chunk_rows))
+        self.require_all_probes = require_all_probes
+        self.fast = fast                  # False: every line through the reference parser (tests)
         self.metadata: dict[str, str] = {}
         self.warnings: list[str] = []
         self.skipped_rows = 0
         self.rows_read = 0
+        self.rows_without_probe: dict[int, int] = {}
         self.layout: Layout | None = None
         self._problems = 0
+        self._rules: _RowRules | None = None
+        self._last_t = -math.inf
 
     def _warn(self, message: str) -> None:
         self._problems += 1
@@ -95,16 +304,16 @@ class RecordingReader:
 
     def __iter__(self) -> Iterator[SampleBlock]:
         try:
-            fh = open(self.path, "r", encoding="utf-8", errors="replace", newline="")
+            fh = open(self.path, "rb")
         except OSError as exc:
             raise InputError(f"cannot open recording: {exc.strerror}", self.path) from None
         with fh:
-            yield from self._read(fh)
+            yield from self._read(TextLines(fh, block_bytes=min(1 << 22, max(1 << 16, 64 * self.chunk_rows))))
 
-    def _read(self, fh) -> Iterator[SampleBlock]:
+    def _read(self, source: TextLines) -> Iterator[SampleBlock]:
         lineno = 0
         layout = None
-        for raw in fh:
+        while (raw := source.readline()) is not None:
             lineno += 1
             s = raw.strip()
             if not s:
@@ -122,64 +331,121 @@ class RecordingReader:
         if layout is None:
             raise InputError("no header row found (a header naming the columns is required)", self.path)
         self.layout = layout
+        self._rules = _RowRules(layout, self.require_all_probes)
         if layout.unknown:
             self._warn(f"{self.path}:{lineno}: ignoring unknown columns: {', '.join(layout.unknown)}")
-        ncol = len(layout.header)
-        buf = np.empty((self.chunk_rows, ncol))
-        lines = np.empty(self.chunk_rows, dtype=np.int64)
-        n = 0
-        last_t = -math.inf
-        for raw in fh:
-            lineno += 1
-            s = raw.strip()
-            if not s or s.startswith("#"):
-                continue
-            parts = s.split(",")
-            if len(parts) != ncol:
-                self.skipped_rows += 1
-                self._warn(f"{self.path}:{lineno}: expected {ncol} fields, found {len(parts)}; row skipped")
-                continue
-            try:
-                row = [float(p) for p in parts]
-            except ValueError:
-                bad = next(i for i, p in enumerate(parts) if not is_float(p))
-                self.skipped_rows += 1
-                self._warn(f"{self.path}:{lineno}: column '{layout.header[bad]}': not a number "
-                           f"({parts[bad].strip()[:30]!r}); row skipped")
-                continue
-            if not all(map(math.isfinite, row)):
-                bad = next(i for i, v in enumerate(row) if not math.isfinite(v))
-                self.skipped_rows += 1
-                self._warn(f"{self.path}:{lineno}: column '{layout.header[bad]}': non-finite value; "
-                           f"row skipped")
-                continue
-            t = row[layout.index["t"]]
-            if t < last_t:
-                self._warn(f"{self.path}:{lineno}: column 't': time goes backwards "
-                           f"({t:.6g} s after {last_t:.6g} s)")
-            last_t = max(last_t, t)
-            buf[n] = row
-            lines[n] = lineno
-            n += 1
-            if n == self.chunk_rows:
-                yield self._block(buf[:n].copy(), layout)
-                n = 0
-        if n:
-            yield self._block(buf[:n].copy(), layout)
+        while True:
+            lines = source.take(self.chunk_rows)
+            if not lines:
+                break
+            block = self._chunk(lines, lineno + 1)
+            lineno += len(lines)
+            if block is not None:
+                yield block
+        self._summarize()
 
-    def _block(self, rows: np.ndarray, layout: Layout) -> SampleBlock:
+    def _summarize(self) -> None:
+        if self.skipped_rows:
+            self.warnings.append(f"{self.path}: {self.skipped_rows} malformed row(s) skipped, "
+                                 f"{self.rows_read} read")
+        for probe, n in sorted(self.rows_without_probe.items()):
+            self.warnings.append(f"{self.path}: {n} row(s) kept without probe {probe} "
+                                 f"(empty or NaN lock-in values read as missing)")
+
+    def _parse_piece(self, lines, lo, hi, values, status, problems, try_fast: bool = True) -> None:
+        """Fill values/status/problems for lines[lo:hi]: compiled parse, else smaller pieces, else line by line."""
+        if self.fast and try_fast:
+            arr = fast_parse_lines(lines[lo:hi], self._rules.ncol)
+            if arr is not None:
+                values[lo:hi] = arr
+                status[lo:hi] = _FAST
+                return
+        if self.fast and hi - lo > SLOW_PIECE_ROWS:
+            step = max(SLOW_PIECE_ROWS, -(-(hi - lo) // _SPLIT))
+            for a in range(lo, hi, step):
+                self._parse_piece(lines, a, min(a + step, hi), values, status, problems)
+            return
+        for k in range(lo, hi):
+            self._reparse(lines, k, values, status, problems)
+
+    def _reparse(self, lines, k, values, status, problems) -> None:
+        st, row, problem = self._rules.parse_line(lines[k])
+        status[k] = st
+        if row is not None:
+            values[k] = row
+        if problem is not None:
+            problems[k] = problem
+
+    def _chunk(self, lines: list[str], first_line: int) -> SampleBlock | None:
+        rules = self._rules
+        n = len(lines)
+        status = np.full(n, _FAST, np.int8)
+        problems: dict[int, str] = {}
+        values = fast_parse_lines(lines, rules.ncol) if self.fast else None
+        if values is None:
+            values = np.full((n, rules.ncol), np.nan)
+            self._parse_piece(lines, 0, n, values, status, problems, try_fast=False)
+        fast = status == _FAST
+        clean = bool(fast.all()) and bool(np.isfinite(values).all())    # the usual chunk: nothing to check
+        suspect = [] if clean or not fast.any() else np.flatnonzero(fast & ~rules.rows_ok(values))
+        for k in suspect:                 # the reference parser decides and words the problem
+            self._reparse(lines, int(k), values, status, problems)
+        kept = (status == _FAST) | (status == _SLOW_ROW)
+        bad = np.flatnonzero(status == _BAD)
+        self.skipped_rows += bad.size
+        rows = values if kept.all() else values[kept]
+        row_index = np.flatnonzero(kept)
+        self._report(rows, row_index, bad, problems, first_line)
+        if rows.shape[0] == 0:
+            return None
+        block = self._block(rows, first_line + row_index, clean)
+        block.skipped_rows = int(bad.size)
+        return block
+
+    def _report(self, rows, row_index, bad, problems, first_line) -> None:
+        """Warn in line order about skipped rows and about time going backwards (kept rows)."""
+        t = rows[:, self.layout.index["t"]]
+        if t.size:
+            running = np.maximum.accumulate(np.concatenate(([self._last_t], t)))
+            back = np.flatnonzero(t < running[:-1])
+            self._last_t = float(running[-1])
+        else:
+            back = np.empty(0, np.intp)
+        events = sorted([(int(k), -1) for k in bad] + [(int(row_index[j]), int(j)) for j in back])
+        for k, j in events:
+            if self._problems > MAX_REPORTED_PROBLEMS:
+                self._problems += len(events) - events.index((k, j))
+                break
+            where = f"{self.path}:{first_line + k}"
+            if j < 0:
+                self._warn(f"{where}: {problems[k]}")
+            else:
+                self._warn(f"{where}: column 't': time goes backwards "
+                           f"({t[j]:.6g} s after {running[j]:.6g} s)")
+
+    def _block(self, rows: np.ndarray, lines: np.ndarray, clean: bool = False) -> SampleBlock:
+        layout, rules = self.layout, self._rules
         ix = layout.index
-        self.rows_read += rows.shape[0]
-        z = np.empty((rows.shape[0], len(layout.channels)), complex)
-        for k, ch in enumerate(layout.channels):
-            a, b = (rows[:, ix[c]] for c in channel_columns(ch, layout.polar))
+        n = rows.shape[0]
+        self.rows_read += n
+        z = np.empty((n, len(layout.channels)), complex)
+        for k, (ia, ib) in enumerate(rules.chan_cols.tolist()):
+            a, b = rows[:, ia], rows[:, ib]
             z[:, k] = a * np.exp(1j * np.radians(b)) if layout.polar else a + 1j * b
-        block = SampleBlock(t=rows[:, ix["t"]], f=rows[:, [ix["f_a"], ix["f_b"]]], z=z,
+        missing = None if clean else rules.channel_missing(rows)
+        if missing is not None and missing.any():
+            z[missing] = complex(math.nan, math.nan)
+            for probe, cols in rules.probes:
+                count = int(missing[:, cols].any(axis=1).sum())
+                if count:
+                    self.rows_without_probe[probe] = self.rows_without_probe.get(probe, 0) + count
+        block = SampleBlock(t=np.ascontiguousarray(rows[:, ix["t"]]), f=rows[:, [ix["f_a"], ix["f_b"]]], z=z,
                             channels=layout.channels, metadata=dict(self.metadata))
+        block.lines = np.asarray(lines, np.int64)
         if layout.has_field:
             block.applied_b_nT = rows[:, [ix[c] for c in FIELD_COLUMNS]]
         if layout.has_truth:
-            block.truth = {c: rows[:, ix[c]] for c in TRUTH_COLUMNS}
+            block.truth = {c: np.ascontiguousarray(rows[:, ix[c]]) for c in TRUTH_COLUMNS}
         return block
 
 
@@ -192,17 +458,19 @@ def is_float(s: str) -> bool:
         return False
 
 
-def read_recording(path: str | Path, chunk_rows: int = 65536) -> tuple[SampleBlock, list[str]]:
-    """Return the whole recording as one SampleBlock plus the list of warnings (file:line: ...)."""
-    reader = RecordingReader(path, chunk_rows)
+def read_recording(path: str | Path, chunk_rows: int = DEFAULT_CHUNK_ROWS, *,
+                   require_all_probes: bool = False) -> tuple[SampleBlock, list[str]]:
+    """Return the whole recording as one SampleBlock plus the list of warnings (file:line: ...).
+
+    require_all_probes=True skips (and counts) rows with any lock-in value missing instead of
+    keeping them with NaN channels.
+    """
+    reader = RecordingReader(path, chunk_rows, require_all_probes=require_all_probes)
     blocks = list(reader)
     if not blocks:
         raise InputError("no valid data rows", str(path))
     out = concatenate_blocks(blocks)
     out.skipped_rows = reader.skipped_rows
-    if reader.skipped_rows:
-        reader.warnings.append(f"{path}: {reader.skipped_rows} malformed row(s) skipped, "
-                               f"{reader.rows_read} read")
     return out, reader.warnings
 
 
@@ -211,11 +479,13 @@ def concatenate_blocks(blocks: list[SampleBlock]) -> SampleBlock:
     first = blocks[0]
     out = SampleBlock(t=np.concatenate([b.t for b in blocks]), f=np.concatenate([b.f for b in blocks]),
                       z=np.concatenate([b.z for b in blocks]), channels=first.channels,
-                      metadata=dict(first.metadata))
+                      metadata=dict(first.metadata), skipped_rows=sum(b.skipped_rows for b in blocks))
     if first.applied_b_nT is not None:
         out.applied_b_nT = np.concatenate([b.applied_b_nT for b in blocks])
     if first.truth:
         out.truth = {k: np.concatenate([b.truth[k] for b in blocks]) for k in first.truth}
+    if all(getattr(b, "lines", None) is not None for b in blocks):
+        out.lines = np.concatenate([b.lines for b in blocks])
     return out
 
 

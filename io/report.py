@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 import math
+import re
 from dataclasses import dataclass, field
 from pathlib import Path
 
@@ -24,6 +25,11 @@ KNOWN_BITS = sum(int(f) for f in EstimateFlag)
 # P(|e| < k sigma) = 1 - exp(-k^2) (Rayleigh distribution).
 WITHIN_1_EXPECTED = 1.0 - math.exp(-1.0)
 WITHIN_2_EXPECTED = 1.0 - math.exp(-4.0)
+# 1-D Gaussian: P(|e| <= sigma) = erf(1 / sqrt 2).
+B_WITHIN_1_EXPECTED = math.erf(1.0 / math.sqrt(2.0))
+STILL_WINDOW_S = 1.0          # windows compared by the still-stretch detector; also the settling time dropped
+STILL_MIN_S = 5.0             # shortest still stretch worth an Allan deviation
+STILL_MIN_SAMPLES = 64
 
 # key -> (unit, meaning). Order is the order of the summary table; flag rates are inserted after
 # `samples_with_direction`. Keys only appear in a summary when their input columns exist.
@@ -60,6 +66,28 @@ FIELDS: dict[str, tuple[str, str]] = {
     "b_error_mean_nT": ("nT", "mean of b_nT - true_b_nT"),
     "b_error_std_nT": ("nT", "standard deviation of b_nT - true_b_nT"),
     "b_error_rms_nT": ("nT", "RMS of b_nT - true_b_nT"),
+    "sigma_b_nT_median": ("nT", "median 1-sigma magnitude uncertainty (sigma_b_nT column)"),
+    "sigma_b_nT_p95": ("nT", "95th percentile of sigma_b_nT"),
+    "b_within_1sigma": ("fraction", f"|b_nT - true_b_nT| <= sigma_b_nT ({B_WITHIN_1_EXPECTED:.3f} expected, 1-D Gaussian)"),
+    "b_within_1sigma_expected": ("fraction", "erf(1 / sqrt 2)"),
+    "static_start_s": ("s", "start of the static stretch analysed for noise (time column of the file)"),
+    "static_end_s": ("s", "end of the static stretch"),
+    "static_samples": ("", "samples in the static stretch"),
+    "static_rate_hz": ("Hz", "sample rate in the static stretch (1 / median step)"),
+    "static_dir_rms_deg": ("deg", "RMS angle of the direction about its mean in the stretch (both axes)"),
+    "static_dir_white_deg_per_rtHz": ("deg/sqrt(Hz)", "white-noise level of the direction (Welch, both axes)"),
+    "static_bound_density_deg_per_rtHz": ("deg/sqrt(Hz)", "median single-sample Cramer-Rao bound x sqrt(2 / rate): "
+                                                          "the white level of independent samples at the bound"),
+    "static_dir_adev_tau0_deg": ("deg", "overlapping Allan deviation of the direction at one sample period"),
+    "static_dir_adev_1s_deg": ("deg", "overlapping Allan deviation of the direction at 1 s"),
+    "static_dir_adev_min_deg": ("deg", "smallest Allan deviation of the direction"),
+    "static_dir_adev_min_tau_s": ("s", "averaging time of the smallest direction Allan deviation"),
+    "static_b_rms_nT": ("nT", "RMS of b_nT about its mean in the stretch"),
+    "static_b_white_nT_per_rtHz": ("nT/sqrt(Hz)", "white-noise level of b_nT (Welch)"),
+    "static_b_adev_tau0_nT": ("nT", "overlapping Allan deviation of b_nT at one sample period"),
+    "static_b_adev_1s_nT": ("nT", "overlapping Allan deviation of b_nT at 1 s"),
+    "static_b_adev_min_nT": ("nT", "smallest Allan deviation of b_nT"),
+    "static_b_adev_min_tau_s": ("s", "averaging time of the smallest b_nT Allan deviation"),
 }
 
 
@@ -82,8 +110,13 @@ def _mean(x: np.ndarray) -> float:
     return float(np.mean(x)) if x.size else math.nan
 
 
-def _std(x: np.ndarray) -> float:
-    return float(np.std(x, ddof=1)) if x.size > 1 else math.nan
+def _std(x: np.ndarray, scale: float = 0.0) -> float:
+    """Sample std; a spread within the float resolution of the values (or of `scale`) is reported as 0."""
+    from fieldvane.estimator.noise_stats import below_resolution
+
+    if x.size < 2:
+        return math.nan
+    return 0.0 if below_resolution(x, scale) else float(np.std(x, ddof=1))
 
 
 def _pct(x: np.ndarray, q: float) -> float:
@@ -103,7 +136,7 @@ def median_period(t: np.ndarray) -> float:
 
 def channel_count(estimates: dict) -> int | None:
     """Return the number of lock-in channels named by phase_<ch> columns, or None when there are none."""
-    n = sum(1 for k in estimates if k.startswith("phase_"))
+    n = sum(1 for k in estimates if re.fullmatch(r"phase_[0-9]+[ab](_deg)?", k))
     return n or None
 
 
@@ -209,7 +242,11 @@ def summarize(estimates: dict, truth: dict | None = None, channels: int | None =
     if "b_a_nT" in estimates and "b_b_nT" in estimates:
         with np.errstate(divide="ignore", invalid="ignore"):
             ratio = _finite(np.asarray(estimates["b_a_nT"], float) / np.asarray(estimates["b_b_nT"], float))
-        s["b_ratio_mean"], s["b_ratio_std"] = _mean(ratio), _std(ratio)
+        s["b_ratio_mean"], s["b_ratio_std"] = _mean(ratio), _std(ratio, 1.0)
+    if "sigma_b_nT" in estimates:
+        sb = _finite(estimates["sigma_b_nT"])
+        s["sigma_b_nT_median"] = float(np.median(sb)) if sb.size else math.nan
+        s["sigma_b_nT_p95"] = _pct(sb, 95)
 
     if truth is not None:
         te = truth_errors(estimates, truth)
@@ -229,9 +266,179 @@ def summarize(estimates: dict, truth: dict | None = None, channels: int | None =
         s["within_1sigma_expected"] = WITHIN_1_EXPECTED
         s["within_2sigma_expected"] = WITHIN_2_EXPECTED
         be = _finite(te["b_error_nT"])
-        s["b_error_mean_nT"], s["b_error_std_nT"] = _mean(be), _std(be)
+        s["b_error_mean_nT"] = _mean(be)
+        s["b_error_std_nT"] = _std(be, float(np.nanmax(np.abs(np.asarray(estimates["b_nT"], float)))))
         s["b_error_rms_nT"] = float(np.sqrt(np.mean(be ** 2))) if be.size else math.nan
+        if "sigma_b_nT" in estimates:
+            sb = np.asarray(estimates["sigma_b_nT"], float)
+            ok = np.isfinite(te["b_error_nT"]) & np.isfinite(sb)
+            s["b_within_1sigma"] = _mean((np.abs(te["b_error_nT"][ok]) <= sb[ok]).astype(float))
+            s["b_within_1sigma_expected"] = B_WITHIN_1_EXPECTED
     return s
+
+
+# ---------------------------------------------------------------------------------------- static noise
+
+@dataclass
+class StaticNoise:
+    """Noise statistics of one static stretch (rows start..end-1): Allan deviations, spectra, white levels.
+
+    Direction numbers are total angles (both tangent axes) in deg; |B| numbers in nT. b_adev, b_spec
+    are None (and b_note says why) when b_nT is constant within float resolution.
+    """
+
+    start: int
+    end: int
+    start_s: float
+    end_s: float
+    rate_hz: float
+    source: str
+    dir_rms_deg: float
+    dir_adev: object
+    dir_spec: object
+    dir_white: float
+    band_hz: tuple[float, float]
+    b_rms_nT: float = math.nan
+    b_adev: object = None
+    b_spec: object = None
+    b_white: float = math.nan
+    b_note: str | None = None
+    bound_median_deg: float = math.nan
+
+    @property
+    def samples(self) -> int:
+        """Return the number of samples in the stretch."""
+        return self.end - self.start
+
+    @property
+    def bound_density_deg(self) -> float:
+        """Return the median single-sample bound as a white density, bound x sqrt(2 / rate), deg/sqrt(Hz)."""
+        return self.bound_median_deg * math.sqrt(2.0 / self.rate_hz)
+
+    def numbers(self) -> dict:
+        """Return the summary entries (static_* keys; units in FIELDS)."""
+        from fieldvane.estimator.noise_stats import value_at_tau
+
+        out = {"static_start_s": self.start_s, "static_end_s": self.end_s, "static_samples": self.samples,
+               "static_rate_hz": self.rate_hz, "static_dir_rms_deg": self.dir_rms_deg,
+               "static_dir_white_deg_per_rtHz": self.dir_white}
+        if math.isfinite(self.bound_median_deg):
+            out["static_bound_density_deg_per_rtHz"] = self.bound_density_deg
+        for key, adev, unit in (("dir", self.dir_adev, "deg"), ("b", self.b_adev, "nT")):
+            if adev is None:
+                continue
+            if key == "b":
+                out["static_b_rms_nT"] = self.b_rms_nT
+                out["static_b_white_nT_per_rtHz"] = self.b_white
+            k = int(np.argmin(adev.adev))
+            out[f"static_{key}_adev_tau0_{unit}"] = float(adev.adev[0])
+            out[f"static_{key}_adev_1s_{unit}"] = value_at_tau(adev, 1.0)
+            out[f"static_{key}_adev_min_{unit}"] = float(adev.adev[k])
+            out[f"static_{key}_adev_min_tau_s"] = float(adev.tau_s[k])
+        return out
+
+
+def _robust_step_std(x: np.ndarray) -> float:
+    """Return a white-noise std estimate from successive differences (MAD, robust to steps), unit of x."""
+    d = np.diff(x[np.isfinite(x)])
+    if d.size < 2:
+        return 0.0
+    return 1.4826 * float(np.median(np.abs(d - np.median(d)))) / math.sqrt(2.0)
+
+
+def find_static(estimates: dict, truth: dict | None = None,
+                window: tuple[float, float] | None = None) -> tuple[int, int, str] | None:
+    """Return (start row, end row exclusive, how it was found) of the static stretch to analyse, or None.
+
+    window (start s, end s, in the file's time column) is taken as given. Otherwise the longest
+    stretch where the truth (when given) or the estimate is still: 1 s windows whose mean direction
+    and |B| do not move (truth: not at all; estimates: under 3 median sigma_deg and 5 standard
+    errors of |B|), at least STILL_MIN_S long; its first STILL_WINDOW_S is dropped as settling.
+    """
+    from fieldvane.estimator.noise_stats import still_runs
+
+    t = np.asarray(estimates["t"], float)
+    u = np.column_stack([estimates["ux"], estimates["uy"], estimates["uz"]])
+    if window is not None:
+        rows = np.flatnonzero((t >= window[0]) & (t <= window[1]))
+        if rows.size == 0:
+            return None
+        return int(rows[0]), int(rows[-1]) + 1, f"--static {window[0]:g}:{window[1]:g}"
+    if truth is not None:
+        idx = match_truth(t, truth["t"])
+        ok = idx >= 0
+        tu = np.full(u.shape, np.nan)
+        tb = np.full(t.shape, np.nan)
+        tu[ok] = np.column_stack([truth["true_ux"], truth["true_uy"], truth["true_uz"]])[idx[ok]]
+        tb[ok] = np.asarray(truth["true_b_nT"], float)[idx[ok]]
+        tu[~np.all(np.isfinite(u), axis=1)] = np.nan          # no estimate, nothing to measure
+        runs = still_runs(t, tu, tb, window_s=STILL_WINDOW_S, step_deg=1e-6, step_nT=1e-6,
+                          min_duration_s=STILL_MIN_S)
+        source = "still in the truth"
+    else:
+        sigma = _finite(estimates["sigma_deg"])
+        if sigma.size == 0:
+            return None
+        b = np.asarray(estimates["b_nT"], float)
+        period = median_period(t)
+        per_window = max(2.0, STILL_WINDOW_S / period) if math.isfinite(period) else 2.0
+        finite_b = b[np.isfinite(b)]
+        floor = 16 * float(np.spacing(np.max(np.abs(finite_b)))) if finite_b.size else 0.0
+        step_nT = 5.0 * _robust_step_std(b) * math.sqrt(2.0 / per_window) + floor
+        runs = still_runs(t, u, b, window_s=STILL_WINDOW_S, step_deg=3.0 * float(np.median(sigma)),
+                          step_nT=step_nT, min_duration_s=STILL_MIN_S)
+        source = "still in the estimates"
+    if not runs:
+        return None
+    start, end = runs[0]
+    period = median_period(t[start:end])
+    skip = int(round(STILL_WINDOW_S / period)) if math.isfinite(period) else 0
+    if end - start - skip < STILL_MIN_SAMPLES:
+        return None
+    return start + skip, end, source
+
+
+def static_noise(estimates: dict, start: int, end: int, source: str, path=None) -> StaticNoise:
+    """Return the noise statistics of rows start..end-1 (uniformly sampled, finite direction and |B|)."""
+    from fieldvane.estimator import noise_stats as ns
+
+    t = np.asarray(estimates["t"], float)[start:end]
+    u = np.column_stack([estimates["ux"], estimates["uy"], estimates["uz"]])[start:end]
+    b = np.asarray(estimates["b_nT"], float)[start:end]
+    good = np.all(np.isfinite(u), axis=1) & np.isfinite(b) & np.isfinite(t)
+    where = f"static stretch {t[0]:g}..{t[-1]:g} s" if t.size else "static stretch"
+    if t.size < STILL_MIN_SAMPLES:
+        raise InputError(f"the {where} holds {t.size} samples; the noise analysis needs at least "
+                         f"{STILL_MIN_SAMPLES}", None if path is None else str(path), column="--static")
+    if not good.all():
+        raise InputError(f"the {where} has {int((~good).sum())} rows without a direction or |B|; choose a "
+                         "stretch without them", None if path is None else str(path), column="--static")
+    period = median_period(t)
+    steps = np.diff(t)
+    if np.any(steps > 1.5 * period) or np.any(steps <= 0):
+        raise InputError(f"the {where} is not evenly sampled (gaps or repeated times); the Allan deviation "
+                         "and spectrum need even sampling", None if path is None else str(path), column="--static")
+    rate = 1.0 / period
+    off = ns.tangent_offsets_deg(u)
+    dir_spec = ns.direction_psd(u, rate)
+    band = ns.default_band(dir_spec)
+    out = StaticNoise(start, end, float(t[0]), float(t[-1]), rate, source,
+                      dir_rms_deg=float(np.sqrt(np.mean(np.sum(off ** 2, axis=1)))),
+                      dir_adev=ns.direction_adev(u, rate), dir_spec=dir_spec,
+                      dir_white=ns.white_level(dir_spec, band), band_hz=band)
+    if "bound_deg" in estimates:
+        bound = _finite(np.asarray(estimates["bound_deg"], float)[start:end])
+        if bound.size:
+            out.bound_median_deg = float(np.median(bound))
+    if ns.below_resolution(b):
+        out.b_note = (f"b_nT is constant within float resolution in the stretch ({float(np.median(b)):.12g} nT): "
+                      "no Allan deviation or spectrum of |B|")
+    else:
+        out.b_rms_nT = float(np.std(b))
+        out.b_adev = ns.overlapping_adev(b, rate)
+        out.b_spec = ns.welch_psd(b, rate)
+        out.b_white = ns.white_level(out.b_spec, band)
+    return out
 
 
 # ---------------------------------------------------------------------------------------- inputs
@@ -354,8 +561,12 @@ class ReportOutput:
 
 
 def make_report(estimates_path, truth_path, out_dir, channels: int | None = None,
-                figures: bool = True) -> ReportOutput:
-    """Return the report written to out_dir: summary.md and, when matplotlib is there, the PNG figures."""
+                figures: bool = True, static: tuple[float, float] | None = None) -> ReportOutput:
+    """Return the report written to out_dir: summary.md and, when matplotlib is there, the PNG figures.
+
+    static (start s, end s) names the static stretch for the noise analysis; by default the
+    longest still stretch is found (from the truth when given, else from the estimates).
+    """
     from fieldvane.io.estimates_csv import read_estimates
 
     est = read_estimates(estimates_path)
@@ -368,6 +579,24 @@ def make_report(estimates_path, truth_path, out_dir, channels: int | None = None
     dof, dof_source = nis_dof(est, channels)
     if "nis" in est:
         notes.append(f"NIS degrees of freedom: {dof_source}")
+    still = None
+    found = find_static(est, truth, static)
+    if found is None:
+        if static is not None:
+            raise InputError(f"no estimate between {static[0]:g} and {static[1]:g} s", str(estimates_path),
+                             column="--static")
+        notes.append(f"no static stretch of {STILL_MIN_S:g} s or more found: no Allan deviation or noise "
+                     "spectrum (give --static START:END to choose one)")
+    else:
+        still = static_noise(est, *found, path=estimates_path)
+        summary.update(still.numbers())
+        lo, hi = still.band_hz
+        notes.append(f"static stretch {still.start_s:g} to {still.end_s:g} s ({still.source}"
+                     f"{'' if static else f'; first {STILL_WINDOW_S:g} s dropped as settling'}); white levels "
+                     f"are the mean Welch density between {lo:.3g} and {hi:.3g} Hz; Allan deviation: "
+                     "overlapping estimator, NIST SP 1065 (2008)")
+        if still.b_note:
+            notes.append(still.b_note)
     sources = {"estimates": str(estimates_path)}
     if truth_path is not None:
         sources["truth"] = str(truth_path)
@@ -392,7 +621,7 @@ def make_report(estimates_path, truth_path, out_dir, channels: int | None = None
             error = None
             if truth is not None:
                 error = truth_errors(est, truth)["error_deg"]
-            images = plots.write_figures(out, est, truth=truth, error_deg=error, nis_dof=dof)
+            images = plots.write_figures(out, est, truth=truth, error_deg=error, nis_dof=dof, still=still)
     else:
         skipped = "figures not requested"
     _write_text(md, summary_markdown(summary, sources, [(t, p.name) for t, p in images],
@@ -400,9 +629,10 @@ def make_report(estimates_path, truth_path, out_dir, channels: int | None = None
     return ReportOutput([md] + [p for _, p in images], summary, notes, skipped)
 
 
-def write_report(estimates_path, truth_path, out_dir, channels: int | None = None) -> list[Path]:
+def write_report(estimates_path, truth_path, out_dir, channels: int | None = None,
+                 static: tuple[float, float] | None = None) -> list[Path]:
     """Return the files of the report written to out_dir (summary.md, then the PNG figures if drawn)."""
-    return make_report(estimates_path, truth_path, out_dir, channels).files
+    return make_report(estimates_path, truth_path, out_dir, channels, static=static).files
 
 
 def _write_text(path: Path, text: str) -> None:

@@ -1,6 +1,8 @@
-"""The serial link: a reader thread that only reads bytes, stamps host receive times and queues
-them; reopens with back-off when the port vanishes. Ports are opened by pyserial URL (a device
-path, a pty path, `loop://`, `socket://HOST:PORT`, ...)."""
+"""The serial link: a reader thread that only reads bytes, stamps host receive times, hands them
+to the capture first and then to a bounded queue for the estimator; reopens with back-off when
+the port vanishes. Ports are opened by pyserial URL (a device path, a pty path, `loop://`,
+`socket://HOST:PORT`, ...) without the input flush pyserial does on open, so nothing that
+arrived before the open is thrown away."""
 
 from __future__ import annotations
 
@@ -10,19 +12,25 @@ import threading
 import time
 from collections.abc import Callable
 
-from fieldvane.io.capture import Chunk
+from fieldvane.io.capture import EVENT_LINK_OPEN, EVENT_LOST, Chunk
 
 DEFAULT_MAX_QUEUED_BYTES = 16 * 1024 * 1024
 
 
 class ChunkQueue:
-    """A FIFO of Chunks bounded in bytes: a put that would overflow it is refused (and counted)."""
+    """A FIFO of Chunks bounded in bytes: a put that would overflow it is refused (and counted).
+
+    After a refusal the next accepted chunk is preceded by an EVENT_LOST chunk, so the consumer
+    knows the stream has a hole there (the decoder resynchronises). Event chunks hold no bytes
+    and are never refused.
+    """
 
     def __init__(self, max_bytes: int = DEFAULT_MAX_QUEUED_BYTES):
         self.max_bytes = max_bytes
         self._items: collections.deque[Chunk] = collections.deque()
         self._bytes = 0
         self._cond = threading.Condition()
+        self._hole = 0
         self.chunks_dropped = 0
         self.bytes_dropped = 0
 
@@ -33,15 +41,28 @@ class ChunkQueue:
 
     def put(self, chunk: Chunk) -> bool:
         """Queue chunk without blocking; return False (counted as dropped) if it would overflow."""
+        n = len(chunk.data)
         with self._cond:
-            if self._bytes + len(chunk.data) > self.max_bytes:
+            if n and self._bytes + n > self.max_bytes:
                 self.chunks_dropped += 1
-                self.bytes_dropped += len(chunk.data)
+                self.bytes_dropped += n
+                self._hole += n
                 return False
+            if self._hole:
+                self._items.append(Chunk(chunk.host_time_ns, b"", EVENT_LOST, self._hole))
+                self._hole = 0
             self._items.append(chunk)
-            self._bytes += len(chunk.data)
+            self._bytes += n
             self._cond.notify()
             return True
+
+    def clear(self) -> tuple[int, int]:
+        """Empty the queue; return (chunks, bytes) that were waiting."""
+        with self._cond:
+            chunks, n = len(self._items), self._bytes
+            self._items.clear()
+            self._bytes = 0
+            return chunks, n
 
     def get(self, timeout: float | None = None) -> Chunk | None:
         """Return the oldest chunk, waiting up to timeout s; None if nothing arrived."""
@@ -63,7 +84,7 @@ class SerialLink:
                  chunk_size: int = 4096, max_queued_bytes: int = DEFAULT_MAX_QUEUED_BYTES,
                  reconnect_min_s: float = 0.05, reconnect_max_s: float = 2.0,
                  opener: Callable[[], object] | None = None,
-                 clock: Callable[[], int] = time.time_ns, **serial_kwargs):
+                 clock: Callable[[], int] = time.time_ns, capture=None, **serial_kwargs):
         self.url = url
         self.baudrate = baudrate
         self.read_timeout = read_timeout
@@ -74,6 +95,7 @@ class SerialLink:
         self._serial_kwargs = serial_kwargs
         self._clock = clock
         self.queue = ChunkQueue(max_queued_bytes)
+        self.capture = capture          # a CaptureThread: gets every chunk before the queue does
         self.connected = threading.Event()
         self._stop = threading.Event()
         self._state = threading.Condition()
@@ -87,9 +109,13 @@ class SerialLink:
         self.last_error: str | None = None
 
     def _default_opener(self):
-        import serial
-        return serial.serial_for_url(self.url, baudrate=self.baudrate, timeout=0,
-                                     **self._serial_kwargs)
+        return open_port(self.url, baudrate=self.baudrate, timeout=0, **self._serial_kwargs)
+
+    def attach_capture(self, capture) -> None:
+        """Give every chunk read from now on to capture.put() first (before the start only)."""
+        if self._thread is not None:
+            raise RuntimeError("attach the capture before the link starts")
+        self.capture = capture
 
     def _prepare(self, port) -> int | None:
         """Return a file descriptor to wait on (port made non-blocking), or None to block in read."""
@@ -152,7 +178,7 @@ class SerialLink:
         return self.queue.get(timeout)
 
     def wait_for(self, predicate: Callable[["SerialLink"], bool], timeout: float) -> bool:
-        """Return True once predicate(link) holds after an open or disconnect (False on timeout)."""
+        """Return True once predicate(link) holds after an open, disconnect or read (False on timeout)."""
         with self._state:
             return self._state.wait_for(lambda: predicate(self), timeout)
 
@@ -193,6 +219,10 @@ class SerialLink:
                         continue
                     self.opens += 1
                     delay = self.reconnect_min_s
+                    opened = Chunk(self._clock(), b"", EVENT_LINK_OPEN)
+                    if self.capture is not None:
+                        self.capture.put(opened)
+                    self.queue.put(opened)
                     self.connected.set()
                     self._notify()
                     if self._stop.is_set():
@@ -209,9 +239,13 @@ class SerialLink:
                     self._stop.wait(delay)
                     continue
                 if data:
-                    self.queue.put(Chunk(self._clock(), bytes(data)))
+                    chunk = Chunk(self._clock(), bytes(data))
                     self.bytes_read += len(data)
                     self.chunks_read += 1
+                    if self.capture is not None:      # the capture first: it must see every byte
+                        self.capture.put(chunk)
+                    self.queue.put(chunk)
+                    self._notify()
         finally:
             self._close_port()
             self._notify()
@@ -224,3 +258,27 @@ class SerialLink:
                 port.close()
             except Exception:
                 pass
+
+
+def open_port(url: str, **kwargs):
+    """Return an open pyserial port for url, opened without discarding bytes already waiting.
+
+    pyserial empties the input buffer when it opens a port (posix ports, socket://, loop://);
+    bytes a sensor sent in that instant would vanish uncounted. The flush is skipped here, so
+    they are read like any others.
+    """
+    import serial
+
+    port = serial.serial_for_url(url, do_not_open=True, **kwargs)
+    keep = lambda: None  # noqa: E731 -- stands in for the flush during open() only
+    port._reset_input_buffer = keep
+    port.reset_input_buffer = keep
+    try:
+        port.open()
+    finally:
+        for name in ("_reset_input_buffer", "reset_input_buffer"):
+            try:
+                delattr(port, name)
+            except AttributeError:
+                pass
+    return port

@@ -1,4 +1,4 @@
-"""Logger sinks: estimate records formatted as CSV, JSON lines or NMEA-style sentences, written
+"""Logger sinks: estimate records formatted as CSV, JSON lines or NMEA 0183 proprietary sentences, written
 to stdout, a file, a serial port, TCP clients or UDP, each behind a bounded queue and its own
 writer thread so that a slow or absent logger never blocks the caller.
 
@@ -7,17 +7,19 @@ The `--out` grammar (parse_sink_spec) is documented in docs/sinks.md.
 
 from __future__ import annotations
 
+import datetime
 import json
 import math
 import os
 import queue
+import re
 import select
 import socket
 import sys
 import threading
 import time
 from collections.abc import Iterable, Mapping, Sequence
-from dataclasses import dataclass
+from dataclasses import dataclass, replace
 
 from fieldvane.estimator.estimate import ESTIMATE_COLUMNS  # one definition of the columns
 from fieldvane.io.errors import InputError
@@ -25,7 +27,9 @@ from fieldvane.io.errors import InputError
 FORMATS = ("csv", "jsonl", "nmea")
 TRANSPORTS = ("stdout", "file", "tcp", "udp", "serial")
 FILE_SUFFIXES = {".csv": "csv", ".jsonl": "jsonl", ".nmea": "nmea"}
-NMEA_SENTENCE = "FVDIR"
+NMEA_MNEMONIC = "XFV"        # our manufacturer mnemonic: proprietary sentences $PXFVD and $PXFVM
+NMEA_SENTENCES = "D"         # sentences sent per record by default (D only; "DM" adds the M sentence)
+NMEA_MAX_LENGTH = 82         # NMEA 0183: '$' to LF inclusive
 DEFAULT_QUEUE_SIZE = 4096
 DEFAULT_HOST = "127.0.0.1"
 
@@ -68,25 +72,84 @@ def _json_value(value):
     return str(value)
 
 
-_NMEA_FIXED = {"t": "{:.6f}", "ux": "{:.6f}", "uy": "{:.6f}", "uz": "{:.6f}", "b_nT": "{:.3f}",
-               "bx_nT": "{:.3f}", "by_nT": "{:.3f}", "bz_nT": "{:.3f}", "sigma_deg": "{:.4f}"}
-_NMEA_RESERVED = set("$*,!\\^~\r\n")
+def utc_parts(posix_s) -> tuple[int, int, int, int, int, int, int] | None:
+    """Return (year, month, day, hour, minute, second, microsecond) UTC of POSIX seconds, None when not finite."""
+    value = _plain(posix_s)
+    if value is None or isinstance(value, (str, bytes, bool)):
+        return None
+    try:
+        x = float(value)
+    except (TypeError, ValueError):
+        return None
+    if not math.isfinite(x):
+        return None
+    try:
+        d = _EPOCH + datetime.timedelta(microseconds=round(x * 1e6))
+    except OverflowError:
+        return None
+    return d.year, d.month, d.day, d.hour, d.minute, d.second, d.microsecond
 
 
-def _nmea_field(value, fmt: str | None = None) -> str:
+def utc_iso(posix_s) -> str | None:
+    """Return POSIX seconds as ISO 8601 UTC with microseconds and a trailing Z, None when not finite."""
+    p = utc_parts(posix_s)
+    if p is None:
+        return None
+    return f"{p[0]:04d}-{p[1]:02d}-{p[2]:02d}T{p[3]:02d}:{p[4]:02d}:{p[5]:02d}.{p[6]:06d}Z"
+
+
+def utc_nmea(posix_s) -> tuple[str, str]:
+    """Return NMEA 0183 (time hhmmss.sss, date ddmmyy) of POSIX seconds, rounded to the millisecond; empty when unknown."""
+    value = _plain(posix_s)
+    try:
+        x = float(value)
+    except (TypeError, ValueError):
+        return "", ""
+    if not math.isfinite(x):
+        return "", ""
+    try:
+        d = _EPOCH + datetime.timedelta(milliseconds=round(x * 1000.0))
+    except OverflowError:
+        return "", ""
+    return (f"{d.hour:02d}{d.minute:02d}{d.second:02d}.{d.microsecond // 1000:03d}",
+            f"{d.day:02d}{d.month:02d}{d.year % 100:02d}")
+
+
+_EPOCH = datetime.datetime(1970, 1, 1)
+
+
+def _render(key: str, value):
+    """Return value as it goes to a text format: POSIX `utc` as ISO 8601 text, everything else unchanged."""
+    if key == "utc":
+        return utc_iso(value)
+    return value
+
+
+def _nmea_number(value, decimals: int, limit: float) -> str:
+    """Return a fixed-decimals NMEA field, empty for missing, non-finite or |value| >= limit (sentence length)."""
     value = _plain(value)
-    if value is None:
+    if value is None or isinstance(value, (str, bytes)):
         return ""
-    if isinstance(value, bool):
-        return "1" if value else "0"
-    if isinstance(value, int):
-        return str(value)
-    if isinstance(value, float):
-        if not math.isfinite(value):
-            return ""          # NMEA writes a missing value as an empty field
-        return (fmt or "{:.9g}").format(value)
-    return "".join("_" if c in _NMEA_RESERVED or not (32 <= ord(c) < 127) else c
-                   for c in str(value))
+    try:
+        x = float(value)
+    except (TypeError, ValueError):
+        return ""
+    if not math.isfinite(x) or abs(x) >= limit:
+        return ""
+    text = f"{x:.{decimals}f}"
+    return text[1:] if text.startswith("-") and float(text) == 0 else text
+
+
+def _nmea_int(value, limit: int = 100000) -> str:
+    """Return a non-negative integer NMEA field, empty when missing or out of 0..limit-1."""
+    value = _plain(value)
+    try:
+        x = float(value)
+    except (TypeError, ValueError):
+        return ""
+    if not math.isfinite(x) or x != int(x) or not 0 <= x < limit:
+        return ""
+    return str(int(x))
 
 
 def nmea_checksum(body: str) -> str:
@@ -124,6 +187,8 @@ class _Formatter:
         raise NotImplementedError
 
 
+# EstimatesWriter.write_columns (io/estimates_csv.py, io/float_text.py) writes the same bytes in
+# compiled blocks: change both together (tests/test_estimates_csv.py compares them).
 class CsvFormatter(_Formatter):
     """Estimates CSV: `t, ux, uy, uz, b_nT, bx_nT, by_nT, bz_nT, sigma_deg, flags` then extras."""
 
@@ -132,44 +197,101 @@ class CsvFormatter(_Formatter):
         return ",".join(ESTIMATE_COLUMNS + tuple(self.extras or ())) + "\n"
 
     def format(self, record: Mapping) -> str:
-        """Return one CSV line; floats are written as their shortest exact decimal (repr)."""
+        """Return one CSV line; floats as their shortest exact decimal (repr), `utc` as ISO 8601 UTC text."""
         get = record.get
         cols = ESTIMATE_COLUMNS + self.extras
-        return ",".join(_csv_field(get(c)) for c in cols) + "\n"
+        return ",".join(_csv_field(_render(c, get(c))) for c in cols) + "\n"
 
 
 class JsonlFormatter(_Formatter):
-    """JSON lines: one object per record, fixed keys first, then extras (non-finite -> null)."""
+    """JSON lines: one object per record, fixed keys first, then extras (non-finite -> null, `utc` -> ISO 8601)."""
 
     def format(self, record: Mapping) -> str:
         """Return one compact JSON object line."""
         obj = {c: _json_value(record.get(c)) for c in ESTIMATE_COLUMNS}
         for k in self.extras:
             if k in record:
-                obj[k] = _json_value(record[k])
+                obj[k] = _json_value(_render(k, record[k]))
         for k in sorted(k for k in record if k not in obj):
-            obj[k] = _json_value(record[k])
+            obj[k] = _json_value(_render(k, record[k]))
         return json.dumps(obj, separators=(",", ":"), allow_nan=False) + "\n"
 
 
 class NmeaFormatter(_Formatter):
-    """NMEA 0183-style `$FVDIR,t,ux,uy,uz,b_nT,bx_nT,by_nT,bz_nT,sigma_deg,flags[,extras]*hh`."""
+    """NMEA 0183 proprietary sentences, fixed fields, each at most 82 characters with CR LF.
+
+    D (every record): `$P<mnemonic>D,hhmmss.sss,ddmmyy,ux,uy,uz,b_nT,sigma_deg,flags*hh`
+    M (with sentences="DM"): `$P<mnemonic>M,hhmmss.sss,t,b_a_nT,b_b_nT,sigma_b_nT,nis,nis_dof*hh`
+    Time and date come from the record's `utc` (POSIX seconds); missing values are empty fields.
+    The layout is documented in docs/sinks.md.
+    """
+
+    D_FIELDS = ("time", "date", "ux", "uy", "uz", "b_nT", "sigma_deg", "flags")
+    M_FIELDS = ("time", "t", "b_a_nT", "b_b_nT", "sigma_b_nT", "nis", "nis_dof")
+    # Fields emptied, in this order, if a sentence would still exceed 82 characters (never for values
+    # in their documented ranges).
+    _SPARE = ("t", "nis", "sigma_b_nT", "b_b_nT", "b_a_nT", "sigma_deg")
+
+    def __init__(self, extras: Sequence[str] | None = None, mnemonic: str = NMEA_MNEMONIC,
+                 sentences: str = NMEA_SENTENCES):
+        super().__init__(extras)
+        if not (len(mnemonic) == 3 and mnemonic.isascii() and mnemonic.isalpha() and mnemonic.isupper()):
+            raise ValueError(f"the NMEA mnemonic must be three capital letters A-Z, got {mnemonic!r}")
+        kinds = sorted(set(sentences))
+        if not kinds or any(k not in "DM" for k in kinds) or len(kinds) != len(sentences):
+            raise ValueError(f"NMEA sentences must be D, M or DM, got {sentences!r}")
+        self.mnemonic = mnemonic
+        self.sentences = "".join(kinds)
+
+    def fields(self, record: Mapping, kind: str) -> dict[str, str]:
+        """Return the text of each field of sentence kind 'D' or 'M' for record (empty when missing)."""
+        get = record.get
+        time_, date = utc_nmea(get("utc"))
+        if kind == "D":
+            return {"time": time_, "date": date, "ux": _nmea_number(get("ux"), 5, 10),
+                    "uy": _nmea_number(get("uy"), 5, 10), "uz": _nmea_number(get("uz"), 5, 10),
+                    "b_nT": _nmea_number(get("b_nT"), 3, 1e6), "sigma_deg": _nmea_number(get("sigma_deg"), 4, 1e3),
+                    "flags": _nmea_int(get("flags"))}
+        return {"time": time_, "t": _nmea_number(get("t"), 3, 1e10),
+                "b_a_nT": _nmea_number(get("b_a_nT"), 3, 1e6), "b_b_nT": _nmea_number(get("b_b_nT"), 3, 1e6),
+                "sigma_b_nT": _nmea_number(get("sigma_b_nT"), 4, 1e4), "nis": _nmea_number(get("nis"), 2, 1e5),
+                "nis_dof": _nmea_int(get("nis_dof"), 1000)}
+
+    def sentence(self, record: Mapping, kind: str) -> str:
+        """Return one sentence of kind 'D' or 'M' with CR LF, at most NMEA_MAX_LENGTH characters."""
+        f = self.fields(record, kind)
+        spare = [k for k in self._SPARE if k in f]
+        while True:
+            line = nmea_sentence(",".join([f"P{self.mnemonic}{kind}", *f.values()])) + "\r\n"
+            if len(line) <= NMEA_MAX_LENGTH or not spare:
+                return line
+            f[spare.pop(0)] = ""
 
     def format(self, record: Mapping) -> str:
-        """Return one sentence with CR LF; fixed fields use fixed decimals, empty when non-finite."""
-        get = record.get
-        fields = [NMEA_SENTENCE]
-        fields += [_nmea_field(get(c), _NMEA_FIXED.get(c)) for c in ESTIMATE_COLUMNS]
-        fields += [_nmea_field(get(c)) for c in self.extras]
-        return nmea_sentence(",".join(fields)) + "\r\n"
+        """Return the record's sentences (D, then M when asked), each ending CR LF."""
+        return "".join(self.sentence(record, kind) for kind in self.sentences)
 
 
-def make_formatter(fmt: str, extras: Sequence[str] | None = None) -> _Formatter:
-    """Return the formatter for 'csv', 'jsonl' or 'nmea'."""
+FORMATTER_OPTIONS = {"nmea": ("mnemonic", "sentences")}
+
+
+def make_formatter(fmt: str, extras: Sequence[str] | None = None, options: Mapping[str, str] | None = None,
+                   where: str | None = None) -> _Formatter:
+    """Return the formatter for 'csv', 'jsonl' or 'nmea' with its options (nmea: mnemonic, sentences)."""
     classes = {"csv": CsvFormatter, "jsonl": JsonlFormatter, "nmea": NmeaFormatter}
     if fmt not in classes:
-        raise InputError(f"unknown sink format '{fmt}' (use one of {', '.join(FORMATS)})")
-    return classes[fmt](extras)
+        raise InputError(f"unknown sink format '{fmt}' (use one of {', '.join(FORMATS)})", column=where)
+    options = dict(options or {})
+    allowed = FORMATTER_OPTIONS.get(fmt, ())
+    for key in options:
+        if key not in allowed:
+            raise InputError(f"unknown option '{key}' for the {fmt} format"
+                             f"{' (use ' + ', '.join(allowed) + ')' if allowed else ' (it takes none)'}",
+                             column=where)
+    try:
+        return classes[fmt](extras, **options)
+    except ValueError as exc:
+        raise InputError(str(exc), column=where) from None
 
 
 # ---------------------------------------------------------------- transports
@@ -213,6 +335,7 @@ class StreamTransport(Transport):
         super().__init__()
         self.stream = stream if stream is not None else sys.stdout
         self.broken = False
+        self.last_error: str | None = None   # why the stream broke (e.g. 'No space left on device')
 
     def write(self, lines: list[str]) -> int:
         """Write and flush lines; return how many were delivered (0 once the stream broke)."""
@@ -222,8 +345,9 @@ class StreamTransport(Transport):
             self.stream.write("".join(lines))
             self.stream.flush()
             return len(lines)
-        except (BrokenPipeError, OSError, ValueError):
+        except (BrokenPipeError, OSError, ValueError) as exc:
             self.broken = True
+            self.last_error = getattr(exc, "strerror", None) or str(exc) or type(exc).__name__
             return 0
 
 
@@ -590,6 +714,11 @@ class Sink:
         return not self._thread.is_alive()
 
     @property
+    def failed(self) -> bool:
+        """Return True when the sink's file or stream broke (every later line is a write error)."""
+        return bool(getattr(self.transport, "broken", False))
+
+    @property
     def alive(self) -> bool:
         """Return True while the writer thread runs."""
         return self._thread.is_alive()
@@ -644,6 +773,8 @@ class Sink:
                 except Exception as exc:
                     n = 0
                     self.last_error = repr(exc)
+                if n < len(lines) and getattr(transport, "last_error", None):
+                    self.last_error = transport.last_error
                 self.written += n
                 self.write_errors += len(lines) - n
                 with self._cond:
@@ -680,8 +811,12 @@ class SinkSpec:
     port: int | None = None
     device: str | None = None
     baudrate: int | None = None
+    options: tuple[tuple[str, str], ...] = ()     # formatter options, e.g. (("mnemonic", "XFV"),)
 
     def __str__(self) -> str:
+        return self._target() + ("?" + "&".join(f"{k}={v}" for k, v in self.options) if self.options else "")
+
+    def _target(self) -> str:
         if self.transport == "file":
             return f"{self.fmt}:file:{self.path}"
         if self.transport in ("tcp", "udp"):
@@ -690,6 +825,23 @@ class SinkSpec:
         if self.transport == "serial":
             return f"{self.fmt}:serial:{self.device}:{self.baudrate}"
         return f"{self.fmt}:{self.transport}"
+
+
+# A trailing `?key=value[&key=value]` holds formatter options; a pyserial URL's own query is followed
+# by ':BAUD', so it never matches.
+_OPTIONS_RE = re.compile(r"[a-z_]+=[^&?:/\\]*(?:&[a-z_]+=[^&?:/\\]*)*")
+
+
+def _split_options(text: str, spec: str) -> tuple[str, tuple[tuple[str, str], ...]]:
+    """Return (spec text without options, ((key, value), ...)) of an `--out` value."""
+    head, sep, tail = text.rpartition("?")
+    if not sep or not _OPTIONS_RE.fullmatch(tail):
+        return text, ()
+    pairs = tuple(tuple(item.split("=", 1)) for item in tail.split("&"))
+    keys = [k for k, _ in pairs]
+    if len(set(keys)) != len(keys):
+        raise InputError("an option is given twice", column="--out " + spec)
+    return head, pairs
 
 
 def _port(text: str, spec: str) -> int:
@@ -718,7 +870,16 @@ def _host_port(rest: str, spec: str) -> tuple[str, int]:
 
 def parse_sink_spec(spec: str) -> SinkSpec:
     """Return the SinkSpec of an `--out` value (grammar in docs/sinks.md); raise InputError."""
-    text = spec.strip()
+    text, options = _split_options(spec.strip(), spec)
+    parsed = _parse_target(text, spec)
+    if options:
+        make_formatter(parsed.fmt, None, dict(options), where="--out " + spec)   # check them now
+        parsed = replace(parsed, options=options)
+    return parsed
+
+
+def _parse_target(text: str, spec: str) -> SinkSpec:
+    """Return the SinkSpec of an `--out` value without formatter options."""
     head, sep, rest = text.partition(":")
     if head not in FORMATS:
         suffix = os.path.splitext(text)[1].lower()
@@ -768,8 +929,8 @@ def open_sink(spec: str | SinkSpec, extras: Sequence[str] | None = None,
     """Return a started Sink for an `--out` value (or a SinkSpec)."""
     if isinstance(spec, str):
         spec = parse_sink_spec(spec)
-    return Sink(make_formatter(spec.fmt, extras), open_transport(spec, append), queue_size,
-                name=str(spec))
+    return Sink(make_formatter(spec.fmt, extras, dict(spec.options), where="--out " + str(spec)),
+                open_transport(spec, append), queue_size, name=str(spec))
 
 
 def close_sinks(sinks: Iterable[Sink], timeout: float = 5.0) -> bool:

@@ -3,7 +3,7 @@
 from __future__ import annotations
 
 import struct
-from dataclasses import dataclass
+from dataclasses import dataclass, field
 
 import numpy as np
 
@@ -48,15 +48,17 @@ class Frame:
     f_a: float
     f_b: float
     values: tuple[float, ...]   # x_1a, y_1a, x_1b, y_1b[, x_2a, y_2a, x_2b, y_2b], lock-in volts
+    restarted: bool = field(default=False, compare=False)   # first frame after a sequence reset
 
     def to_sample(self) -> Sample:
-        """Return this frame as a Sample: t in s, f in Hz, z = x + i y per channel (volts)."""
+        """Return this frame as a Sample: t in s, f in Hz, z = x + i y per channel (volts); restarted kept."""
         v = self.values
         channels = CHANNELS_ONE_PROBE if len(v) == 4 else CHANNELS_TWO_PROBES
         # values are x, y pairs: as float64 they are exactly the complex128 memory layout.
         z = np.array(v, dtype=np.float64).view(np.complex128)
         # t_ns / 1e9 is the double nearest the exact time (t_ns * 1e-9 can be one ulp off).
-        return Sample(self.t_ns / 1e9, self.f_a, self.f_b, z, channels, self.status)
+        return Sample(self.t_ns / 1e9, self.f_a, self.f_b, z, channels, self.status,
+                      self.restarted)
 
 
 def encode_payload(frame: Frame) -> bytes:
@@ -102,16 +104,23 @@ def decode_payload(payload: bytes) -> Frame:
 
 
 COUNTER_NAMES = ("frames_ok", "crc_errors", "bad_frames", "seq_gaps", "seq_resets",
-                 "duplicates", "bytes_discarded", "bytes_fed")
+                 "duplicates", "bytes_discarded", "resync_bytes", "resyncs", "bytes_fed")
 
 
 class FrameDecoder:
-    """Pure stream decoder: feed(bytes) returns the complete, valid frames; counts the rest."""
+    """Pure stream decoder: feed(bytes) returns the complete, valid frames; counts the rest.
+
+    A fresh decoder (and one after resync()) does not know where the stream starts: the bytes
+    before its first 0x00 are kept as a frame only if they form a valid one, else they count as
+    resynchronisation (`resync_bytes`), not as a damaged frame.
+    """
 
     def __init__(self, max_encoded_len: int = MAX_ENCODED_LEN):
         self.max_encoded_len = max_encoded_len
         self._buf = bytearray()
         self._discarding = False      # inside an oversize run: drop everything to the next 0x00
+        self._fresh = True            # no 0x00 seen since the start or the last resync()
+        self._discard_resync = False  # the run being discarded is a resync, not a bad frame
         self._last_seq: int | None = None
         self.frames_ok = 0
         self.crc_errors = 0
@@ -120,6 +129,8 @@ class FrameDecoder:
         self.seq_resets = 0           # seq stepped backwards (sensor restart): tracking restarted
         self.duplicates = 0
         self.bytes_discarded = 0      # bytes (0x00 delimiters excluded) of rejected candidates
+        self.resync_bytes = 0         # bytes before the first 0x00 of a fresh stream, not a frame
+        self.resyncs = 0              # resync() calls (link opened again, bytes lost upstream)
         self.bytes_fed = 0
 
     @property
@@ -132,6 +143,20 @@ class FrameDecoder:
         c = {name: getattr(self, name) for name in COUNTER_NAMES}
         c["pending"] = len(self._buf)
         return c
+
+    def resync(self) -> None:
+        """Start afresh at the next byte (link reopened, bytes lost): pending bytes count as resync."""
+        self.resyncs += 1
+        self.resync_bytes += len(self._buf)
+        self._buf.clear()
+        self._discarding = False
+        self._fresh = True
+
+    def _drop(self, n: int, resync: bool) -> None:
+        if resync:
+            self.resync_bytes += n
+        else:
+            self.bytes_discarded += n
 
     def feed(self, data: bytes) -> list[Frame]:
         """Return the frames completed by data, in order; malformed input is counted, never raised."""
@@ -148,29 +173,33 @@ class FrameDecoder:
             if end < 0:
                 chunk_len = n - start
                 if self._discarding:
-                    self.bytes_discarded += chunk_len
+                    self._drop(chunk_len, self._discard_resync)
                 elif len(buf) + chunk_len > limit:
-                    self.bad_frames += 1
-                    self.bytes_discarded += len(buf) + chunk_len
+                    if not self._fresh:
+                        self.bad_frames += 1
+                    self._drop(len(buf) + chunk_len, self._fresh)
                     buf.clear()
                     self._discarding = True
+                    self._discard_resync = self._fresh
                 else:
                     buf += data[start:]
                 break
             seg_len = end - start
+            fresh, self._fresh = self._fresh, False
             if self._discarding:
-                self.bytes_discarded += seg_len
+                self._drop(seg_len, self._discard_resync)
                 self._discarding = False
             elif len(buf) + seg_len > limit:
-                self.bad_frames += 1
-                self.bytes_discarded += len(buf) + seg_len
+                if not fresh:
+                    self.bad_frames += 1
+                self._drop(len(buf) + seg_len, fresh)
                 buf.clear()
             elif buf:
                 buf += data[start:end]
-                self._candidate(bytes(buf), frames)
+                self._candidate(bytes(buf), frames, fresh)
                 buf.clear()
             elif seg_len:
-                self._candidate(data[start:end], frames)
+                self._candidate(data[start:end], frames, fresh)
             # else: an empty candidate (two 0x00 in a row, or a leading 0x00) means nothing
             start = end + 1
         return frames
@@ -179,14 +208,20 @@ class FrameDecoder:
         """Forget the last sequence number (the next frame starts seq tracking afresh)."""
         self._last_seq = None
 
-    def _candidate(self, encoded: bytes, frames: list[Frame]) -> None:
+    def _candidate(self, encoded: bytes, frames: list[Frame], fresh: bool = False) -> None:
         try:
             frame = decode_payload(cobs_decode(encoded))
         except FrameCrcError:
+            if fresh:
+                self.resync_bytes += len(encoded)
+                return
             self.crc_errors += 1
             self.bytes_discarded += len(encoded)
             return
         except (CobsError, FrameError):
+            if fresh:
+                self.resync_bytes += len(encoded)
+                return
             self.bad_frames += 1
             self.bytes_discarded += len(encoded)
             return
@@ -198,6 +233,8 @@ class FrameDecoder:
                 return
             if step > SEQ_HALF:
                 self.seq_resets += 1
+                frame = Frame(frame.seq, frame.t_ns, frame.status, frame.f_a, frame.f_b,
+                              frame.values, restarted=True)
             elif step > 1:
                 self.seq_gaps += step - 1
         self._last_seq = frame.seq

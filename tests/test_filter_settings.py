@@ -67,3 +67,51 @@ def test_settings_are_frozen_and_replace_validates():
     assert s.replace(gate_probability=0.999).gate_probability == 0.999
     with pytest.raises(ValueError, match="gate_probability"):
         s.replace(gate_probability=2.0)
+
+
+# ------------------------------------------------------------------- the filter TOML file (io side)
+
+from fieldvane.io.errors import InputError  # noqa: E402
+from fieldvane.io.filterfile import read_filter_settings, write_filter_settings  # noqa: E402
+
+
+@pytest.mark.parametrize("text, words", [
+    ("version = 1\n[filtre]\ngate_probability = 0.99\n",
+     r"f.toml:2: key 'filtre': unknown section \(did you mean filter\?\)"),
+    ("version = 1\n", r"f.toml: key 'filter': missing: needs a \[filter\] table"),
+    ("version = 1\ngate_probability = 0.99\n[filter]\n",
+     r"f.toml:2: key 'gate_probability': unknown key \(settings belong inside"),
+    ("version = true\n[filter]\n", r"f.toml:1: key 'version': must be the whole number 1, got true"),
+    ("version = 1.0\n[filter]\n", r"f.toml:1: key 'version': must be the whole number 1, got 1.0"),
+    ("version = 2\n[filter]\n", r"key 'version': must be the whole number 1, got 2 \(a newer"),
+    ("[filter]\n", r"key 'version': missing"),
+    ("version = 1\n[filter]\n\ngate_prob = 0.99\n",
+     r"f.toml:4: key 'filter.gate_prob': unknown key \(did you mean gate_probability\?\)"),
+    ("version = 1\n[filter]\nangle_random_walk_deg_rt_s = 1e308\n",
+     r"f.toml:3: key 'filter.angle_random_walk_deg_rt_s': must be below 1e6"),
+    ("version = 1\n[filter]\nadaptive_noise_window_samples = 1000000000\n",
+     r"f.toml:3: key 'filter.adaptive_noise_window_samples': must be at most 100001"),
+    ("version = 1\n[filter]\nmax_gap_s = \"1\"\n", r"f.toml:3: key 'filter.max_gap_s': must be a number"),
+    ("version = 1\n[filter]\nmax_gap_s = nan\n", r"key 'filter.max_gap_s': must be > 0"),
+    ("version = 1\n[filter\n", r"f.toml:2: not valid TOML"),
+])
+def test_filter_file_refuses_typos_and_bad_values_by_name(tmp_path, text, words):
+    path = tmp_path / "f.toml"
+    path.write_text(text, encoding="utf-8")
+    with pytest.raises(InputError, match=words):
+        read_filter_settings(path)
+
+
+def test_filter_file_not_utf8_names_the_line(tmp_path):
+    path = tmp_path / "f.toml"
+    path.write_bytes(b"version = 1\n# caf\xe9 au lait\n[filter]\n")
+    with pytest.raises(InputError, match=r"f.toml:2: not UTF-8 text \(byte 0xe9"):
+        read_filter_settings(path)
+
+
+def test_filter_file_round_trip_and_atomic_write(tmp_path):
+    s = FilterSettings(max_gap_s=2.5, lost_after_gated=7, blind_threshold_deg=math.inf)
+    path = write_filter_settings(tmp_path / "sub" / "f.toml", s, ["written by a test"])
+    assert read_filter_settings(path) == s
+    assert path.read_text().startswith("# written by a test\nversion = 1\n")
+    assert [p.name for p in path.parent.iterdir()] == ["f.toml"]      # no partial file left

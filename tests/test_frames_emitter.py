@@ -256,6 +256,25 @@ def test_csv_truth_columns(run):
     assert [float(x) for x in lines[1].split(",")[-4:]] == [*run.u[0], run.b_nT[0]]
 
 
+def test_csv_line_leaves_a_missing_probes_fields_empty():
+    z = [1 + 2j, 3 - 4j, complex(np.nan, np.nan), complex(np.nan, np.nan)]
+    line = frames.csv_line(0.5, 10.0, 20.0, z, (0.25,), missing=[False, False, True, True])
+    assert line == b"0.5,10.0,20.0,1.0,2.0,3.0,-4.0,,,,,0.25\n"
+    # Without the mask a NaN is written as 'nan' (the sensor sent a non-finite value).
+    assert frames.csv_line(0.5, 10.0, 20.0, z).endswith(b",nan,nan,nan,nan\n")
+
+
+def test_lockin_run_streams_with_its_metadata():
+    lockin = "[lockin]\ntime_constant_s = 0.005\nfilter_order = 4\n"
+    text = SCENARIO.replace("[direction]", lockin + "[direction]", 1)
+    sim = simulate(loads_scenario(text, "<test>"))
+    head = stream_bytes(sim, "csv").decode().splitlines()
+    assert "# lockin_time_constant_s: 0.005" in head and "# lockin_filter_order: 4" in head
+    assert "# sample_rate_hz: 200" in head
+    body = [ln for ln in head if not ln.startswith("#")][1:]
+    assert [float(v) for v in body[0].split(",")[3:]] == [float(v) for v in frames.interleave_xy(sim.z[0])]
+
+
 # ----- faults -----------------------------------------------------------------------------
 
 def _emit_to_memory(run, faults, fmt="binary"):

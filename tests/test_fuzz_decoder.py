@@ -18,15 +18,39 @@ from fieldvane.io.wire import Frame, FrameDecoder, encode_frame
 LIMIT = 256
 
 
+def _payload_ok(cand: bytes):
+    """Return the frame tuple of a candidate if it passes every check of steps 1-4, else None."""
+    if len(cand) > LIMIT:
+        return None
+    try:
+        p = cobs.decode(cand)
+    except cobs.DecodeError:
+        return None
+    if len(p) < 3 or binascii.crc_hqx(p[:-2], 0xFFFF) != struct.unpack("<H", p[-2:])[0]:
+        return None
+    n = p[18] if len(p) > 18 else 0
+    if len(p) < 38 or p[:2] != b"FV" or p[2] != 1 or p[3] != 1 or n not in (4, 8) \
+            or len(p) != 38 + 4 * n:
+        return None
+    seq, t_ns, status = struct.unpack_from("<IQH", p, 4)
+    f_a, f_b = struct.unpack_from("<dd", p, 20)
+    return (seq, t_ns, status, f_a, f_b, struct.unpack_from(f"<{n}f", p, 36))
+
+
 def oracle(stream: bytes):
     """Return (frames as (seq, t_ns, status, f_a, f_b, values) tuples, counters) for stream."""
     c = dict(frames_ok=0, crc_errors=0, bad_frames=0, seq_gaps=0, seq_resets=0, duplicates=0,
-             bytes_discarded=0)
+             bytes_discarded=0, resync_bytes=0, resyncs=0)
     frames, last = [], None
     c["accepted_bytes"] = 0          # bytes of candidates kept as frames or duplicates
     *complete, pending = stream.split(b"\x00")
-    for cand in complete:
+    for i, cand in enumerate(complete):
         if not cand:
+            continue
+        if i == 0 and _payload_ok(cand) is None:
+            # Receiver rules: bytes before the first 0x00 of a fresh stream that do not form a
+            # valid frame are resynchronisation, not a damaged frame.
+            c["resync_bytes"] += len(cand)
             continue
         if len(cand) > LIMIT:
             c["bad_frames"] += 1
@@ -46,15 +70,12 @@ def oracle(stream: bytes):
             c["crc_errors"] += 1
             c["bytes_discarded"] += len(cand)
             continue
-        n = p[18] if len(p) > 18 else 0
-        if len(p) < 38 or p[:2] != b"FV" or p[2] != 1 or p[3] != 1 or n not in (4, 8) \
-                or len(p) != 38 + 4 * n:
+        frame = _payload_ok(cand)
+        if frame is None:
             c["bad_frames"] += 1
             c["bytes_discarded"] += len(cand)
             continue
-        seq, t_ns, status = struct.unpack_from("<IQH", p, 4)
-        f_a, f_b = struct.unpack_from("<dd", p, 20)
-        values = struct.unpack_from(f"<{n}f", p, 36)
+        seq = frame[0]
         if last is not None:
             step = (seq - last) % (1 << 32)
             if step == 0:
@@ -68,10 +89,13 @@ def oracle(stream: bytes):
         last = seq
         c["frames_ok"] += 1
         c["accepted_bytes"] += len(cand)
-        frames.append((seq, t_ns, status, f_a, f_b, values))
+        frames.append(frame)
     if len(pending) > LIMIT:
-        c["bad_frames"] += 1
-        c["bytes_discarded"] += len(pending)
+        if complete:
+            c["bad_frames"] += 1
+            c["bytes_discarded"] += len(pending)
+        else:                        # still no 0x00 since the start: resynchronisation
+            c["resync_bytes"] += len(pending)
         pending = b""
     c["pending"] = len(pending)
     return frames, c
@@ -170,9 +194,10 @@ def test_chunking_invariance_and_accounting(stream):
     c = bytewise.counters()
     assert {k: v for k, v in c.items() if k != "bytes_fed"} == whole
     # Every byte is accounted for (docs/wire_format.md, receiver rules): bytes of kept or
-    # duplicate frames + delimiters + discarded + pending == bytes fed.
+    # duplicate frames + delimiters + discarded + resynchronisation + pending == bytes fed.
     accepted = oracle(stream)[1]["accepted_bytes"]
-    assert accepted + stream.count(0) + c["bytes_discarded"] + c["pending"] == c["bytes_fed"]
+    assert accepted + stream.count(0) + c["bytes_discarded"] + c["resync_bytes"] + c["pending"] \
+        == c["bytes_fed"]
 
 
 class _Count:

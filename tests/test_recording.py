@@ -2,6 +2,8 @@
 
 import numpy as np
 import pytest
+from hypothesis import given, settings
+from hypothesis import strategies as st
 
 from fieldvane.io.errors import InputError
 from fieldvane.io.recording import RecordingReader, read_recording, write_recording
@@ -93,3 +95,232 @@ def test_chunked_reading_is_bounded_and_complete(tmp_path):
 def test_unreadable_file(tmp_path):
     with pytest.raises(InputError, match="cannot open recording"):
         read_recording(tmp_path / "nope.csv")
+
+
+# ---------------------------------------------------------------- probe subsets
+
+HEADER_2P = "t,f_a,f_b,x_1a,y_1a,x_1b,y_1b,x_2a,y_2a,x_2b,y_2b"
+
+
+def _row(t, probe1="0.5,-0.25,0.125,1", probe2="-0.5,0.25,1,0.75"):
+    return f"{t},7000,4667,{probe1},{probe2}"
+
+
+def test_probe2_gap_rows_are_kept_with_nan_channels(tmp_path):
+    n, gap = 12_000, range(4_000, 6_000)        # 60 s at 200 Hz, probe 2 silent for 10 s
+    rows = [_row(i * 0.005, probe2=",,," if i in gap else "-0.5,0.25,1,0.75") for i in range(n)]
+    p = write(tmp_path, HEADER_2P + "\n" + "\n".join(rows) + "\n")
+    block, warnings = read_recording(p)
+    assert len(block) == n and block.skipped_rows == 0
+    assert block.channels == ("1a", "1b", "2a", "2b")
+    g = np.zeros(n, bool)
+    g[gap.start:gap.stop] = True
+    assert np.isnan(block.z[g, 2:]).all() and np.isfinite(block.z[g, :2]).all()
+    assert np.isfinite(block.z[~g]).all()
+    np.testing.assert_array_equal(block.z[0], [0.5 - 0.25j, 0.125 + 1j, -0.5 + 0.25j, 1 + 0.75j])
+    np.testing.assert_array_equal(block.lines, np.arange(2, n + 2))
+    assert warnings == [f"{p}: 2000 row(s) kept without probe 2 (empty or NaN lock-in values read as missing)"]
+
+
+def test_missing_values_rules_row_by_row(tmp_path):
+    rows = [
+        _row(0.0),                                         # line 2: complete
+        _row(0.1, probe1="nan,nan,nan,nan"),               # 3: probe 1 missing, probe 2 there: kept
+        _row(0.2, probe1="0.5,-0.25,0.125,"),              # 4: only channel 1b missing: kept
+        _row(0.3, probe2="NaN,0.25,,"),                    # 5: probe 2 missing (NaN and empty): kept
+        _row(0.4, probe1="nan,1,1,1", probe2="1,1,1,nan"),  # 6: no complete probe: skipped
+        _row(0.5, probe1=",,,", probe2=",,,"),             # 7: no lock-in value at all: skipped
+        _row(0.6, probe2="inf,1,1,1"),                     # 8: infinite is not 'missing': skipped
+        "," + _row(0.7).split(",", 1)[1],                  # 9: empty t: skipped
+        _row(0.8, probe2=" , ,1,1"),                       # 10: blank fields count as empty: kept
+    ]
+    p = write(tmp_path, HEADER_2P + "\n" + "\n".join(rows) + "\n")
+    block, warnings = read_recording(p)
+    np.testing.assert_array_equal(block.lines, [2, 3, 4, 5, 10])
+    assert block.skipped_rows == 4
+    nan = np.isnan(block.z)
+    assert nan.tolist() == [[False] * 4, [True, True, False, False], [False, True, False, False],
+                            [False, False, True, True], [False, False, True, False]]
+    assert warnings[:4] == [f"{p}:6: column 'x_1a': non-finite value; row skipped",
+                            f"{p}:7: column 'x_1a': not a number (''); row skipped",
+                            f"{p}:8: column 'x_2a': non-finite value; row skipped",
+                            f"{p}:9: column 't': not a number (''); row skipped"]
+    assert f"{p}: 2 row(s) kept without probe 1 (empty or NaN lock-in values read as missing)" in warnings
+    assert f"{p}: 2 row(s) kept without probe 2 (empty or NaN lock-in values read as missing)" in warnings
+    strict, _ = read_recording(p, require_all_probes=True)
+    np.testing.assert_array_equal(strict.lines, [2])
+    assert strict.skipped_rows == 8
+
+
+def test_one_probe_file_needs_probe_1(tmp_path):
+    p = write(tmp_path, HEADER_XY + "\n0,7000,4667,1,0,1,0\n0.1,7000,4667,,,1,0\n0.2,7000,4667,1,0,1,nan\n")
+    block, warnings = read_recording(p)
+    assert block.channels == ("1a", "1b") and len(block) == 1 and block.skipped_rows == 2
+    assert f"{p}:3: column 'x_1a': not a number (''); row skipped" in warnings
+    assert f"{p}:4: column 'y_1b': non-finite value; row skipped" in warnings
+
+
+def test_polar_channels_with_a_missing_probe(tmp_path):
+    head = "t,f_a,f_b,r_1a,th_1a,r_1b,th_1b,r_2a,th_2a,r_2b,th_2b"
+    p = write(tmp_path, head + "\n0,7000,4667,2,90,1,180,,,,\n")
+    block, _ = read_recording(p)
+    np.testing.assert_allclose(block.z[0, :2], [2j, -1], atol=1e-12)
+    assert np.isnan(block.z[0, 2:]).all()
+
+
+# ---------------------------------------------------------------- fast path and reference agree
+
+def _concat(reader):
+    from fieldvane.io.recording import concatenate_blocks
+    blocks = list(reader)
+    return concatenate_blocks(blocks) if blocks else None
+
+
+_LINE_KINDS = st.sampled_from([
+    "ok", "ok", "ok", "ok", "gap2", "gap1", "nan1", "partial", "none", "inf", "text", "short", "long",
+    "comment", "blank", "spaces", "underscore", "back", "empty_t", "truth_nan", "upper_nan", "note"])
+
+
+def _make_line(kind, i, rng):
+    v = [f"{x:.6g}" for x in rng.normal(size=8)]
+    t = f"{i * 0.005:.6g}" if kind != "back" else "-1"
+    truth = "0,0,1,20000" if kind != "truth_nan" else "0,nan,1,20000"
+    if kind == "gap2":
+        v[4:] = [""] * 4
+    elif kind == "gap1":
+        v[:4] = ["nan"] * 4
+    elif kind == "nan1":
+        v[1] = "nan"
+    elif kind == "partial":
+        v[1], v[6] = "", "nan"
+    elif kind == "none":
+        v = [""] * 8
+    elif kind == "inf":
+        v[5] = "-inf"
+    elif kind == "text":
+        v[2] = "12abc"
+    elif kind == "spaces":
+        v[3] = "  "
+    elif kind == "underscore":
+        v[0] = "1_5"                     # Python's float() takes it, numpy's reader does not
+    elif kind == "upper_nan":
+        v[7] = "NaN"
+    note = "see log" if kind == "note" else "3"          # an unknown column: ignored, text or not
+    line = ",".join([t if kind != "empty_t" else "", "7000", "4667"] + v + [truth, note])
+    if kind == "short":
+        line = line.rsplit(",", 2)[0]
+    elif kind == "long":
+        line += ",9"
+    elif kind == "comment":
+        line = "# comment, with commas"
+    elif kind == "blank":
+        line = "   "
+    return line
+
+
+@settings(max_examples=40, deadline=None)
+@given(kinds=st.lists(_LINE_KINDS, min_size=1, max_size=400), chunk=st.sampled_from([7, 100, 1000]),
+       seed=st.integers(0, 1000))
+def test_fast_reader_equals_line_by_line_reference(tmp_path_factory, kinds, chunk, seed):
+    rng = np.random.default_rng(seed)
+    head = HEADER_2P + ",true_ux,true_uy,true_uz,true_b_nT,remark"
+    text = "# sensor: prop\n" + head + "\n" + "\n".join(_make_line(k, i, rng) for i, k in enumerate(kinds)) + "\n"
+    p = tmp_path_factory.mktemp("prop") / "r.csv"
+    p.write_text(text)
+    fast, slow = RecordingReader(p, chunk_rows=chunk), RecordingReader(p, chunk_rows=chunk, fast=False)
+    a, b = _concat(fast), _concat(slow)
+    assert fast.warnings == slow.warnings
+    assert fast.skipped_rows == slow.skipped_rows and fast.rows_read == slow.rows_read
+    if a is None:
+        assert b is None
+        return
+    np.testing.assert_array_equal(a.lines, b.lines)
+    np.testing.assert_array_equal(a.t, b.t)
+    np.testing.assert_array_equal(a.f, b.f)
+    np.testing.assert_array_equal(a.z, b.z)                  # NaN in the same places
+    for k in a.truth:
+        np.testing.assert_array_equal(a.truth[k], b.truth[k])
+
+
+# ---------------------------------------------------------------- errors, encodings, limits
+
+def _clean_rows(n, seed=0):
+    rng = np.random.default_rng(seed)
+    cols = {"t": np.arange(n) * 0.005, "f_a": np.full(n, 7e3), "f_b": np.full(n, 4.6e3)}
+    for ch in ("1a", "1b", "2a", "2b"):
+        cols[f"x_{ch}"] = rng.normal(size=n)
+        cols[f"y_{ch}"] = rng.normal(size=n)
+    return cols
+
+
+def test_bad_line_deep_in_a_chunk_is_named_and_only_it_is_lost(tmp_path):
+    p = tmp_path / "big.csv"
+    write_recording(p, _clean_rows(20_000), {"sensor": "x"})
+    lines = p.read_text().splitlines(True)
+    lines[15_001] = lines[15_001].replace(",", ",oops", 1)        # file line 15002
+    p.write_text("".join(lines))
+    block, warnings = read_recording(p)
+    assert len(block) == 19_999 and block.skipped_rows == 1
+    assert warnings[0].startswith(f"{p}:15002: column 'f_a': not a number ('oops")
+    assert 15_002 not in block.lines and block.lines[-1] == 20_002
+
+
+def test_many_problems_are_capped_but_all_counted(tmp_path):
+    rows = [f"{i},7000,4667,1,0,1,{'x' if i % 2 else '0'}" for i in range(100)]
+    p = write(tmp_path, HEADER_XY + "\n" + "\n".join(rows) + "\n")
+    block, warnings = read_recording(p)
+    assert len(block) == 50 and block.skipped_rows == 50
+    assert len([w for w in warnings if "row skipped" in w]) == 20
+    assert f"{p}: further problems not listed one by one" in warnings
+    assert warnings[-1] == f"{p}: 50 malformed row(s) skipped, 50 read"
+
+
+def test_unknown_text_column_is_ignored(tmp_path):
+    p = write(tmp_path, HEADER_XY + ",operator\n0,7000,4667,1,0,1,0,alice\n0.1,7000,4667,1,0,1,0,bob\n")
+    block, warnings = read_recording(p)
+    assert len(block) == 2 and warnings == [f"{p}:1: ignoring unknown columns: operator"]
+
+
+def test_utf8_bom_from_a_spreadsheet_is_accepted(tmp_path):
+    p = tmp_path / "bom.csv"
+    p.write_bytes(("\ufeff" + HEADER_XY + "\r\n0,7000,4667,1,0,1,0\r\n").encode("utf-8"))
+    block, warnings = read_recording(p)
+    assert len(block) == 1 and warnings == []
+
+
+def test_streaming_memory_is_bounded_by_the_chunk(tmp_path):
+    import tracemalloc
+
+    def peak_bytes(n):
+        p = tmp_path / f"long{n}.csv"
+        write_recording(p, _clean_rows(n))
+        tracemalloc.start()
+        try:
+            rows = sum(len(block) for block in RecordingReader(p, chunk_rows=1_000))
+            return rows, tracemalloc.get_traced_memory()[1]
+        finally:
+            tracemalloc.stop()
+
+    (rows_small, small), (rows_big, big) = peak_bytes(10_000), peak_bytes(40_000)
+    assert (rows_small, rows_big) == (10_000, 40_000)
+    assert big < 1.25 * small                  # four times the file, the same peak
+    assert big < 40_000 * 11 * 8 / 2           # under half of the parsed values of the whole file
+
+
+@settings(max_examples=80, deadline=None)
+@given(pieces=st.lists(st.sampled_from([b"a,1", b"bb", b"", "\u00e9,2".encode(), b"\n", b"\r", b"\r\n", b"\n\n",
+                                        b"#x", b"\xff", b"\xc3"]), max_size=60),
+       bom=st.booleans(), block=st.integers(1, 16))
+def test_text_lines_split_like_python_universal_newlines(pieces, bom, block):
+    import io as std_io
+    from fieldvane.io.recording import TextLines
+    raw = (b"\xef\xbb\xbf" if bom else b"") + b"".join(pieces)
+    # Reference: Python's own text layer (universal newlines, UTF-8 with BOM removed, bad bytes replaced).
+    want = std_io.TextIOWrapper(std_io.BytesIO(raw), encoding="utf-8-sig", errors="replace",
+                                newline=None).read().split("\n")
+    if want and want[-1] == "":
+        want.pop()
+    src = TextLines(std_io.BytesIO(raw), block_bytes=block)
+    got = src.take(3) + [line for line in iter(src.readline, None)]
+    assert got == want
+    assert src.line_number == len(want)

@@ -20,7 +20,7 @@ from fieldvane.estimator.flags import EstimateFlag
 from fieldvane.io.cli import main
 from fieldvane.io.estimates_csv import EstimatesWriter
 from fieldvane.io.recording import write_recording
-from fieldvane.io.report import summarize, write_report
+from fieldvane.io.report import make_report, summarize, write_report
 
 PNG_SIGNATURE = b"\x89PNG\r\n\x1a\n"   # PNG specification (W3C / ISO 15948), file signature
 # Bit values of the flags table in README.md ("The flags bitfield"), typed in from the document.
@@ -345,3 +345,191 @@ def test_truth_file_without_truth_columns_exits_2(files, tmp_path, capsys):
     rc = main(["report", str(est_path), "--truth", str(rec), "-o", str(tmp_path / "r")])
     assert rc == 2
     assert f"{rec}: column 'true_ux'" in capsys.readouterr().err
+
+
+# ------------------------------------------------------------------- static stretch: noise statistics
+
+FS_STATIC = 100.0
+S_AXIS = 0.02                 # deg of white direction noise per tangent axis (total sqrt(2) x this)
+S_B = 0.005                   # nT of white magnitude noise
+
+
+def make_static_run(seed=21, moving_s=10.0, still_s=50.0):
+    """Return (estimates columns, truth columns): a field turning for moving_s, then still for still_s,
+    estimated with white noise of known size (invented numbers)."""
+    rng = np.random.default_rng(seed)
+    t = np.arange(int((moving_s + still_s) * FS_STATIC)) / FS_STATIC
+    az = np.radians(20.0 * np.minimum(t, moving_s))                  # 20 deg/s, then still
+    polar = np.radians(50.0)
+    u_true = np.column_stack([np.sin(polar) * np.cos(az), np.sin(polar) * np.sin(az), np.full(t.size, np.cos(polar))])
+    helper = np.where(np.abs(u_true[:, 2:3]) < 0.9, [[0, 0, 1.0]], [[1.0, 0, 0]])
+    e1 = np.cross(u_true, helper)
+    e1 /= np.linalg.norm(e1, axis=1, keepdims=True)
+    e2 = np.cross(u_true, e1)
+    a, b = np.radians(rng.normal(0, S_AXIS, (2, t.size)))
+    u = u_true + a[:, None] * e1 + b[:, None] * e2
+    u /= np.linalg.norm(u, axis=1, keepdims=True)
+    b_true = np.full(t.size, 30000.0)
+    est = {"t": r9(t), "u": r9(u), "b_nT": r9(b_true + rng.normal(0, S_B, t.size)),
+           "sigma_deg": np.full(t.size, math.sqrt(2) * S_AXIS), "flags": np.full(t.size, README_FLAGS["TRACKING"]),
+           "sigma_b_nT": np.full(t.size, S_B), "bound_deg": np.full(t.size, math.sqrt(2) * S_AXIS)}
+    truth = {"t": r10(t), "true_ux": r10(u_true[:, 0]), "true_uy": r10(u_true[:, 1]), "true_uz": r10(u_true[:, 2]),
+             "true_b_nT": b_true}
+    return est, truth
+
+
+@pytest.fixture(scope="module")
+def static_files(tmp_path_factory):
+    d = tmp_path_factory.mktemp("static")
+    est, truth = make_static_run()
+    return (d, est, truth, write_estimates(d / "est.csv", est, extras=("sigma_b_nT", "bound_deg")),
+            write_truth(d / "rec.csv", truth))
+
+
+def adev_by_averages(y, m):
+    """ADEV as half the mean squared difference of adjacent overlapping m-sample averages (the textbook
+    definition, NIST SP 1065 eq. (5) with overlapping averages), computed without cumulative sums."""
+    kernel = np.ones(m) / m
+    means = np.convolve(y, kernel, mode="valid")
+    return math.sqrt(0.5 * np.mean((means[m:] - means[:-m]) ** 2))
+
+
+def test_static_stretch_noise_matches_white_noise_closed_forms(static_files, tmp_path):
+    from scipy.signal import welch
+
+    from fieldvane.io.estimates_csv import read_estimates
+
+    d, est, truth, est_path, rec_path = static_files
+    out = tmp_path / "r"
+    written = write_report(est_path, rec_path, out)
+    assert [p.name for p in written][-2:] == ["allan.png", "spectrum.png"]
+    table = {k: float(v) for k, v in parse_table((out / "summary.md").read_text()).items()}
+    # The truth stops turning at 10 s; the first second of the still part is dropped as settling.
+    assert table["static_start_s"] == pytest.approx(11.0, abs=1.0 / FS_STATIC + 1e-9)
+    assert table["static_end_s"] == pytest.approx(59.99)
+    assert table["static_rate_hz"] == pytest.approx(FS_STATIC)
+    # White noise closed forms: ADEV(tau0) = sigma (NIST SP 1065), one-sided density sigma sqrt(2 / fs).
+    total = math.sqrt(2) * S_AXIS
+    assert table["static_dir_adev_tau0_deg"] == pytest.approx(total, rel=0.03)
+    assert table["static_dir_adev_1s_deg"] == pytest.approx(total / math.sqrt(FS_STATIC), rel=0.15)
+    assert table["static_dir_white_deg_per_rtHz"] == pytest.approx(total * math.sqrt(2 / FS_STATIC), rel=0.12)
+    assert table["static_bound_density_deg_per_rtHz"] == pytest.approx(total * math.sqrt(2 / FS_STATIC), rel=1e-5)
+    assert table["static_b_adev_tau0_nT"] == pytest.approx(S_B, rel=0.03)
+    assert table["static_b_white_nT_per_rtHz"] == pytest.approx(S_B * math.sqrt(2 / FS_STATIC), rel=0.12)
+    assert table["static_dir_rms_deg"] == pytest.approx(total, rel=0.03)
+    # The same numbers recomputed independently from the file's rows: adjacent-average ADEV and
+    # scipy's Welch over the band the notes name.
+    cols = read_estimates(est_path)
+    rows = (cols["t"] >= table["static_start_s"] - 1e-9) & (cols["t"] <= table["static_end_s"] + 1e-9)
+    b = cols["b_nT"][rows]
+    assert table["static_samples"] == rows.sum()
+    assert table["static_b_adev_tau0_nT"] == pytest.approx(adev_by_averages(b, 1), rel=1e-5)
+    assert table["static_b_adev_1s_nT"] == pytest.approx(adev_by_averages(b, 128), rel=1e-5)
+    notes = (out / "summary.md").read_text()
+    lo, hi = map(float, re.search(r"between ([0-9.]+) and ([0-9.]+) Hz", notes).groups())
+    f, p = welch(b, fs=FS_STATIC, nperseg=1024)
+    # The documented band: the decade above the second frequency bin.
+    band = (f >= f[2]) & (f <= 10 * f[2])
+    assert (lo, hi) == (pytest.approx(f[2], rel=3e-3), pytest.approx(10 * f[2], rel=3e-3))
+    assert table["static_b_white_nT_per_rtHz"] == pytest.approx(math.sqrt(np.mean(p[band])), rel=1e-3)
+    # Magnitude uncertainty: sigma_b_nT shown, and the share of |error| <= sigma_b_nT against the
+    # 1-D Gaussian 68.3% (scipy.stats.norm, reference library; binomial spread ~0.006 over 6000 rows).
+    assert table["sigma_b_nT_median"] == pytest.approx(S_B)
+    assert table["b_within_1sigma_expected"] == pytest.approx(stats.norm.cdf(1) - stats.norm.cdf(-1), rel=1e-6)
+    err = np.abs(est["b_nT"] - truth["true_b_nT"])
+    assert table["b_within_1sigma"] == pytest.approx(np.mean(err <= S_B), abs=1e-6)
+    assert abs(table["b_within_1sigma"] - 0.6827) < 0.03
+
+
+def test_static_stretch_found_without_truth_and_chosen_by_option(static_files, tmp_path, capsys, monkeypatch):
+    from fieldvane.io import plots
+
+    def no_plots():
+        raise plots.PlotsUnavailable("figures skipped by the test (speed)")
+
+    monkeypatch.setattr(plots, "require_matplotlib", no_plots)
+    d, est, truth, est_path, rec_path = static_files
+    rc = main(["report", str(est_path), "-o", str(tmp_path / "a")])
+    text = capsys.readouterr().out
+    assert rc == 0
+    start = float(re.search(r"^static_start_s\s+([0-9.]+) s$", text, re.M).group(1))
+    assert 10.0 <= start <= 12.5                   # estimates alone: still from about 10 s, settling dropped
+    assert re.search(r"^static_dir_white_deg_per_rtHz\s+[0-9.]+ deg/sqrt\(Hz\)$", text, re.M)
+    rc = main(["report", str(est_path), "--static", "20:40", "-o", str(tmp_path / "b")])
+    text = capsys.readouterr().out
+    assert rc == 0
+    assert re.search(r"^static_start_s\s+20 s$", text, re.M) and re.search(r"^static_end_s\s+40 s$", text, re.M)
+    assert re.search(r"^static_samples\s+2001$", text, re.M)
+    for bad, message in (("5", "--static expects START:END"), ("40:20", "START < END"),
+                         ("100:200", "no estimate between 100 and 200 s")):
+        assert main(["report", str(est_path), "--static", bad, "-o", str(tmp_path / "c")]) == 2
+        err = capsys.readouterr().err
+        assert message in err and "Traceback" not in err
+
+
+def test_moving_run_has_no_static_stretch(files, tmp_path):
+    d, est, truth, est_path, rec_path = files
+    out = make_report(est_path, rec_path, tmp_path / "r", figures=False)
+    assert not any(k.startswith("static_") for k in out.summary)
+    assert any("no static stretch" in n for n in out.notes)
+
+
+def test_float_noise_is_stated_not_plotted(tmp_path, monkeypatch):
+    # A simulator with exact Larmor frequencies gives magnitudes that differ only in the last bits:
+    # the magnitude figure must state them as constants instead of drawing float noise.
+    from fieldvane.io import plots
+
+    est, truth = make_static_run(seed=22, moving_s=0.0, still_s=8.0)
+    est["b_nT"] = np.full(est["t"].size, 20000.000002507797)
+    est["b_a_nT"] = est["b_nT"] + np.spacing(20000.0) * (np.arange(est["t"].size) % 2)
+    est["b_b_nT"] = np.full(est["t"].size, 19999.99999947145)
+    truth["true_b_nT"] = np.full(truth["t"].size, 20000.0)
+    path = write_estimates(tmp_path / "exact.csv", est, extras=("b_a_nT", "b_b_nT"))
+    figures = {}
+    real_save = plots.save
+
+    def keep(fig, p):
+        figures[Path(p).name] = fig
+        return real_save(fig, p)
+
+    monkeypatch.setattr(plots, "save", keep)
+    out = make_report(path, write_truth(tmp_path / "rec.csv", truth), tmp_path / "r")
+    fig = figures["magnitude.png"]
+    drawn = [line for ax in fig.axes for line in ax.get_lines() if len(line.get_xdata()) > 2]
+    assert drawn == []
+    text = " ".join(t.get_text() for ax in fig.axes for t in ax.texts)
+    for name in ("b_nT", "b_a_nT", "b_b_nT", "b_nT minus truth", "b_a_nT / b_b_nT"):
+        assert f"{name} is constant within float resolution" in text
+    assert out.summary["b_a_std_nT"] == 0.0 and out.summary["b_ratio_std"] == 0.0
+    assert any("b_nT is constant within float resolution" in n for n in out.notes)
+    assert "allan.png" in figures and "spectrum.png" in figures
+
+
+def test_sigma_figure_explains_error_below_the_bound(static_files, tmp_path):
+    from fieldvane.io import plots
+    from fieldvane.io.estimates_csv import read_estimates
+    from fieldvane.io.report import find_static, static_noise
+
+    d, est, truth, est_path, rec_path = static_files
+    cols = read_estimates(est_path)
+    still = static_noise(cols, *find_static(cols))
+    figures = {}
+    real_save = plots.save
+    try:
+        plots.save = lambda fig, p: figures.setdefault(Path(p).name, fig) and real_save(fig, p)
+        plots.plot_sigma(tmp_path / "sigma.png", cols)
+        plots.plot_allan(tmp_path / "allan.png", still)
+        plots.plot_spectrum(tmp_path / "spectrum.png", still)
+        plots.plot_magnitudes(tmp_path / "magnitude.png", cols)
+    finally:
+        plots.save = real_save
+    title = figures["sigma.png"]._suptitle.get_text()
+    assert "averages many samples" in title and "single-sample Cramer-Rao bound" in title
+    # Plain tick labels everywhere: no scientific notation, no offset text.
+    for name, fig in figures.items():
+        fig.canvas.draw()
+        for ax in fig.axes:
+            labels = [t.get_text() for t in ax.get_yticklabels() + ax.get_xticklabels()]
+            assert labels and not any("e-" in x or "e+" in x or "\u00d710" in x or "$" in x for x in labels), \
+                (name, labels)
+            assert ax.yaxis.get_offset_text().get_text() == "", name

@@ -28,7 +28,11 @@ EXAMPLES = sorted((ROOT / "examples").glob("*.toml"))
 BUILTIN = sorted((ROOT / "firmware_sim" / "scenarios").glob("*.toml"))
 REQUIRED_EXAMPLES = {"static", "rotation_blind_planes", "turntable", "magnitude_ramp", "field_step",
                      "noise_burst", "gain_drift", "dropouts", "calibration_scan",
-                     "calibration_scan_single"}
+                     "calibration_scan_single", "calibration_scan_lockin", "lockin_filtered_turn",
+                     "bench_power_drift", "bench_probe_drifts", "probe2_dropout", "probe2_fade",
+                     "wide_bandwidth", "wide_bandwidth_burst"}
+# Examples longer than a minute, because a check needs the length (tests shorten them).
+LONG_EXAMPLES = {"bench_probe_drifts": 120.0}
 
 
 def _rot(axis, angle_deg) -> Rotation:
@@ -84,7 +88,7 @@ def test_scenario_parses_and_simulates(path):
 @pytest.mark.parametrize("path", EXAMPLES + BUILTIN, ids=lambda p: p.stem)
 def test_full_length_is_modest(path):
     s = load_scenario(path)
-    assert 1.0 <= s.duration_s <= 60.0        # examples stay short (seconds to a minute)
+    assert 1.0 <= s.duration_s <= LONG_EXAMPLES.get(path.stem, 60.0)   # seconds to a minute
 
 
 def test_demo_scenarios_describe_the_same_sensor():
@@ -314,6 +318,29 @@ BAD_CASES = [
 ]
 
 
+LOCKIN = "[lockin]\ntime_constant_s = 0.005\n"
+BAD_CASES += [
+    ("[direction]", LOCKIN.replace("0.005", "0") + "[direction]", "lockin.time_constant_s", 6, "> 0"),
+    ("[direction]", LOCKIN + "filter_order = 9\n[direction]", "lockin.filter_order", 7, "<= 8"),
+    ("[direction]", LOCKIN + "filter_order = 2.0\n[direction]", "lockin.filter_order", 7, "whole number"),
+    ("[direction]", LOCKIN + "stages = 4\n[direction]", "lockin.stages", 7, "unknown key"),
+    ("[direction]", LOCKIN + "noise_reference_bandwidth_hz = -1\n[direction]",
+     "lockin.noise_reference_bandwidth_hz", 7, "> 0"),
+    ("[direction]", LOCKIN + "oversample = 0\n[direction]", "lockin.oversample", 7, ">= 1"),
+    ("[direction]", "[lockin]\nfilter_order = 4\n[direction]", "lockin.time_constant_s", 5, "required"),
+    ("[direction]", LOCKIN.replace("0.005", "1e-8") + "[direction]", "lockin.time_constant_s", 6,
+     "internal samples"),
+    ('kind = "noise_burst"\nstart_s = 1\nduration_s = 1\nfactor = 4',
+     'kind = "probe_missing"\nprobe = 2\nstart_s = 1\nduration_s = -1', "events[0].duration_s", 18, "> 0"),
+    ('kind = "noise_burst"\nstart_s = 1\nduration_s = 1\nfactor = 4',
+     'kind = "probe_missing"\nprobe = 3\nstart_s = 1\nduration_s = 1', "events[0].probe", 16, "<= 2"),
+    ('kind = "noise_burst"\nstart_s = 1\nduration_s = 1\nfactor = 4',
+     'kind = "fade"\nprobe = 1\nstart_s = 1\nfall_s = 0', "events[0].fall_s", 18, "> 0"),
+    ('kind = "noise_burst"\nstart_s = 1\nduration_s = 1\nfactor = 4',
+     'kind = "fade"\nprobe = 1\nstart_s = 1\nfall_s = 2\nto_pct = 120', "events[0].to_pct", 19, "<= 100"),
+]
+
+
 @pytest.mark.parametrize("old,new,key,line,words", BAD_CASES, ids=[c[2] + ":" + c[4] for c in BAD_CASES])
 def test_bad_scenario_names_file_line_and_key(tmp_path, old, new, key, line, words):
     assert old in GOOD
@@ -324,6 +351,26 @@ def test_bad_scenario_names_file_line_and_key(tmp_path, old, new, key, line, wor
     err = info.value
     assert err.key == key and err.line == line and words in err.reason
     assert str(path) in str(err) and key in str(err)
+
+
+def test_scan_settle_s_validation_and_default(tmp_path):
+    base = ('version = 1\nkind = "scan"\n[run]\nsample_rate_hz = 200\n[lockin]\ntime_constant_s = 0.01\n'
+            'filter_order = 2\n[scan]\nmagnitudes_nT = [20000]\npoints = 10\ndwell_samples = 5\n')
+    s = loads_scenario(base)
+    # Default with a lock-in: tau x gammaincinv(n, 1 - 1e-4), the step response's settling
+    # (scipy.special, an outside library): 2 stages of 10 ms need 0.1175 s = 24 samples at 200 Hz.
+    from scipy.special import gammaincinv
+    assert s.scan.settle_samples == math.ceil(0.01 * gammaincinv(2, 1 - 1e-4) * 200) == 24
+    assert s.duration_s == pytest.approx(10 * (24 + 5) / 200)
+    assert loads_scenario(base + "settle_s = 0\n").scan.settle_samples == 0
+    assert loads_scenario(base + "settle_s = 0.051\n").scan.settle_samples == 11
+    no_lockin = base.replace("[lockin]\ntime_constant_s = 0.01\nfilter_order = 2\n", "")
+    assert loads_scenario(no_lockin).scan.settle_samples == 0
+    path = tmp_path / "scan.toml"
+    path.write_text(base + "settle_s = -1\n")
+    with pytest.raises(ScenarioError, match=">= 0") as info:
+        load_scenario(path)
+    assert info.value.key == "scan.settle_s" and info.value.line == 12
 
 
 def test_good_base_case_loads(tmp_path):

@@ -10,7 +10,8 @@ import tty
 
 import serial
 
-from fieldvane.io.capture import Chunk
+from fieldvane.io.capture import EVENT_LINK_OPEN, EVENT_LOST, CaptureWriter, Chunk, read_capture
+from fieldvane.io.capture_thread import CaptureThread
 from fieldvane.io.serial_link import ChunkQueue, SerialLink
 
 TIMEOUT = 10.0
@@ -44,7 +45,8 @@ def test_loop_url_delivers_every_byte_in_order():
         times = [c.host_time_ns for c in chunks]
         assert times == sorted(times) and all(isinstance(t, int) for t in times)
         c = link.counters()
-        assert c["bytes_read"] == len(sent) and c["chunks_read"] == len(chunks)
+        assert chunks[0].event == EVENT_LINK_OPEN and not chunks[0].data    # the open comes first
+        assert c["bytes_read"] == len(sent) and c["chunks_read"] == len(chunks) - 1
         assert c["chunks_dropped"] == 0 and c["opens"] == 1
     finally:
         assert link.stop(TIMEOUT)
@@ -141,4 +143,63 @@ def test_chunk_queue_is_bounded_in_bytes():
     assert not q.put(Chunk(2, b"b" * 41))
     assert q.put(Chunk(3, b"c" * 40))
     assert (q.chunks_dropped, q.bytes_dropped, q.queued_bytes) == (1, 41, 100)
-    assert q.get(0).data == b"a" * 60 and q.get(0).host_time_ns == 3 and q.get(0) is None
+    assert q.get(0).data == b"a" * 60
+    hole = q.get(0)                       # the consumer learns where bytes went missing
+    assert (hole.event, hole.lost, hole.data) == (EVENT_LOST, 41, b"")
+    assert q.get(0).data == b"c" * 40 and q.get(0) is None
+
+
+def test_bytes_waiting_before_the_open_are_kept(tmp_path):
+    # pyserial flushes a port's input when it opens it; the link must not (the bytes a sensor
+    # sent while the port was being opened would vanish uncounted).
+    path = str(tmp_path / "sensor")
+    master, slave = make_pty(path)
+    early = bytes(range(1, 256)) * 8
+    os.write(master, early)                       # sent before the link opens the port
+    link = SerialLink(path).start()
+    try:
+        data, _ = collect(link, len(early))
+        assert data == early and link.counters()["bytes_read"] == len(early)
+    finally:
+        assert link.stop(TIMEOUT)
+        os.close(master)
+        os.close(slave)
+
+
+def test_socket_bytes_sent_at_connect_are_kept():
+    server = socket.socket()
+    server.bind(("127.0.0.1", 0))
+    server.listen(1)
+    server.settimeout(TIMEOUT)
+    burst = bytes(random.Random(9).randrange(256) for _ in range(50000))
+    link = SerialLink(f"socket://127.0.0.1:{server.getsockname()[1]}").start()
+    try:
+        conn, _ = server.accept()
+        conn.sendall(burst)                       # at once, racing the link's open()
+        assert collect(link, len(burst))[0] == burst
+        conn.close()
+    finally:
+        assert link.stop(TIMEOUT)
+        server.close()
+
+
+def test_the_capture_gets_every_byte_even_when_the_queue_drops(tmp_path):
+    port = serial.serial_for_url("loop://", timeout=0.05)
+    capture = CaptureThread(CaptureWriter(tmp_path / "cap"))
+    link = SerialLink("loop://", opener=lambda: port, max_queued_bytes=5000, capture=capture)
+    capture.start()
+    link.start()
+    rng = random.Random(8)
+    sent = bytes(rng.randrange(256) for _ in range(200_000))
+    try:
+        assert link.connected.wait(TIMEOUT)
+        for i in range(0, len(sent), 4000):       # nobody reads the queue: it overflows
+            port.write(sent[i:i + 4000])
+        assert link.wait_for(lambda l: l.bytes_read == len(sent), TIMEOUT)
+    finally:
+        assert link.stop(TIMEOUT)
+    assert capture.close(TIMEOUT)
+    c = link.counters()
+    assert c["bytes_dropped"] > 0 and c["bytes_dropped"] + c["queued_bytes"] == len(sent)
+    assert b"".join(ch.data for ch in read_capture(tmp_path / "cap")) == sent
+    assert capture.counters()["bytes_lost"] == 0

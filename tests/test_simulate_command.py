@@ -80,6 +80,61 @@ def test_dropouts_show_as_gaps_and_skipped_nan_rows(tmp_path, capsys):
     assert np.count_nonzero(np.diff(block.t) > 1.5 / 200) == 2    # the missing rows and the NaN rows
 
 
+def test_lockin_settings_and_rate_are_recorded_as_metadata(tmp_path, capsys):
+    out = tmp_path / "turn.csv"
+    assert main(["simulate", str(EX / "lockin_filtered_turn.toml"), "-o", str(out), "--duration", "2"]) == 0
+    assert "lock-in 4 x 5 ms" in capsys.readouterr().out
+    lines = out.read_text().splitlines()
+    # The exact lines the estimator reads (docs/scenarios.md).
+    for line in ("# lockin_time_constant_s: 0.005", "# lockin_filter_order: 4", "# sample_rate_hz: 200",
+                 "# lockin_noise_bandwidth_hz: 15.625"):
+        assert line in lines
+    block, warnings = read_recording(out)
+    assert warnings == [] and len(block) == 400
+    assert block.metadata["lockin_filter_order"] == "4"
+    plain = tmp_path / "plain.csv"
+    assert main(["simulate", str(EX / "static.toml"), "-o", str(plain), "--duration", "1"]) == 0
+    assert "lockin" not in plain.read_text()
+
+
+def test_lockin_scan_summary_counts_the_settling_samples(tmp_path, capsys):
+    out = tmp_path / "scan.csv"
+    assert main(["simulate", str(EX / "calibration_scan_lockin.toml"), "-o", str(out), "--duration", "6"]) == 0
+    text = capsys.readouterr().out
+    # 6 s = 1200 samples = 50 points x (16 settling + 8 recorded): 400 rows, 800 left out.
+    assert "400 rows" in text and "800 samples left out while the lock-in settled" in text
+    assert "rows missing" not in text
+
+
+def test_missing_probe_fields_are_empty_in_the_recording(tmp_path, capsys):
+    out = tmp_path / "drop2.csv"
+    assert main(["simulate", str(EX / "probe2_dropout.toml"), "-o", str(out), "--duration", "32"]) == 0
+    assert "a probe's values missing in 2000 rows" in capsys.readouterr().out
+    rows = [ln for ln in out.read_text().splitlines() if not ln.startswith("#")]
+    header, data = rows[0].split(","), [r.split(",") for r in rows[1:]]
+    assert len(data) == 6400 and all(len(r) == len(header) for r in data)
+    probe2 = [header.index(c) for c in CHANNEL_COLUMNS[4:]]
+    others = [i for i in range(len(header)) if i not in probe2]
+    for r in data:
+        t = float(r[0])
+        empty = [r[i] == "" for i in probe2]
+        assert all(empty) if 20.0 <= t < 30.0 else not any(empty)
+        assert all(r[i] != "" and np.isfinite(float(r[i])) for i in others)
+    sim = simulate(load_scenario(EX / "probe2_dropout.toml", duration_s=32))
+    first = np.array([float(v) for v in data[0][3:11]])
+    np.testing.assert_allclose(first, np.column_stack([sim.z[0].real, sim.z[0].imag]).ravel(), rtol=1e-9)
+
+
+def test_emit_csv_leaves_a_missing_probe_empty(tmp_path):
+    out = tmp_path / "drop2.csv"
+    assert main(["emit", str(EX / "probe2_dropout.toml"), "--to", f"file:{out}", "--format", "csv",
+                 "--duration", "21"]) == 0
+    rows = [ln.split(",") for ln in out.read_text().splitlines() if not ln.startswith("#")][1:]
+    assert len(rows) == 4200
+    assert all(r[7:] == ["", "", "", ""] for r in rows[4000:])
+    assert all("" not in r for r in rows[:4000])
+
+
 def test_builtin_scenario_by_name(tmp_path, capsys):
     out = tmp_path / "demo.csv"
     assert main(["simulate", "demo_track", "-o", str(out), "--duration", "1"]) == 0

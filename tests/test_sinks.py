@@ -1,8 +1,9 @@
-"""Logger sinks: formats (CSV, JSON lines, NMEA-style), transports, bounded queues, --out specs."""
+"""Logger sinks: formats (CSV, JSON lines, NMEA 0183 proprietary sentences), transports, bounded queues, --out specs."""
 
 from __future__ import annotations
 
 import csv
+import datetime
 import io
 import json
 import math
@@ -15,11 +16,13 @@ import tty
 import numpy as np
 import pynmea2
 import pytest
+from hypothesis import given, settings
+from hypothesis import strategies as st
 
 from fieldvane.io.errors import InputError
-from fieldvane.io.sinks import (ESTIMATE_COLUMNS, CsvFormatter, JsonlFormatter, NmeaFormatter,
+from fieldvane.io.sinks import (ESTIMATE_COLUMNS, NMEA_MNEMONIC, CsvFormatter, JsonlFormatter, NmeaFormatter,
                                 Sink, SinkSpec, StreamTransport, TcpServerTransport, Transport,
-                                close_sinks, nmea_checksum, open_sink, parse_sink_spec)
+                                close_sinks, nmea_checksum, open_sink, parse_sink_spec, utc_iso)
 
 TIMEOUT = 10.0
 
@@ -67,27 +70,101 @@ def test_nmea_checksum_published_example():
     pynmea2.parse(f"${body}*47", check=True)
 
 
-def test_nmea_sentences_checked_with_pynmea2():
+def parse_proprietary(line):
+    """Parse one sentence with pynmea2 (reference library) as a proprietary sentence, checksum required."""
+    assert line.endswith("\r\n") and len(line) <= 82        # NMEA 0183: at most 82 characters, '$' to LF
+    msg = pynmea2.parse(line.strip(), check=True)
+    assert isinstance(msg, pynmea2.ProprietarySentence) and type(msg) is pynmea2.ProprietarySentence
+    # Checksum: pynmea2's XOR of the characters between '$' and '*', two upper-case hex digits.
+    body, checksum = line.strip()[1:].split("*")
+    assert checksum == "%02X" % pynmea2.NMEASentence.checksum(body)
+    return msg
+
+
+def test_nmea_proprietary_sentences_parse_with_pynmea2():
+    f = NmeaFormatter(sentences="DM")
+    utc = 1796169601.2345                 # 2026-12-02T00:00:01.2345Z (datetime, reference: standard library)
+    rec = record(11, utc=utc, b_a_nT=48000.0021, b_b_nT=47999.9987, sigma_b_nT=0.0123, nis=7.25,
+                 nis_dof=np.int64(8), extra_text="x*y,z$")
+    d_line, m_line, rest = f.format(rec).split("\r\n")
+    assert rest == ""
+    d, m = parse_proprietary(d_line + "\r\n"), parse_proprietary(m_line + "\r\n")
+    assert d.manufacturer == m.manufacturer == NMEA_MNEMONIC == "XFV"
+    assert d.data[0] == "D" and m.data[0] == "M"
+    stamp = datetime.datetime.fromtimestamp(utc, datetime.timezone.utc)
+    assert d.data[1] == stamp.strftime("%H%M%S.") + f"{round(stamp.microsecond / 1000):03d}" == "000001.234"
+    assert d.data[2] == stamp.strftime("%d%m%y") == "021226"
+    assert [float(x) for x in d.data[3:6]] == pytest.approx([rec["ux"], rec["uy"], rec["uz"]], abs=5e-6)
+    assert float(d.data[6]) == pytest.approx(rec["b_nT"], abs=5e-4)
+    assert d.data[7] == "0.0500" and d.data[8] == "1" and len(d.data) == 9
+    assert m.data[1] == d.data[1] and m.data[2] == "0.011"
+    assert m.data[3:] == ["48000.002", "47999.999", "0.0123", "7.25", "8"]
+    # Text extras never reach NMEA: the layout is fixed whatever the record holds.
+    assert "x_y" not in d_line + m_line and "x*y" not in d_line + m_line
+
+
+def test_nmea_missing_values_are_empty_fields():
     f = NmeaFormatter()
-    rec = record(11, extra_text="x*y,z$", gate=0.5, bad=math.nan)
+    rec = record(3, ux=math.nan, sigma_deg=math.inf)                # no utc: time and date unknown
+    msg = parse_proprietary(f.format(rec))
+    assert msg.data[1:3] == ["", ""] and msg.data[3] == "" and msg.data[7] == ""
+    assert msg.data[4] != "" and msg.data[8] == "1"
+    msg = parse_proprietary(NmeaFormatter(sentences="M").format(record(3)))
+    assert msg.data[0] == "M" and msg.data[1] == "" and msg.data[3:] == ["", "", "", "", ""]
+
+
+def test_nmea_mnemonic_is_configurable_and_checked():
+    msg = parse_proprietary(NmeaFormatter(mnemonic="QZX").format(record(1)))
+    assert msg.manufacturer == "QZX"
+    for bad in ("XF", "xfv", "XF1", "XFVD", "ÄBC"):
+        with pytest.raises(ValueError, match="three capital letters"):
+            NmeaFormatter(mnemonic=bad)
+    for bad in ("", "X", "DD", "DMX"):
+        with pytest.raises(ValueError, match="D, M or DM"):
+            NmeaFormatter(sentences=bad)
+
+
+finite = st.floats(allow_nan=False, allow_infinity=False)
+
+
+@settings(max_examples=300, deadline=None, derandomize=True)
+@given(utc=st.one_of(st.none(), st.floats(0, 4.1e9)), t=st.floats(-1e9, 1e10),
+       u=st.tuples(st.floats(-1, 1), st.floats(-1, 1), st.floats(-1, 1)),
+       b=st.one_of(st.floats(0, 999999.999), st.just(math.nan)), sigma=st.floats(0, 999.9),
+       flags=st.integers(0, 65535), extra=st.tuples(finite, finite, finite, finite, st.integers(0, 999)))
+def test_nmea_sentences_stay_within_82_characters(utc, t, u, b, sigma, flags, extra):
+    # Any record with values in their documented ranges (docs/sinks.md) gives sentences pynmea2 parses,
+    # at most 82 characters long; out-of-range optional values become empty fields, never longer lines.
+    rec = {"t": t, "ux": u[0], "uy": u[1], "uz": u[2], "b_nT": b, "sigma_deg": sigma, "flags": flags,
+           "b_a_nT": extra[0], "b_b_nT": extra[1], "sigma_b_nT": extra[2], "nis": extra[3], "nis_dof": extra[4]}
+    if utc is not None:
+        rec["utc"] = utc
+    d_line, m_line, _ = NmeaFormatter(sentences="DM").format(rec).split("\r\n")
+    d = parse_proprietary(d_line + "\r\n")
+    parse_proprietary(m_line + "\r\n")
+    assert [float(x) for x in d.data[3:6]] == pytest.approx(list(u), abs=5.000001e-6)
+    if math.isfinite(b):
+        assert float(d.data[6]) == pytest.approx(b, abs=5.000001e-4)
+    assert d.data[8] == str(flags) and d.data[7] != ""
+
+
+def test_utc_is_iso_8601_in_csv_and_jsonl():
+    utc = 1796169601.234567
+    expected = datetime.datetime.fromtimestamp(utc, datetime.timezone.utc).strftime("%Y-%m-%dT%H:%M:%S.%fZ")
+    assert expected == "2026-12-02T00:00:01.234567Z"
+    assert utc_iso(utc) == expected and utc_iso(math.nan) is None and utc_iso(None) is None
+    f = CsvFormatter()
+    rec = record(1, utc=utc)
     f.bind(rec)
-    for r in (rec, record(12, gate=1.25, extra_text="ok", bad=1.0)):
-        line = f.format(r)
-        assert line.endswith("\r\n")
-        m = pynmea2.NMEASentence.sentence_re.match(line)
-        assert m and m.group("sentence_type") == "FVDIR,"
-        # Checksum: pynmea2's XOR of the characters between '$' and '*'.
-        assert int(m.group("checksum"), 16) == pynmea2.NMEASentence.checksum(m.group("nmea_str"))
-        assert m.group("checksum") == m.group("checksum").upper()
-        # pynmea2 validates the checksum before it looks the sentence type up.
-        with pytest.raises(pynmea2.SentenceTypeError):
-            pynmea2.parse(line.strip(), check=True)
-        broken = line.replace("FVDIR,", "FVDIR,9", 1)
-        with pytest.raises(pynmea2.ChecksumError):
-            pynmea2.parse(broken.strip(), check=True)
-    fields = f.format(rec)[1:].split("*")[0].split(",")
-    assert fields[0] == "FVDIR" and fields[1] == "0.011000"
-    assert fields[11:] == ["", "x_y_z_", "0.5"]      # bad (nan) empty, text sanitized, gate
+    rows = list(csv.DictReader(io.StringIO(f.header() + f.format(rec) + f.format(record(2, utc=math.nan)))))
+    assert rows[0]["utc"] == expected and rows[1]["utc"] == ""
+    j = JsonlFormatter()
+    j.bind(rec)
+    assert json.loads(j.format(rec))["utc"] == expected
+    assert json.loads(j.format(record(2, utc=math.inf)))["utc"] is None
+    # The standard library reads it back (ISO 8601, 'Z' accepted from Python 3.11).
+    back = datetime.datetime.fromisoformat(expected).timestamp()
+    assert back == pytest.approx(utc, abs=1e-6)
 
 
 # ------------------------------------------------------------------- --out specs
@@ -95,10 +172,10 @@ def test_nmea_sentences_checked_with_pynmea2():
 @pytest.mark.parametrize("text, spec", [
     ("est.csv", SinkSpec("csv", "file", path="est.csv")),
     ("/tmp/a/b.JSONL", SinkSpec("jsonl", "file", path="/tmp/a/b.JSONL")),
-    ("nmea:tcp:127.0.0.1:5600", SinkSpec("nmea", "tcp", host="127.0.0.1", port=5600)),
-    ("csv:tcp:5600", SinkSpec("csv", "tcp", host="127.0.0.1", port=5600)),
-    ("csv:tcp:[::1]:5600", SinkSpec("csv", "tcp", host="::1", port=5600)),
-    ("csv:udp:127.0.0.1:5601", SinkSpec("csv", "udp", host="127.0.0.1", port=5601)),
+    ("nmea:tcp:127.0.0.1:10110", SinkSpec("nmea", "tcp", host="127.0.0.1", port=10110)),
+    ("csv:tcp:50010", SinkSpec("csv", "tcp", host="127.0.0.1", port=50010)),
+    ("csv:tcp:[::1]:50010", SinkSpec("csv", "tcp", host="::1", port=50010)),
+    ("csv:udp:127.0.0.1:50011", SinkSpec("csv", "udp", host="127.0.0.1", port=50011)),
     ("jsonl:stdout", SinkSpec("jsonl", "stdout")),
     ("nmea:serial:/dev/ttyUSB1:115200", SinkSpec("nmea", "serial", device="/dev/ttyUSB1",
                                                   baudrate=115200)),
@@ -106,6 +183,12 @@ def test_nmea_sentences_checked_with_pynmea2():
                                                           device="socket://127.0.0.1:7000",
                                                           baudrate=9600)),
     ("jsonl:file:out/x.log", SinkSpec("jsonl", "file", path="out/x.log")),
+    ("nmea:tcp:10110?mnemonic=QZX&sentences=DM",
+     SinkSpec("nmea", "tcp", host="127.0.0.1", port=10110, options=(("mnemonic", "QZX"), ("sentences", "DM")))),
+    ("run.nmea?sentences=DM", SinkSpec("nmea", "file", path="run.nmea", options=(("sentences", "DM"),))),
+    # A pyserial URL's own query stays with the device: the baud rate follows it.
+    ("nmea:serial:socket://h:7000?logging=debug:9600", SinkSpec("nmea", "serial", device="socket://h:7000?logging=debug",
+                                                                baudrate=9600)),
 ])
 def test_parse_sink_spec(text, spec):
     assert parse_sink_spec(text) == spec
@@ -114,10 +197,22 @@ def test_parse_sink_spec(text, spec):
 
 @pytest.mark.parametrize("text", ["est.txt", "xml:stdout", "csv:tcp:host:notaport",
                                   "csv:tcp:70000", "nmea:serial:/dev/ttyUSB1", "csv:pigeon:1",
-                                  "csv:udp:0", "csv:file:", "jsonl"])
+                                  "csv:udp:0", "csv:file:", "jsonl", "nmea:tcp:10110?mnemonic=xy",
+                                  "nmea:tcp:10110?talker=GP", "csv:stdout?mnemonic=ABC",
+                                  "nmea:stdout?sentences=Q", "nmea:stdout?sentences=D&sentences=M"])
 def test_parse_sink_spec_errors(text):
     with pytest.raises(InputError, match="--out"):
         parse_sink_spec(text)
+
+
+def test_open_sink_uses_the_formatter_options(tmp_path):
+    path = tmp_path / "run.nmea"
+    sink = open_sink(f"{path}?mnemonic=QZX&sentences=DM")
+    sink.emit(record(4, utc=1796169601.5))
+    assert sink.close(TIMEOUT)
+    lines = path.read_bytes().decode("ascii").splitlines(keepends=True)
+    assert [parse_proprietary(x).data[0] for x in lines] == ["D", "M"]
+    assert lines[0].startswith("$PQZXD,000001.500,021226,")
 
 
 # ------------------------------------------------------------------- transports
@@ -275,10 +370,9 @@ def test_serial_sink_over_pty():
             assert r
             data += os.read(master, 65536)
         lines = data.decode().splitlines()
-        assert len(lines) == 30 and all(x.startswith("$FVDIR,") for x in lines)
+        assert len(lines) == 30 and all(x.startswith("$PXFVD,") for x in lines)
         for x in lines:
-            body, cs = x[1:].split("*")
-            assert cs == "%02X" % pynmea2.NMEASentence.checksum(body)
+            parse_proprietary(x + "\r\n")
     finally:
         os.close(master)
         os.close(slave)
@@ -298,3 +392,19 @@ def test_no_threads_left_behind(tmp_path):
             s.emit(record(i))
     assert close_sinks(sinks, TIMEOUT)
     assert set(threading.enumerate()) == before
+
+
+def test_documented_nmea_example_is_what_the_formatter_writes():
+    # docs/sinks.md shows two sentences for one record; they must stay true (and parse, pynmea2).
+    from pathlib import Path
+
+    doc = (Path(__file__).resolve().parents[1] / "docs" / "sinks.md").read_text(encoding="utf-8")
+    shown = [line.strip() for line in doc.splitlines() if line.strip().startswith("$PXFV")]
+    assert len(shown) == 2
+    rec = {"t": 12.345, "utc": 1796169601.2345, "ux": 0.45202062315507496, "uy": -0.5507615766788274,
+           "uz": 0.701668755109382, "b_nT": 20000.000002507797, "sigma_deg": 0.0247, "flags": 1,
+           "b_a_nT": 20000.0000055, "b_b_nT": 19999.9999995, "nis": 7.5, "nis_dof": 8}
+    assert NmeaFormatter(sentences="DM").format(rec) == "".join(x + "\r\n" for x in shown)
+    assert f"Example ({len(shown[0]) + 2} characters with CR LF" in doc.replace("\n", " ")
+    for x in shown:
+        parse_proprietary(x + "\r\n")

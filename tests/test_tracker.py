@@ -18,15 +18,15 @@ from scipy.stats import chi2
 from fieldvane.estimator.calibration import fit_calibration
 from fieldvane.estimator.filter_settings import FilterSettings
 from fieldvane.estimator.flags import EstimateFlag as F
-from fieldvane.estimator.innovation import innovation_loglik, move_on_sphere, turn_on_sphere
+from fieldvane.estimator import filter_core as core
+from fieldvane.estimator.innovation import innovation_loglik
 from fieldvane.estimator.response import to_real
 from fieldvane.estimator.samples import Sample, SampleBlock
 from fieldvane.estimator.sphere import (angle_between, exp_map, fibonacci_sphere, log_map, normalize,
                                         rotation_matrix, tangent_basis)
-from fieldvane.estimator import monomials, tracker_algebra as algebra
+from fieldvane.estimator import monomials
 from fieldvane.estimator.harmonics import monomial_coefficients, real_sph_harm_reference
-from fieldvane.estimator.tracker import (Tracker, covariance_ok, process_noise, process_noise_static, rate_coupling,
-                                         weak_direction_filter)
+from fieldvane.estimator.tracker import Tracker, rate_coupling
 from fieldvane.estimator.tracker_model import StateLayout, TrackerModel, apply_drifts, drift_jacobian
 from synthetic_sensor import make_sensor, scan
 
@@ -132,10 +132,11 @@ def turning(two_probe, one_probe):
     for n_probes, (sensor, cal, sigma) in ((2, two_probe), (1, one_probe)):
         t, u = rotating(4000, 3.0, [0.3, 1.0, 0.2], normalize(np.array([1.0, 0.5, 0.7])))
         tracker = Tracker(cal, FilterSettings(), GridInitiator(cal.model))
-        rec = tracker.run_arrays(make_stream(sensor, t, u, B0, sigma))
+        block = make_stream(sensor, t, u, B0, sigma)
+        rec = tracker.run_arrays(block)
         keep = slice(400, None)   # after 2 s of convergence
         out[n_probes] = dict(err=errors_deg(rec, u)[keep], bound=true_bound_deg(sensor, u, B0, sigma)[keep],
-                             rec=rec, keep=keep, tracker=tracker)
+                             rec=rec, keep=keep, tracker=tracker, sensor=sensor, cal=cal, sigma=sigma, block=block)
     return out
 
 
@@ -218,14 +219,22 @@ def test_shared_monomial_tables(degree):
 
 
 # ------------------------------------------------------------------------------------ filter algebra
-def test_process_noise_matches_van_loan():
-    """F and Q of the turning model equal van Loan's matrix-exponential discretization (filterpy) of
+def _frame(u, e1):
+    """Return the compiled core's float state holding direction u and tangent axis e1."""
+    fs = np.zeros(core.N_FSTATE)
+    core._set_frame(fs, *u, *e1)
+    return fs
+
+
+def test_prediction_matches_van_loan():
+    """The core's prediction F P F^T + Q equals van Loan's matrix-exponential discretization (filterpy) of
     d(direction error)/dt = B dw + white angle noise, dw/dt and drifts white (random walks)."""
     s = FilterSettings(angle_random_walk_deg_rt_s=0.05, rate_random_walk_deg_s_rt_s=2.0, gain_drift=True,
                        phase_drift=True)
     layout = StateLayout(2, 4, True, True)
     n = layout.size
-    e1, e2 = tangent_basis(normalize(np.array([0.3, -0.5, 0.8])))
+    u = normalize(np.array([0.3, -0.5, 0.8]))
+    e1, e2 = tangent_basis(u)
     coupling = rate_coupling(e1, e2)
     assert np.allclose(coupling @ coupling.T, np.eye(2))
     f_cont = np.zeros((n, n))
@@ -235,28 +244,42 @@ def test_process_noise_matches_van_loan():
     g[layout.rate] = math.radians(s.rate_random_walk_deg_s_rt_s)
     g[layout.gain] = s.gain_drift_per_rt_s
     g[layout.phase] = math.radians(s.phase_drift_deg_rt_s)
+    cfg = np.zeros(core.N_CFG)
+    cfg[core.C_ARW], cfg[core.C_RRW] = math.radians(0.05) ** 2, math.radians(2.0) ** 2
+    cfg[core.C_QGAIN], cfg[core.C_QPHASE] = s.gain_drift_per_rt_s ** 2, math.radians(s.phase_drift_deg_rt_s) ** 2
+    rng = np.random.default_rng(3)
+    a = rng.normal(size=(n, n)) * 1e-2
+    p0 = a @ a.T
     for dt in (0.001, 0.005, 0.1, 1.0):
         phi_ref, q_ref = van_loan_discretization(f_cont, np.diag(g), dt)   # reference library
-        f, q = process_noise(s, layout, dt, coupling)
-        assert np.allclose(f, phi_ref, atol=1e-12)
-        assert np.allclose(q, q_ref, rtol=1e-9, atol=1e-18)
+        fs, p, x = _frame(u, e1), p0.copy(), np.zeros(n)
+        core._predict(fs, x, p, cfg, n, layout.n_gain, layout.observed.stop, dt)
+        assert np.allclose(p, phi_ref @ p0 @ phi_ref.T + q_ref, rtol=1e-9, atol=1e-18)
 
 
 def test_direction_error_follows_rate_coupling():
     """A small angular-velocity error dw moves the true direction by B dw dt in the turned basis."""
     rng = np.random.default_rng(6)
-    frame = Tracker.__new__(Tracker)
     for _ in range(20):
         u = normalize(rng.normal(size=3))
         e1, e2 = tangent_basis(u)
         w, dw, dt = rng.normal(size=3), 1e-6 * rng.normal(size=3), 1e-3
-        frame._u, frame._e1, frame._e2 = tuple(u), tuple(e1), tuple(e2)
+        fs = _frame(u, e1)
         coupling = rate_coupling(e1, e2)
-        Tracker._turn(frame, *(w * dt))
+        core._turn(fs, *(w * dt))
         truth = rotation_matrix(w + dw, np.linalg.norm(w + dw) * dt) @ u
-        err = log_map(np.array(frame._u), truth)
-        assert np.allclose([err @ np.array(frame._e1), err @ np.array(frame._e2)], coupling @ dw * dt,
-                           rtol=0.01, atol=1e-14)
+        err = log_map(fs[0:3], truth)
+        assert np.allclose([err @ fs[3:6], err @ fs[6:9]], coupling @ dw * dt, rtol=0.01, atol=1e-14)
+
+
+def _predicted(tracker, dt):
+    """Return (P, e1, e2) of the tracker's state predicted dt seconds ahead by the core (checked against van Loan
+    above), without changing the tracker."""
+    a = tracker._arrays
+    fs, x, p = a.fstate.copy(), a.x.copy(), a.p.copy()
+    lay = tracker.layout
+    core._predict(fs, x, p, a.cfg, lay.size, lay.n_gain, lay.observed.stop, dt)
+    return p, fs[3:6].copy(), fs[6:9].copy()
 
 
 def test_update_matches_filterpy_extended_kalman_filter(two_probe):
@@ -267,11 +290,11 @@ def test_update_matches_filterpy_extended_kalman_filter(two_probe):
     z = sensor.response(u_true, B0)[0] + sigma * (rng.normal(size=4) + 1j * rng.normal(size=4))
     u0 = exp_map(u_true, 0.006 * tangent_basis(u_true)[0])        # prior 0.34 deg off the truth
     cov0 = np.array([[4e-5, 1e-5], [1e-5, 3e-5]])
-    tracker = Tracker(cal, FilterSettings(), lambda sample, b: (u0, cov0))
+    # No drift states here (5 states: direction and rate); the same check with them follows below.
+    tracker = Tracker(cal, FilterSettings(gain_drift=False, noise_baseline_ratio=1.0), lambda sample, b: (u0, cov0))
     tracker.step(Sample(0.0, *sensor.frequencies(np.array([B0]))[0], z, sensor.channels))   # acquisition
-    p_prior = tracker.covariance
-    e1, e2 = tracker.tangent_basis
-    est = tracker.step(Sample(0.0, *sensor.frequencies(np.array([B0]))[0], z, sensor.channels))  # dt = 0
+    p_prior, e1, e2 = _predicted(tracker, 1e-9)
+    est = tracker.step(Sample(1e-9, *sensor.frequencies(np.array([B0]))[0], z, sensor.channels))
 
     ekf = ExtendedKalmanFilter(dim_x=5, dim_z=8)
     ekf.x = np.zeros((5, 1))
@@ -297,36 +320,62 @@ def test_update_matches_filterpy_extended_kalman_filter(two_probe):
     assert est.flags & F.TRACKING
 
 
+def test_update_with_gain_states_matches_filterpy(two_probe):
+    """With per-probe log-gain states (the default) one update equals filterpy's EKF with H = [dh/dd, dh/dg, 0]."""
+    sensor, cal, sigma = two_probe
+    rng = np.random.default_rng(12)
+    u_true = normalize(np.array([-0.3, 0.5, 0.8]))
+    gains = np.exp(np.array([0.01, 0.01, -0.02, -0.02]))
+    z = gains * sensor.response(u_true, B0)[0] + sigma * (rng.normal(size=4) + 1j * rng.normal(size=4))
+    u0 = exp_map(u_true, 0.004 * tangent_basis(u_true)[1])
+    cov0 = np.array([[3e-5, -5e-6], [-5e-6, 5e-5]])
+    tracker = Tracker(cal, FilterSettings(noise_baseline_ratio=1.0), lambda sample, b: (u0, cov0))
+    f = sensor.frequencies(np.array([B0]))[0]
+    tracker.step(Sample(0.0, *f, z, sensor.channels))
+    assert tracker.layout.size == 7
+    p_prior, e1, e2 = _predicted(tracker, 1e-9)
+    est = tracker.step(Sample(1e-9, *f, z, sensor.channels))
+    ekf = ExtendedKalmanFilter(dim_x=7, dim_z=8)
+    ekf.x = np.zeros((7, 1))
+    ekf.P = p_prior
+    ekf.R = np.diag(cal.model.measurement_noise() ** 2)
+    zh, dz = cal.model.h_and_jacobian(u0, B0)
+    h = np.zeros((8, 7))
+    h[:, 0], h[:, 1] = to_real(dz[0] @ e1), to_real(dz[0] @ e2)
+    h[:4, 2], h[4:, 3] = to_real(zh)[0][:4], to_real(zh)[0][4:]          # dZ/d(log gain) = Z per probe
+    ekf.update(to_real(z[None])[0][:, None], lambda x: h, lambda x: to_real(zh)[0][:, None] + h @ x)
+    step = log_map(u0, est.u)
+    assert np.allclose([step @ e1, step @ e2], ekf.x[:2, 0], rtol=1e-6, atol=1e-12)
+    assert np.allclose(tracker.drifts["gain"], ekf.x[2:4, 0], rtol=1e-6, atol=1e-12)
+    assert est.extras["nis"] == pytest.approx(ekf.mahalanobis ** 2, rel=1e-6)
+
+
 def test_move_is_parallel_transport_and_turn_is_a_rotation():
     """Corrections move the basis like the exact rotation about u x d, predictions like the rotation about w
-    (Rodrigues, sphere.rotation_matrix); the batched versions agree with the scalar ones."""
+    (Rodrigues, sphere.rotation_matrix)."""
     rng = np.random.default_rng(4)
-    frame = Tracker.__new__(Tracker)
     for _ in range(50):
         u = normalize(rng.normal(size=3))
         e1, e2 = tangent_basis(u)
         a = rng.normal(size=2) * rng.choice([1e-6, 0.01, 0.5])
-        frame._u, frame._e1, frame._e2 = tuple(u), tuple(e1), tuple(e2)
-        Tracker._move(frame, a[0], a[1])
+        fs = _frame(u, e1)
+        core._move(fs, a[0], a[1])
         d = a[0] * e1 + a[1] * e2
         rot = rotation_matrix(np.cross(u, d), np.linalg.norm(d))
-        for got, want in zip((frame._u, frame._e1, frame._e2), (u, e1, e2)):
+        for got, want in zip((fs[0:3], fs[3:6], fs[6:9]), (u, e1, e2)):
             assert np.allclose(got, rot @ want, atol=1e-14)
-        ub, e1b, e2b = move_on_sphere(u[None], e1[None], e2[None], a[:1], a[1:])
-        assert np.allclose(ub[0], frame._u, atol=1e-15) and np.allclose(e2b[0], frame._e2, atol=1e-15)
         w = rng.normal(size=3) * rng.choice([1e-6, 0.01, 0.5])
-        frame._u, frame._e1, frame._e2 = tuple(u), tuple(e1), tuple(e2)
-        Tracker._turn(frame, *w)
+        fs = _frame(u, e1)
+        core._turn(fs, *w)
         rot = rotation_matrix(w, np.linalg.norm(w))
-        for got, want in zip((frame._u, frame._e1, frame._e2), (u, e1, e2)):
+        for got, want in zip((fs[0:3], fs[3:6], fs[6:9]), (u, e1, e2)):
             assert np.allclose(got, rot @ want, atol=1e-14)
-        ub, e1b, e2b = turn_on_sphere(u[None], e1[None], e2[None], w[None])
-        assert np.allclose(ub[0], frame._u, atol=1e-15) and np.allclose(e1b[0], frame._e1, atol=1e-15)
 
 
 def test_covariance_check_agrees_with_eigenvalues():
-    """covariance_ok against numpy's eigenvalues (reference) on random symmetric matrices, n = 1..8."""
+    """The core's Cholesky check against numpy's eigenvalues (reference) on random symmetric matrices, n = 1..8."""
     rng = np.random.default_rng(2)
+    scratch = np.zeros((8, 8))
     for n in range(1, 9):
         for _ in range(300):
             a = rng.normal(size=(n, n))
@@ -334,66 +383,32 @@ def test_covariance_check_agrees_with_eigenvalues():
             p += rng.normal() * np.abs(np.linalg.eigvalsh(p)).mean() * np.eye(n)
             smallest = np.linalg.eigvalsh(p).min()
             if abs(smallest) > 1e-9:
-                assert covariance_ok(p) == (smallest > 0)
+                assert core._positive_definite(p, n, scratch) == (smallest > 0)
     good = np.eye(4)
     for bad in (np.where(np.eye(4) > 0, np.nan, good), np.diag([1.0, 1.0, np.inf, 1.0]), np.zeros((4, 4))):
-        assert not covariance_ok(bad)
+        assert not core._positive_definite(bad, 4, scratch)
 
 
-def _random_plain_covariance(rng):
-    a = rng.normal(size=(5, 5)) * np.array([1e-3, 1e-3, 0.05, 0.05, 0.05])[:, None]
-    return a @ a.T + np.diag([1e-8, 1e-8, 1e-6, 1e-6, 1e-6])
-
-
-def test_plain_algebra_equals_matrix_forms():
-    """The 15-float covariance algebra (estimator/tracker_algebra.py) against the matrix equations with numpy:
-    F P F^T + Q (process_noise), the information-form gain, the Joseph update for any gain (here also the
-    weak-direction-filtered one), the chart change, and positive definiteness against eigenvalues."""
+def test_core_gain_equals_textbook_kalman_gain():
+    """The information-form gain and NIS of the core (M = P_o (I + J P_oo)^-1, dx = M b) equal the textbook
+    K = P H^T (H P H^T + R)^-1 and y^T S^-1 y computed with numpy, with drift states observed."""
     rng = np.random.default_rng(8)
-    s = FilterSettings(angle_random_walk_deg_rt_s=0.05, rate_random_walk_deg_s_rt_s=2.0)
-    layout = StateLayout(2, 4, False, False)
-    for _ in range(200):
-        p = _random_plain_covariance(rng)
-        pp = algebra.from_matrix(p)
-        assert np.allclose(algebra.to_matrix(pp), p, rtol=1e-15, atol=0)
-        e1, e2 = tangent_basis(normalize(rng.normal(size=3)))
-        dt = float(rng.choice([0.001, 0.005, 0.1]))
-        f, q = process_noise(s, layout, dt, rate_coupling(e1, e2))
-        q_static, cross = process_noise_static(s, layout, dt)
-        predicted = algebra.predict(pp, tuple(e1), tuple(e2), dt, q_static[0, 0], cross, q_static[2, 2])
-        assert np.allclose(algebra.to_matrix(predicted), f @ p @ f.T + q, rtol=1e-12, atol=1e-20)
-
-        h = rng.normal(size=(8, 2)) * rng.choice([10.0, 1e3])          # whitened tangent Jacobian
-        info = h.T @ h
-        j00, j01, j11 = info[0, 0], info[0, 1], info[1, 1]
-        mt = np.linalg.solve(np.eye(2) + p[:2, :2] @ info, p[:2])
-        m0, m1 = algebra.gain(pp, j00, j01, j11)
-        assert np.allclose(np.array([m0, m1]), mt, rtol=1e-10, atol=1e-22)
-        for filtered in (False, True):
-            rows = mt @ weak_direction_filter(j00, j01, j11, layout, e1, e2) if filtered else mt
-            got = algebra.drop_weak_direction(m0, m1, j00, j01, j11, tuple(e1), tuple(e2)) if filtered else (m0, m1)
-            assert np.allclose(np.array(got), rows, rtol=1e-9, atol=1e-22)
-            k = rows.T @ h.T                                            # K (5, 8) with R = I (whitened)
-            t_mat = np.eye(5) - k @ np.hstack([h, np.zeros((8, 3))])
-            joseph = t_mat @ p @ t_mat.T + k @ k.T
-            assert np.allclose(algebra.to_matrix(algebra.joseph(pp, *got, j00, j01, j11)), joseph,
-                               rtol=1e-8, atol=1e-12 * np.abs(p).max())
-
-        g = np.eye(2) - 0.01 * np.outer(*(2 * [normalize(rng.normal(size=2))]))
-        big = np.eye(5)
-        big[:2, :2] = g
-        assert np.allclose(algebra.to_matrix(algebra.chart_change(pp, g[0, 0], g[0, 1], g[1, 1])), big @ p @ big.T,
-                           rtol=1e-12, atol=1e-24)
-    for _ in range(2000):
-        a = rng.normal(size=(5, 5))
-        p = a @ a.T + rng.normal() * np.eye(5)
-        smallest = np.linalg.eigvalsh(p).min()                       # reference: numpy eigenvalues
-        if abs(smallest) > 1e-9:
-            assert algebra.positive_definite(algebra.from_matrix(p)) == (smallest > 0)
-    bad = list(algebra.from_matrix(np.eye(5)))
-    for value in (math.nan, math.inf):
-        for i in range(15):
-            assert not algebra.positive_definite(tuple(bad[:i] + [value] + bad[i + 1:]))
+    for n, no in ((5, 2), (7, 4), (11, 8)):
+        for _ in range(50):
+            a = rng.normal(size=(n, n)) * rng.choice([1e-3, 1e-1])
+            p = a @ a.T + 1e-6 * np.eye(n)
+            h = np.zeros((8, n))
+            h[:, :no] = rng.normal(size=(8, no)) * rng.choice([10.0, 1e3])   # whitened: R = I
+            y = rng.normal(size=8) * 3
+            k_ref = p @ h.T @ np.linalg.inv(h @ p @ h.T + np.eye(8))
+            nis_ref = y @ np.linalg.solve(h @ p @ h.T + np.eye(8), y)
+            j, b = h[:, :no].T @ h[:, :no], h[:, :no].T @ y
+            work_a, work_b, dx = np.zeros((no, no)), np.zeros((no, n)), np.zeros(n)
+            ok, logdet, nis = core._gain(p, no, n, j, b, float(y @ y), work_a, work_b, dx)
+            assert ok
+            assert np.allclose(dx, k_ref @ y, rtol=1e-7, atol=1e-12 * np.abs(k_ref @ y).max())
+            assert nis == pytest.approx(nis_ref, rel=1e-7)
+            assert logdet == pytest.approx(np.linalg.slogdet(np.eye(no) + p[:no, :no] @ j)[1], rel=1e-9)
 
 
 # ---------------------------------------------------------------------- accuracy against the CRLB
@@ -422,13 +437,25 @@ def test_nis_inside_chi_square_band(turning, n_probes):
     """Mean NIS within the 95% band of chi2(N dof)/N and per-sample NIS in [2.5%, 97.5%] about 95% of the time
     (scipy.stats.chi2, reference library)."""
     r = turning[n_probes]
-    nis = r["rec"].nis[r["keep"]]
-    dof = int(r["rec"].nis_dof[r["keep"]][0])
+    # The filter's equations alone: noise level given (calibrated), not learned (its own test is below).
+    sensor, cal, sigma = r["sensor"], r["cal"], r["sigma"]
+    rec = Tracker(cal, FilterSettings(noise_baseline_ratio=1.0), GridInitiator(cal.model)).run_arrays(r["block"])
+    nis = rec.nis[r["keep"]]
+    dof = int(rec.nis_dof[r["keep"]][0])
     assert dof == 4 * n_probes
     lo, hi = chi2.ppf([0.025, 0.975], nis.size * dof) / nis.size
     assert lo <= nis.mean() <= hi, (nis.mean(), lo, hi)
     inside = np.mean((nis >= chi2.ppf(0.025, dof)) & (nis <= chi2.ppf(0.975, dof)))
     assert 0.93 <= inside <= 0.97, inside
+
+
+@pytest.mark.parametrize("n_probes", [2, 1])
+def test_learned_noise_level_matches_the_streams_noise(turning, n_probes):
+    """The stream's normal noise level, learned from successive innovation differences, is within 10 % (in
+    variance) of the truth here (the simulated noise is the calibrated one) after 20 s; NOISY stays off."""
+    r = turning[n_probes]
+    assert np.allclose(r["tracker"].noise_baseline ** 2, 1.0, atol=0.1)
+    assert np.mean(r["rec"].flags & F.NOISY > 0) < 0.01
 
 
 # --------------------------------------------------------------------------------- hard scenarios
@@ -511,7 +538,8 @@ def test_direction_steps_are_reacquired(two_probe, one_probe, n_probes):
 
 @pytest.mark.parametrize("n_probes", [2, 1])
 def test_outliers_and_nan_rows(two_probe, one_probe, n_probes):
-    """Spikes are gated, NaN rows flagged BAD_INPUT and skipped, partial rows used: the track never jumps."""
+    """Spikes are gated (with two probes: the spiked probe is left out and the other fused), NaN rows flagged
+    BAD_INPUT and skipped, partial rows used: the track never jumps."""
     sensor, cal, sigma = two_probe if n_probes == 2 else one_probe
     n_ch = len(sensor.channels)
     t, u = rotating(3000, 5.0, [0.2, 0.3, 1.0], normalize(np.array([0.9, 0.1, 0.4])))
@@ -519,7 +547,8 @@ def test_outliers_and_nan_rows(two_probe, one_probe, n_probes):
     rng = np.random.default_rng(21)
     rows = rng.choice(np.arange(300, 3000), 240, replace=False)
     spikes, nan_rows, partial, no_freq = rows[:90], rows[90:180], rows[180:220], rows[220:]
-    blk.z[spikes, rng.integers(0, n_ch, spikes.size)] += 80 * sigma.max() * np.exp(2j * np.pi * rng.random(spikes.size))
+    rng_channels = rng.integers(0, n_ch, spikes.size)
+    blk.z[spikes, rng_channels] += 80 * sigma.max() * np.exp(2j * np.pi * rng.random(spikes.size))
     blk.z[nan_rows] = complex(np.nan, np.nan)
     blk.z[partial, n_ch - 1] = complex(np.nan, np.nan)
     blk.f[no_freq, 1] = np.nan
@@ -527,12 +556,22 @@ def test_outliers_and_nan_rows(two_probe, one_probe, n_probes):
     rec = tracker.run_arrays(blk)
     err = errors_deg(rec, u)
     assert err[1:].max() < 0.3
-    assert np.all(rec.flags[spikes] & F.GATED)
+    spiked_probe = np.array([1, 1, 2, 2])[rng_channels] if n_probes == 2 else None
+    if n_probes == 1:
+        assert np.all(rec.flags[spikes] & F.GATED)
+    else:
+        # Either the whole sample was rejected, or only the spiked channel's probe was left out.
+        left_out = (rec.flags[spikes] & F.TRACKING) > 0
+        assert np.all(left_out | (rec.flags[spikes] & F.GATED > 0))
+        assert np.all(rec.probes_used[spikes][left_out] == 3 - spiked_probe[left_out])
+        assert left_out.mean() > 0.9
     assert np.all((rec.flags[nan_rows] & (F.BAD_INPUT | F.COASTING)) == (F.BAD_INPUT | F.COASTING))
     assert np.all(rec.flags[partial] & F.TRACKING) and np.all(rec.nis_dof[partial] == 2 * n_ch - 2)
     assert np.all(rec.flags[no_freq] & F.BAD_INPUT) and np.all(rec.flags[no_freq] & F.TRACKING)
     c = tracker.counters
-    assert c.gated == spikes.size and c.bad_input == 150 and c.acquisitions == 1
+    # every spike is rejected (whole or by probe); a rare noise fluctuation may add a rejection of its own
+    assert spikes.size <= c.gated + c.probe_rejections <= spikes.size + 3
+    assert c.bad_input == 150 and c.acquisitions == 1
 
 
 def test_coasting_through_gated_burst_and_blind_stretch(one_probe):
@@ -548,7 +587,9 @@ def test_coasting_through_gated_burst_and_blind_stretch(one_probe):
     blk.z[burst] *= 1.5
     dropout = np.arange(1200, 2800)
     blk.z[dropout, 1] = complex(np.nan, np.nan)
-    tracker = Tracker(cal, FilterSettings(), GridInitiator(cal.model))
+    # Without gain states: with one channel left, a gain state and the direction are not separable (the
+    # filter then says so with a larger sigma); this test is about the fold.
+    tracker = Tracker(cal, FilterSettings(gain_drift=False), GridInitiator(cal.model))
     rec = tracker.run_arrays(blk)
     err = errors_deg(rec, u)
     assert np.all(rec.flags[burst] & F.GATED)
@@ -630,7 +671,7 @@ def test_step_equals_run_and_channel_readouts(two_probe):
     assert runs[50].extras["nis_dof"] == 6 and runs[60].flags & F.LOW_SIGNAL and runs[60].flags & F.GATED
     z = blk.z[70]
     ex = runs[70].extras
-    assert ex["phase_2b"] == pytest.approx(np.degrees(np.angle(z[3])))
+    assert ex["phase_2b_deg"] == pytest.approx(np.degrees(np.angle(z[3])))
     assert ex["amp_1a_1b"] == pytest.approx(abs(z[0]) / abs(z[1]))
     assert ex["amp_1b_2b"] == pytest.approx(abs(z[1]) / abs(z[3]))
     assert runs[70].row()["bx_nT"] == pytest.approx(runs[70].b_nT * runs[70].u[0])
@@ -657,7 +698,7 @@ def test_gain_drift_state_follows_a_drifting_probe(two_probe):
     settings = FilterSettings(gain_drift=True, gain_drift_per_rt_s=0.005)
     with_states = Tracker(cal, settings, GridInitiator(cal.model))
     rec = with_states.run_arrays(blk)
-    without = Tracker(cal, FilterSettings(), GridInitiator(cal.model)).run_arrays(blk)
+    without = Tracker(cal, FilterSettings(gain_drift=False), GridInitiator(cal.model)).run_arrays(blk)
     err, err0 = errors_deg(rec, u)[3000:], errors_deg(without, u)[3000:]
     assert np.allclose(with_states.drifts["gain"], [0.02, -0.015], atol=0.003)
     assert np.sqrt(np.mean(err ** 2)) < 0.5 * np.sqrt(np.mean(err0 ** 2))
@@ -669,7 +710,7 @@ def test_innovation_loglik_matches_tracker_and_prefers_true_noise(two_probe):
     sensor, cal, sigma = two_probe
     t, u = rotating(1500, 3.0, [0.3, 1.0, 0.2], normalize(np.array([1.0, 0.5, 0.7])))
     blk = make_stream(sensor, t, u, B0, sigma, seed=8)
-    base = FilterSettings()
+    base = FilterSettings(noise_baseline_ratio=1.0)     # the absolute BLIND threshold below assumes this noise
     candidates = [base, base.replace(measurement_noise_scale=0.7), base.replace(measurement_noise_scale=1.4),
                   base.replace(rate_random_walk_deg_s_rt_s=0.2), base.replace(gain_drift=True, phase_drift=True),
                   base.replace(blind_threshold_deg=0.0575)]   # blind over part of this path

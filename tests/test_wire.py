@@ -85,7 +85,7 @@ def test_decode_payload_rejects(kwargs, error):
 def test_length_mismatch_is_bad_frame_with_valid_crc():
     p = spec_payload(1, 2, 0, 8, 1.0, 2.0, (0.0,) * 4)     # says 8 values, carries 4
     d = FrameDecoder()
-    assert d.feed(cobs.encode(p) + b"\x00") == []
+    assert d.feed(b"\x00" + cobs.encode(p) + b"\x00") == []
     assert (d.bad_frames, d.crc_errors) == (1, 0)
     assert d.bytes_discarded == len(cobs.encode(p))
 
@@ -128,7 +128,7 @@ def test_exactly_max_length_is_not_oversize():
     d = FrameDecoder()
     cand = b"\xff" + bytes(range(1, 255)) + b"\x01"     # 256 bytes: valid COBS, fails CRC
     assert len(cand) == 256
-    d.feed(cand + b"\x00")
+    d.feed(b"\x00" + cand + b"\x00")
     assert (d.bad_frames, d.crc_errors) == (0, 1)
     d.feed(b"\x01" + cand + b"\x00")                      # 257 bytes: oversize
     assert (d.bad_frames, d.crc_errors) == (1, 1)
@@ -228,7 +228,7 @@ def test_csv_lines_given_columns_bad_lines_and_new_header():
 
 def test_csv_lines_data_before_header_and_bad_headers():
     d = CsvLineDecoder()
-    assert d.feed(b"1,2,3\n") == []
+    assert d.feed(b"# no header yet\n1,2,3\n") == []
     assert "header line" in d.last_error
     with pytest.raises(InputError, match="column 'y_1b'"):
         CsvLayout(["t", "f_a", "f_b", "x_1a", "y_1a", "x_1b"])
@@ -236,3 +236,95 @@ def test_csv_lines_data_before_header_and_bad_headers():
         CsvLayout(["t", "f_a", "x_1a", "y_1a", "x_1b", "y_1b"])
     with pytest.raises(InputError, match="probe 2 is incomplete"):
         CsvLayout("t,f_a,f_b,x_1a,y_1a,x_1b,y_1b,x_2a,y_2a".split(","))
+
+
+# ------------------------------------------------------------------- fresh streams and restarts
+
+def test_fresh_stream_fragment_is_resynchronisation_not_a_crc_error():
+    tail = encode_frame(frame(7))[25:]                # joined in the middle of a frame
+    d = FrameDecoder()
+    got = d.feed(tail + encode_frame(frame(8)) + encode_frame(frame(9)))
+    assert [f.seq for f in got] == [8, 9]
+    c = d.counters()
+    assert (c["crc_errors"], c["bad_frames"], c["bytes_discarded"]) == (0, 0, 0)
+    assert c["resync_bytes"] == len(tail) - 1         # its 0x00 is a delimiter
+    # The same fragment later in the stream is damage, counted as such.
+    d.feed(tail)
+    assert d.counters()["crc_errors"] + d.counters()["bad_frames"] == 1
+
+
+def test_fresh_stream_garbage_longer_than_a_frame_is_resynchronisation():
+    rng = random.Random(4)
+    garbage = bytes(rng.randrange(1, 256) for _ in range(700))
+    d = FrameDecoder()
+    out = []
+    stream = garbage + b"\x00" + encode_frame(frame(1))
+    for i in range(0, len(stream), 50):
+        out += d.feed(stream[i:i + 50])
+    assert [f.seq for f in out] == [1]
+    assert (d.bad_frames, d.resync_bytes, d.bytes_discarded) == (0, 700, 0)
+
+
+def test_a_fresh_stream_that_starts_on_a_frame_keeps_it():
+    d = FrameDecoder()
+    assert [f.seq for f in d.feed(encode_frame(frame(3)))] == [3]
+    assert d.resync_bytes == 0
+
+
+def test_resync_after_a_hole_discards_the_pending_fragment():
+    whole = encode_frame(frame(1)) + encode_frame(frame(2))
+    d = FrameDecoder()
+    d.feed(whole[:len(whole) - 20])                   # frame 2 half here...
+    d.resync()                                        # ...bytes lost...
+    got = d.feed(whole[-10:] + encode_frame(frame(5)))   # ...then the end of another one
+    assert [f.seq for f in got] == [5]
+    c = d.counters()
+    assert (c["crc_errors"], c["bad_frames"], c["resyncs"]) == (0, 0, 1)
+    assert c["resync_bytes"] == (len(whole) - 20 - len(encode_frame(frame(1)))) + 9
+    assert c["seq_gaps"] == 3                         # frame 2 (cut by the hole), 3 and 4
+
+
+def test_sequence_reset_marks_the_first_frame_and_sample_restarted():
+    d = FrameDecoder()
+    got = d.feed(b"".join(encode_frame(frame(s)) for s in (100, 101, 1, 2)))
+    assert [f.restarted for f in got] == [False, False, True, False]
+    assert [f.to_sample().restarted for f in got] == [False, False, True, False]
+    assert got[2] == frame(1)                          # `restarted` is not part of frame equality
+
+
+def test_csv_lines_bom_fragment_restart_and_bounded_memory():
+    import tracemalloc
+    header = "t,f_a,f_b,x_1a,y_1a,x_1b,y_1b\n"
+    row = "{t},350000,233500,1,2,3,4\n"
+    # A spreadsheet's UTF-8 byte order mark before the header is ignored.
+    d = CsvLineDecoder(source="COM3")
+    out = d.feed(b"\xef\xbb\xbf" + header.encode() + row.format(t=1).encode())
+    assert [s.t for s in out] == [1.0] and d.counters()["bad_lines"] == 0
+    # Joined mid-line: the fragment is resynchronisation, not a bad line.
+    d = CsvLineDecoder(columns=header.strip().split(","), source="COM3")
+    out = d.feed(b"00,233500,1,2\n" + row.format(t=2).encode())
+    assert [s.t for s in out] == [2.0]
+    assert (d.counters()["bad_lines"], d.counters()["resync_bytes"]) == (0, 13)
+    # After lost bytes the next line is dropped whole, whatever it looks like.
+    d.resync(lost=True)
+    out = d.feed(b"5,350000,233500,1,2,3,4\n" + row.format(t=6).encode())
+    assert [s.t for s in out] == [6.0]
+    # A sender that starts over sends its header again: the next sample is marked restarted.
+    assert [s.restarted for s in d.feed(header.encode() + row.format(t=7).encode())] == [False]
+    out = d.feed(header.encode() + row.format(t=0).encode() + row.format(t=1).encode())
+    assert [s.restarted for s in out] == [True, False]
+    # A 100 MB line costs no memory to speak of: dropped as it arrives, counted, reported.
+    d = CsvLineDecoder(source="COM3")
+    d.feed(header.encode())
+    piece = b"1," * 32768
+    tracemalloc.start()
+    for _ in range(100_000_000 // len(piece)):
+        d.feed(piece)
+    d.feed(b"\n" + row.format(t=3).encode())
+    peak = tracemalloc.get_traced_memory()[1]
+    tracemalloc.stop()
+    assert peak < 1_000_000
+    c = d.counters()
+    assert (c["long_lines"], c["bad_lines"], c["lines_ok"]) == (1, 1, 1)
+    assert c["bytes_discarded"] == 100_000_000 // len(piece) * len(piece)
+    assert d.last_error == "COM3:2: line longer than 4096 bytes"

@@ -17,7 +17,7 @@ Faults for testing receivers: --flip-every, --garbage-every, --pause.
 
 example:
   fieldvane emit examples/turntable.toml --to pty
-  fieldvane emit demo_track --to tcp:5760 --format csv --repeat
+  fieldvane emit demo_track --to tcp:50020 --format csv --repeat
   fieldvane emit examples/static.toml --to file:static.bin --fast --flip-every 100
 """
 
@@ -26,6 +26,8 @@ def add_arguments(parser) -> None:
     """Register emit's options."""
     parser.add_argument("scenario", help="scenario TOML file (or a built-in name: demo_scan, demo_track)")
     parser.add_argument("--to", required=True, metavar="DEST", help="pty, tcp:PORT or file:PATH")
+    parser.add_argument("--force", action="store_true",
+                        help="file:PATH only: replace an existing file (never the scenario itself)")
     parser.add_argument("--format", choices=("binary", "csv"), default="binary",
                         help="binary wire frames (default) or CSV lines (text input mode)")
     pace = parser.add_mutually_exclusive_group()
@@ -68,7 +70,34 @@ def _parse_pause(text: str, run) -> tuple[int, float]:
 
 
 def run(args) -> int:
-    """Emit the scenario until it ends (or Ctrl-C) and print what was sent; returns the exit code."""
+    """Emit the scenario until it ends (or Ctrl-C) and print what was sent; returns the exit code.
+
+    A file: destination follows the overwrite rule (io/outputs.py): an existing file is refused
+    unless --force, the scenario never; the bytes go to a temporary name renamed when the run
+    ends (with --repeat, Ctrl-C is that end), so a failed run leaves nothing behind.
+    """
+    from fieldvane.io.commands.simulate import resolve_scenario_path
+    from fieldvane.io.outputs import atomic_file, check_output
+
+    target = args.to[5:] if args.to.startswith("file:") and len(args.to) > 5 else None
+    if target is None:
+        return _emit(args, args.to)
+    check_output(target, inputs=[resolve_scenario_path(args.scenario)], force=args.force, option="--to")
+    stopped = False
+    with atomic_file(target) as tmp:
+        try:
+            code = _emit(args, f"file:{tmp}", f"file {target}")
+        except KeyboardInterrupt:
+            if not args.repeat:
+                raise
+            stopped = True
+    if stopped:
+        raise KeyboardInterrupt
+    return code
+
+
+def _emit(args, dest: str, shown: str | None = None) -> int:
+    """Emit to dest (shown to the user as `shown`); returns the exit code."""
     from fieldvane.firmware_sim.emitter import Emitter, FaultPlan, PtySink, TcpSink, open_sink
     from fieldvane.firmware_sim.scenario import simulate
     from fieldvane.io.commands.simulate import load_or_fail
@@ -87,7 +116,7 @@ def run(args) -> int:
     faults = FaultPlan(bit_flip_every=args.flip_every, garbage_every=args.garbage_every,
                        pause_at=pause_at, pause_s=pause_s, seed=scenario.seed)
     try:
-        sink = open_sink(args.to)
+        sink = open_sink(dest)
     except ValueError as exc:
         raise InputError(f"--to: {exc}") from None
     except OSError as exc:
@@ -97,7 +126,7 @@ def run(args) -> int:
                       repeat=args.repeat, include_truth=args.with_truth,
                       zero_before_each=args.zero_before_each_frame)
     pacing = "real time" if realtime else "as fast as possible"
-    where = sink.description
+    where = shown or sink.description
     if isinstance(sink, PtySink):
         where = f"pty {sink.path} (open it as the serial port)"
     elif isinstance(sink, TcpSink):

@@ -6,11 +6,12 @@ import math
 import sys
 
 DESCRIPTION = """\
-Map the Cramer-Rao lower bound (CRLB) on the field direction over the whole sphere, from a
+Map the Cramer-Rao bound on the field direction of one sample over the whole sphere, from a
 calibration's response model and its lock-in noise. Writes, per probe set, a CSV
-(polar, azimuth, ux, uy, uz, crlb_deg) and a PNG on two equal-area (Lambert azimuthal)
-hemispheres with the pump and probe axes and the blind zones (bound above --blind-deg) marked,
-and prints the median, 95th percentile and fraction of the sphere above 1 degree.
+(polar_deg, azimuth_deg, ux, uy, uz, bound_deg, blind) and a PNG on two equal-area (Lambert
+azimuthal) hemispheres with the pump and probe axes and the blind region marked, and prints the
+median, 95th percentile, blind limit and blind share of the sphere. A direction is blind where its
+bound exceeds --blind-factor (5) times the sphere median: the same rule as the tracker's BLIND flag.
 
 With --gain-free each probe's overall gain is treated as unknown, so only amplitude ratios and
 phases inform the direction (the bound for a sensor whose probe power drifts)."""
@@ -33,11 +34,17 @@ def add_arguments(parser) -> None:
                         help="treat each probe's gain as unknown (amplitude ratios only)")
     parser.add_argument("--points", type=int, default=4000, metavar="N",
                         help="directions in the CSV and the summary (near-uniform grid; default 4000)")
-    parser.add_argument("--blind-deg", type=float, default=5.0, metavar="DEG",
-                        help="bound above which a region is marked blind (default 5)")
+    parser.add_argument("--blind-factor", type=float, default=5.0, metavar="F",
+                        help="a direction is blind where its bound exceeds F times the sphere median "
+                             "(default 5)")
+    parser.add_argument("--rate-hz", type=float, default=None, metavar="HZ",
+                        help="sample rate the calibrated noise refers to, stated on the map "
+                             "(default: the calibration's, when it records one)")
     parser.add_argument("--no-png", action="store_true", help="write the CSV and summary only")
     parser.add_argument("-o", "--output", default=".", metavar="OUTDIR",
                         help="output folder (default: current folder)")
+    parser.add_argument("--force", action="store_true",
+                        help="replace map files that exist in OUTDIR already")
 
 
 def _check(args) -> None:
@@ -49,17 +56,23 @@ def _check(args) -> None:
         raise InputError(f"--b-nT must be a positive magnitude in nT, got {args.b_nT}")
     if args.points < 20:
         raise InputError(f"--points must be at least 20, got {args.points}")
-    if not (math.isfinite(args.blind_deg) and args.blind_deg > 0):
-        raise InputError(f"--blind-deg must be positive, got {args.blind_deg}")
+    if not (math.isfinite(args.blind_factor) and args.blind_factor > 1):
+        raise InputError(f"--blind-factor must be a number above 1, got {args.blind_factor}")
+    if args.rate_hz is not None and not (math.isfinite(args.rate_hz) and args.rate_hz > 0):
+        raise InputError(f"--rate-hz must be a positive sample rate in Hz, got {args.rate_hz}")
 
 
 def run(args) -> int:
     """Run the command; returns the exit code."""
     from fieldvane.io.calfile import load_calibration
     from fieldvane.io.crlb_map import make_map, summary_lines
+    from pathlib import Path
+
     from fieldvane.io.errors import InputError, JobError
+    from fieldvane.io.outputs import atomic_folder, check_folder_outputs, check_output
 
     _check(args)
+    check_output(args.output, folder=True, force=True, option="--output")   # a file there: refused
     plt = None
     if not args.no_png:
         try:
@@ -74,14 +87,21 @@ def run(args) -> int:
     if args.b_nT is not None and not (0.9 * lo <= args.b_nT <= 1.1 * hi):
         print(f"fieldvane map: warning: --b-nT {args.b_nT:g} lies outside the calibrated range "
               f"{lo:.0f}..{hi:.0f} nT; the model is extrapolated", file=sys.stderr)
+    cal_path = Path(args.calibration)
     try:
-        maps, files, b = make_map(cal, args.output, b_nT=args.b_nT, noise_std=args.noise,
-                                  probes=args.probes, gain_free=args.gain_free, n_points=args.points,
-                                  plt=plt, blind_deg=args.blind_deg)
+        # Written to a temporary folder; each file must be new (or --force), never an input.
+        with atomic_folder(args.output) as tmp:
+            maps, files, b = make_map(cal, tmp, b_nT=args.b_nT, noise_std=args.noise,
+                                      probes=args.probes, gain_free=args.gain_free, n_points=args.points,
+                                      plt=plt, blind_factor=args.blind_factor,
+                                      rate_hz=args.rate_hz)
+            check_folder_outputs(tmp, args.output, inputs=[cal_path, cal_path.with_suffix(".npz")],
+                                 force=args.force, option="--output")
+        files = [Path(args.output) / Path(f).relative_to(tmp) for f in files]
     except ValueError as exc:
         raise InputError(str(exc), path=args.calibration) from None
     noise = "calibrated per channel" if args.noise is None else f"{args.noise:g} V"
-    print(f"CRLB over the sphere at |B| = {b:.0f} nT, noise {noise}"
+    print(f"Cramer-Rao bound over the sphere at |B| = {b:.0f} nT, noise {noise}"
           f"{', gain-free' if args.gain_free else ''} ({args.points} directions)")
     for line in summary_lines(maps):
         print("  " + line)

@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import math
 import sys
 
 DESCRIPTION = """Turn an estimates CSV (from replay, run or the CSV logger) into a report folder.
@@ -9,7 +10,13 @@ DESCRIPTION = """Turn an estimates CSV (from replay, run or the CSV logger) into
 Writes summary.md (a table of the numbers, links to the figures) and PNG figures: the track on
 two equal-area hemispheres, the direction components, sigma_deg (with the error against truth),
 the NIS with its 95% chi-square band, a flags timeline, and the magnitude from each isotope with
-their ratio. The numbers are also printed.
+their ratio (a quantity constant within float resolution is stated, not drawn). The numbers are
+also printed.
+
+For the longest static stretch (still in the truth when --truth is given, else in the estimates;
+or the one --static names) the report adds the overlapping Allan deviation (NIST SP 1065) of the
+direction (deg) and of |B| (nT), their Welch noise spectra (deg/sqrt(Hz), nT/sqrt(Hz)) and the
+white-noise levels.
 
 With --truth (a simulator recording with true_ux, true_uy, true_uz, true_b_nT) each estimate is
 matched to the nearest truth sample within half a truth sample period; the report adds the RMS
@@ -31,6 +38,11 @@ def add_arguments(parser) -> None:
                         help="simulator recording with the true_* columns, to score against")
     parser.add_argument("-o", "--output", required=True, metavar="REPORT_DIR",
                         help="folder for summary.md and the PNG figures (created if missing)")
+    parser.add_argument("--force", action="store_true",
+                        help="replace report files that exist in REPORT_DIR already")
+    parser.add_argument("--static", default=None, metavar="START:END",
+                        help="time window (s, in the file's t column) of a static stretch for the Allan "
+                             "deviation and noise spectrum (default: the longest still stretch found)")
     parser.add_argument("--channels", type=int, default=None, metavar="N",
                         help="lock-in channels (NIS degrees of freedom = 2 N) when the file has no "
                              "nis_dof column (default: from the phase_* columns, else 4)")
@@ -38,12 +50,31 @@ def add_arguments(parser) -> None:
 
 def run(args) -> int:
     """Write the report, print the numbers and the files; returns the exit code."""
+    from pathlib import Path
+
     from fieldvane.io.errors import InputError
+    from fieldvane.io.outputs import atomic_folder, check_folder_outputs, check_output
     from fieldvane.io.report import make_report, summary_text
 
+    check_output(args.output, folder=True, force=True, option="--output")   # a file there: refused
+    inputs = [args.estimates, args.truth]
+    check_output(Path(args.output) / "summary.md", inputs=inputs, force=args.force, option="--output")
     if args.channels is not None and not 1 <= args.channels <= 64:
         raise InputError(f"--channels must be between 1 and 64, got {args.channels}")
-    out = make_report(args.estimates, args.truth, args.output, channels=args.channels)
+    static = None
+    if args.static is not None:
+        start, sep, end = args.static.partition(":")
+        try:
+            static = (float(start), float(end))
+        except ValueError:
+            static = None
+        if not sep or static is None or not all(map(math.isfinite, static)) or not static[0] < static[1]:
+            raise InputError(f"--static expects START:END in seconds with START < END, got {args.static!r}")
+    # Written to a temporary folder; each file must be new (or --force), never an input.
+    with atomic_folder(args.output) as tmp:
+        out = make_report(args.estimates, args.truth, tmp, channels=args.channels, static=static)
+        check_folder_outputs(tmp, args.output, inputs=inputs, force=args.force, option="--output")
+    out.files[:] = [Path(args.output) / Path(p).relative_to(tmp) for p in out.files]
     for note in out.notes:
         print(f"note: {note}", file=sys.stderr)
     print(summary_text(out.summary))

@@ -21,11 +21,17 @@ A slow or absent logger never stalls reading or estimation: its records are drop
   FORMAT:serial:DEVICE:BAUD               a serial port
   (full grammar: docs/sinks.md)
 
-Stop with Ctrl-C or SIGTERM: every sink is flushed and the final counters printed (exit 130).
-Exit 3 when the port never opened within --link-timeout.
+Every byte read goes to the --capture folder first, through its own buffer and writer: if the
+disk is full or too slow the run says so at once, counts exactly what was lost and ends with
+exit 4. An existing --out file is refused unless --force; --out never replaces an input.
+
+Stop with Ctrl-C or SIGTERM: within about 1.5 s every sink is flushed and the final counters
+printed (exit 130); samples not estimated by then are in the capture (replay it). A second
+Ctrl-C abandons the capture's last writes too. Exit 3 when the port never opened within
+--link-timeout; exit 4 when raw bytes were lost; exit 1 when a logger file failed.
 
 example:
-  fieldvane run --port /dev/ttyUSB0 -c cal.json --out est.csv --out nmea:tcp:5600 --capture capture/
+  fieldvane run --port /dev/ttyUSB0 -c cal.json --out est.csv --out nmea:tcp:10110 --capture capture/
 """
 
 
@@ -42,35 +48,107 @@ def add_arguments(parser) -> None:
                         help="logger output (repeatable; see above)")
     parser.add_argument("--capture", metavar="DIR", help="folder for the raw capture (strongly advised)")
     parser.add_argument("--capture-file-mib", type=float, default=64.0,
-                        help="rotate capture files at this size (default 64 MiB)")
+                        help="rotate capture files at this size (default 64 MiB, at least 1)")
+    parser.add_argument("--capture-buffer-mib", type=float, default=64.0,
+                        help="memory that absorbs a slow disk before raw bytes are lost (default 64 MiB)")
+    parser.add_argument("--force", action="store_true",
+                        help="replace existing --out files (never an input)")
     parser.add_argument("--readouts", action="store_true",
                         help="add demodulated phases and amplitude ratios to the records")
     parser.add_argument("--log-interval", type=float, default=60.0,
-                        help="seconds between counter lines on stderr (default 60)")
+                        help="seconds between counter lines on stderr (default 60, at least 1)")
     parser.add_argument("--link-timeout", type=float, default=30.0,
                         help="give up (exit 3) if the port never opens within this many seconds")
 
 
+def _check_number(value, option: str, low: float, high: float = float("inf"), what: str = "") -> None:
+    """Raise InputError naming the option unless low <= value <= high and value is finite."""
+    import math
+
+    from fieldvane.io.errors import InputError
+
+    if not (isinstance(value, (int, float)) and math.isfinite(value) and low <= value <= high):
+        bound = f"at least {low:g}" if high == float("inf") else f"between {low:g} and {high:g}"
+        raise InputError(f"must be {what or 'a number'} {bound}, got {value!r}", column=option)
+
+
+def check_options(args) -> tuple[list[str] | None, list]:
+    """Return (columns, parsed --out specs) after checking every option; raise InputError (exit 2)."""
+    from fieldvane.io.csv_lines import CsvLayout
+    from fieldvane.io.errors import InputError
+    from fieldvane.io.sinks import parse_sink_spec
+
+    _check_number(args.baud, "--baud", 1, 100_000_000, "a baud rate")
+    _check_number(args.capture_file_mib, "--capture-file-mib", 1, 1 << 20, "a size in MiB")
+    _check_number(args.capture_buffer_mib, "--capture-buffer-mib", 1, 1 << 20, "a size in MiB")
+    _check_number(args.log_interval, "--log-interval", 1, 1e9, "a time in seconds")
+    _check_number(args.link_timeout, "--link-timeout", 0.1, 1e9, "a time in seconds")
+    columns = None
+    if args.columns is not None:
+        if args.input != "csv":
+            raise InputError("only for --input csv", column="--columns")
+        columns = [c.strip() for c in args.columns.split(",")]
+        CsvLayout(columns, source="--columns")
+    specs = [parse_sink_spec(o) for o in (args.out or ["csv:stdout"])]
+    return columns, specs
+
+
+def _check_outputs(args, specs) -> None:
+    """Apply the overwrite rule to --out files and --capture; with --force remove old --out files."""
+    from pathlib import Path
+
+    from fieldvane.io.errors import InputError
+    from fieldvane.io.outputs import check_output, same_path
+
+    cal = Path(args.calibration)
+    inputs = [cal, cal.with_suffix(".npz"), args.filter]
+    files = [s.path for s in specs if s.transport == "file"]
+    for i, path in enumerate(files):
+        if any(same_path(path, other) for other in files[:i]):
+            raise InputError("given twice", path, column="--out")
+        check_output(path, inputs=inputs, force=args.force, option="--out")
+    if args.capture is not None:
+        for item in inputs + files:
+            if item is not None and same_path(args.capture, item):
+                raise InputError("the capture folder would overwrite an input or an --out file",
+                                 args.capture, column="--capture")
+    for path in files:
+        if args.force and Path(path).is_file():
+            Path(path).unlink()
+
+
+def _remove_empty_outputs(specs, summary) -> None:
+    """Delete the empty --out files and record-less capture files of a run that never started."""
+    from pathlib import Path
+
+    for spec in specs:
+        if spec.transport == "file" and Path(spec.path).is_file() and Path(spec.path).stat().st_size == 0:
+            Path(spec.path).unlink()
+    if summary.counters.get("capture", {}).get("records", 1) == 0:
+        for f in summary.capture_files:
+            Path(f).unlink(missing_ok=True)
+
+
 def run(args) -> int:
-    """Run the live loop until Ctrl-C / SIGTERM; returns the exit code."""
+    """Run the live loop until Ctrl-C / SIGTERM; returns the exit code (see DESCRIPTION)."""
     from fieldvane.estimator.snapshot import SnapshotSolver
     from fieldvane.estimator.tracker import Tracker
     from fieldvane.io.calfile import load_calibration
-    from fieldvane.io.errors import EXIT_INTERRUPTED, EXIT_LINK
+    from fieldvane.io.errors import EXIT_CAPTURE_LOST, EXIT_FAILURE, EXIT_LINK
     from fieldvane.io.filterfile import read_filter_settings
     from fieldvane.io.live import run_live
     from fieldvane.io.table_cache import cache_dir_for, load_or_build_table
 
+    columns, specs = check_options(args)
     if args.capture is None:
         print("note: no --capture folder: raw bytes are not kept and this run cannot be replayed",
               file=sys.stderr)
     cal = load_calibration(args.calibration)
     settings = read_filter_settings(args.filter) if args.filter else None
+    _check_outputs(args, specs)
     table, _ = load_or_build_table(cal, cache_dir_for(args.calibration))
     solver = SnapshotSolver.from_calibration(cal, table)
     tracker = Tracker(cal, settings, solver.initiate, report_channels=args.readouts)
-    columns = [c.strip() for c in args.columns.split(",")] if args.columns else None
-    outputs = args.out or ["csv:stdout"]
     link_failed = threading.Event()
 
     def estimate(sample):
@@ -84,12 +162,23 @@ def run(args) -> int:
                     loop.stop()
         threading.Thread(target=check, name="link-watch", daemon=True).start()
 
-    summary = run_live(args.port, args.input, estimate, outputs, args.capture, columns=columns,
+    print("note: not a safety or navigation instrument by itself; check flags and sigma_deg",
+          file=sys.stderr)
+    summary = run_live(args.port, args.input, estimate, specs, args.capture, columns=columns,
                        baudrate=args.baud, log_interval_s=args.log_interval,
-                       max_capture_file_bytes=int(args.capture_file_mib * 2**20), on_ready=watch_link)
+                       max_capture_file_bytes=int(args.capture_file_mib * 2**20),
+                       capture_buffer_bytes=int(args.capture_buffer_mib * 2**20), on_ready=watch_link)
     c = tracker.counters
     print(f"fieldvane run: tracker {c}", file=sys.stderr)
     if link_failed.is_set():
+        _remove_empty_outputs(specs, summary)
         print(f"fieldvane run: failed: {args.port} never opened within {args.link_timeout:g} s", file=sys.stderr)
         return EXIT_LINK
-    return EXIT_INTERRUPTED if summary.interrupted else 0
+    code = summary.exit_code()
+    if code == EXIT_CAPTURE_LOST:
+        print(f"fieldvane run: raw bytes lost: {summary.capture_bytes_lost} bytes are not in the capture "
+              f"(exit {EXIT_CAPTURE_LOST}); see the CAPTURE PROBLEM lines above", file=sys.stderr)
+    elif code == EXIT_FAILURE:
+        print(f"fieldvane run: failed: logger output(s) {', '.join(summary.failed_sinks)} could not be "
+              "written", file=sys.stderr)
+    return code

@@ -8,11 +8,15 @@ The scenario (docs/scenarios.md) gives the sensor, the sample rate, the field's 
 sensor frame (or a calibration scan over the sphere) and events such as noise bursts, gain
 drift and dropouts. The recording has the columns t, f_a, f_b, x/y per channel, the applied
 field bx_nT, by_nT, bz_nT for scans, and the ground truth true_ux, true_uy, true_uz, true_b_nT.
+With a [lockin] table the outputs go through the lock-in's RC filter (they lag a moving field and
+neighbouring samples share noise) and the recording notes its settings in '# lockin_...' lines;
+a probe whose values are missing has empty x/y fields in those rows.
 SCENARIO may also name a built-in scenario: demo_scan or demo_track.
 
 example:
   fieldvane simulate examples/calibration_scan.toml -o scan.csv
   fieldvane simulate examples/turntable.toml -o turn.csv --seed 5 --duration 20
+  fieldvane simulate examples/lockin_filtered_turn.toml -o turn_lockin.csv
 """
 
 
@@ -20,6 +24,8 @@ def add_arguments(parser) -> None:
     """Register simulate's options."""
     parser.add_argument("scenario", help="scenario TOML file (or a built-in name: demo_scan, demo_track)")
     parser.add_argument("-o", "--output", required=True, help="recording CSV to write")
+    parser.add_argument("--force", action="store_true",
+                        help="replace an existing output file (never the scenario itself)")
     parser.add_argument("--seed", type=int, default=None, help="noise seed (overrides [run] seed)")
     parser.add_argument("--duration", type=float, default=None, metavar="S",
                         help="run length in seconds (overrides [run] duration_s; scans can only be shortened)")
@@ -56,29 +62,72 @@ def load_or_fail(name: str, seed=None, duration=None):
         raise InputError(f"{option}: {exc.reason}") from None
 
 
+def write_run_recording(path, sim, metadata: dict[str, str]) -> None:
+    """Write a SimulatedRun as a recording CSV; a missing probe's x/y fields are left empty.
+
+    Without missing probes this is io.recording.write_recording; with them the rows are
+    formatted the same way ('%.10g', NaN rows as 'nan') except for the empty fields.
+    """
+    import numpy as np
+
+    from fieldvane.io.recording import write_recording
+
+    columns = sim.recording_columns()
+    if sim.missing is None:
+        write_recording(path, columns, metadata)
+        return
+    names = list(columns)
+    text = np.char.mod("%.10g", np.column_stack([np.asarray(columns[n], float) for n in names]))
+    for k, ch in enumerate(sim.channels):
+        for col in (f"x_{ch}", f"y_{ch}"):
+            text[sim.missing[:, k], names.index(col)] = ""
+    with open(path, "w", encoding="utf-8", newline="") as fh:
+        fh.writelines(f"# {k}: {v}\n" for k, v in metadata.items())
+        fh.write(",".join(names) + "\n")
+        fh.writelines(",".join(row) + "\n" for row in text)
+
+
 def run(args) -> int:
     """Simulate the scenario, write the recording and print a one-line summary; returns 0."""
     import numpy as np
 
     from fieldvane.firmware_sim.scenario import simulate
     from fieldvane.io.errors import JobError
-    from fieldvane.io.recording import write_recording
 
+    from fieldvane.io.outputs import atomic_file, check_output
+
+    check_output(args.output, inputs=[resolve_scenario_path(args.scenario)], force=args.force,
+                 option="--output")
     scenario = load_or_fail(args.scenario, args.seed, args.duration)
     sim = simulate(scenario)
     metadata = sim.metadata()
     metadata["scenario_file"] = resolve_scenario_path(args.scenario)
     metadata["duration_s"] = f"{sim.duration_s:g}"
     try:
-        write_recording(args.output, sim.recording_columns(), metadata)
+        with atomic_file(args.output) as tmp:
+            write_run_recording(tmp, sim, metadata)
     except OSError as exc:
         raise JobError(f"cannot write {args.output}: {exc.strerror}") from None
-    missing = sim.n_samples - len(sim)
-    nan_rows = int(np.count_nonzero(~np.isfinite(sim.z).all(axis=1)))
+    recorded = np.ones(sim.n_samples, bool)
+    if scenario.kind == "scan":                       # points' settling samples are not recorded
+        recorded = scenario.scan.recorded()[:sim.n_samples]
+    present = np.zeros(sim.n_samples, bool)
+    present[sim.seq] = True
+    missing = int(np.count_nonzero(recorded & ~present))
+    gone = np.zeros(sim.z.shape, bool) if sim.missing is None else sim.missing
+    nan_rows = int(np.count_nonzero((~np.isfinite(sim.z) & ~gone).any(axis=1)))
     b = sim.b_nT
     extra = ""
     if missing or nan_rows:
         extra = f", {missing} rows missing, {nan_rows} NaN rows"
+    if not recorded.all():
+        extra += f", {int(np.count_nonzero(~recorded))} samples left out while the lock-in settled"
+    if gone.any():
+        extra += f", a probe's values missing in {int(np.count_nonzero(gone.any(axis=1)))} rows"
+    if sim.lockin is not None:
+        lk = sim.lockin
+        extra += (f", lock-in {lk.order} x {lk.time_constant_s * 1e3:g} ms "
+                  f"(noise bandwidth {lk.noise_bandwidth_hz:.3g} Hz)")
     print(f"wrote {args.output}: {len(sim)} rows ({sim.duration_s:g} s at {sim.sample_rate_hz:g} Hz"
           f"{extra}), {len(sim.channels)} channels, |B| {b.min():.0f}..{b.max():.0f} nT, "
           f"{scenario.kind} scenario '{scenario.name}', seed {scenario.seed}")

@@ -1,0 +1,424 @@
+"""Fit of the physics part (estimator/physics.py) by variable projection, with parameter covariance.
+
+The per-knot coefficients (a, b, l, o of every channel) enter linearly: for given axes, pump
+efficiencies and detunings they are one least-squares solve per channel. Only the nonlinear
+parameters are iterated: two tangent-plane angles per beam, the pump efficiencies (2 x 2) and
+the detuning law (2 x 2 pairs t_0, t_2). Levenberg-Marquardt on the projected residual with the Jacobian of
+Kaufman (BIT 15, 1975; Golub and Pereyra, Inverse Problems 19, 2003), re-centred on the sphere
+after every step. Its Gauss-Newton matrix is the Fisher information of the nonlinear parameters
+with the linear ones eliminated, so its inverse scaled by the whitened residual is their covariance.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+
+import numpy as np
+from scipy.stats import chi2
+
+from fieldvane.estimator.physics import (DETUNING_REFERENCE_NT, LEAK_REFERENCE_NT, PhysicsParameters,
+                                         channel_indices, detuning_from_law)
+from fieldvane.estimator.sphere import exp_map, tangent_basis
+
+N_LINEAR_TERMS = 4        # a (c), b (s), l (c'), o (1) per channel and knot; plus one m (s') per channel
+LEAK_TEST_ALPHA = 1e-3    # significance level for keeping the s' leak term
+RANK_TOLERANCE = 1e-10    # relative size of a QR diagonal below which the design is rank-deficient
+RANK_MESSAGE = ("the scan cannot separate the channel terms (rank-deficient design); "
+                "it needs more directions at every magnitude")
+
+
+class PhysicsFitError(ValueError):
+    """The scan cannot determine the physics part (rank-deficient design)."""
+
+
+@dataclass
+class PhysicsFit:
+    """Result of fit_physics: parameters, covariance of the nonlinear ones, whitened residual (N, C)."""
+
+    params: PhysicsParameters
+    covariance: np.ndarray        # (n_theta, n_theta): beams' tangent angles (rad), efficiencies, detunings
+    beam_frames: list             # per beam (e1, e2): the tangent basis of the covariance's angles
+    residual: np.ndarray          # (N, C) complex, V
+    noise_std: np.ndarray         # (C,) per-component residual std used for whitening, V
+    iterations: int
+    inflation: float              # covariance factor for correlated residuals (AR(1), >= 1)
+
+    def beam_covariance(self, beam: int) -> np.ndarray:
+        """Return the 2x2 covariance (rad^2) of beam `beam` (pumps a, b, then probes) on beam_frames[beam]."""
+        return self.covariance[2 * beam:2 * beam + 2, 2 * beam:2 * beam + 2]
+
+    def direction_std_deg(self) -> np.ndarray:
+        """Return each beam's 1-sigma axis angle sqrt(trace of its 2x2 covariance), degrees (pumps, probes)."""
+        n_beams = 2 + self.params.probe_axes.shape[0]
+        return np.array([np.degrees(np.sqrt(max(np.trace(self.beam_covariance(b)), 0.0)))
+                         for b in range(n_beams)])
+
+    def parameter_std(self) -> np.ndarray:
+        """Return the 1-sigma of every nonlinear parameter (n_theta,), in their own units."""
+        return np.sqrt(np.maximum(np.diag(self.covariance), 0.0))
+
+
+class _DenseLinear:
+    """Least squares on one channel's full design (N, m): QR, coefficients and the residual projector."""
+
+    def __init__(self, design: np.ndarray):
+        self.q, r = np.linalg.qr(design)
+        diag = np.abs(np.diag(r))
+        if diag.min() <= RANK_TOLERANCE * max(diag.max(), 1e-300):
+            raise PhysicsFitError(RANK_MESSAGE)
+        self.r = r
+
+    def coefficients(self, y: np.ndarray) -> np.ndarray:
+        return np.linalg.solve(self.r, self.q.conj().T @ y)
+
+    def project(self, d: np.ndarray) -> np.ndarray:
+        """Return d (N,) or (N, p) minus its least-squares fit: the part orthogonal to the design."""
+        return d - self.q @ (self.q.conj().T @ d)
+
+
+class _BlockLinear:
+    """The same for a stepped scan: one (n_k, 4) block per magnitude level plus an optional global column.
+
+    Small per-level factorizations keep every product small (and single-threaded in BLAS), and
+    cost K times less than one factorization of the whole (N, 4K) design.
+    """
+
+    def __init__(self, blocks: list, terms: np.ndarray, column: np.ndarray | None):
+        self.blocks = blocks
+        self.factors = []
+        for idx in blocks:
+            q, r = np.linalg.qr(terms[idx])
+            diag = np.abs(np.diag(r))
+            if diag.min() <= RANK_TOLERANCE * max(diag.max(), 1e-300):
+                raise PhysicsFitError(RANK_MESSAGE)
+            self.factors.append((q, r))
+        self.column = column
+        if column is not None:
+            g = column.astype(complex)
+            for idx, (q, _) in zip(blocks, self.factors):
+                g[idx] = g[idx] - q @ (q.conj().T @ g[idx])
+            self.g_norm = float(np.linalg.norm(g))
+            if self.g_norm <= RANK_TOLERANCE * max(float(np.linalg.norm(column)), 1e-300):
+                raise PhysicsFitError(RANK_MESSAGE)
+            self.q_g = g / self.g_norm
+
+    def coefficients(self, y: np.ndarray) -> np.ndarray:
+        k = len(self.blocks)
+        out = np.zeros(4 * k + (1 if self.column is not None else 0), complex)
+        rest = y
+        if self.column is not None:
+            x_g = (self.q_g.conj() @ y) / self.g_norm
+            out[-1] = x_g
+            rest = y - self.column * x_g
+        for i, (idx, (q, r)) in enumerate(zip(self.blocks, self.factors)):
+            out[i:4 * k:k] = np.linalg.solve(r, q.conj().T @ rest[idx])
+        return out
+
+    def project(self, d: np.ndarray) -> np.ndarray:
+        out = np.array(d, dtype=complex, copy=True)
+        for idx, (q, _) in zip(self.blocks, self.factors):
+            out[idx] -= q @ (q.conj().T @ out[idx])
+        if self.column is not None:
+            out -= np.multiply.outer(self.q_g, self.q_g.conj() @ out)
+        return out
+
+
+def _level_blocks(s_basis: np.ndarray) -> list | None:
+    """Return each knot's row indices when every row sits exactly at a knot (a stepped scan), else None."""
+    own = np.argmax(s_basis, axis=1)
+    one_hot = np.zeros_like(s_basis)
+    one_hot[np.arange(s_basis.shape[0]), own] = 1.0
+    if not np.allclose(s_basis, one_hot, atol=1e-9):
+        return None
+    return [np.flatnonzero(own == k) for k in range(s_basis.shape[1])]
+
+
+class _Problem:
+    """Data and fixed structure of one fit: directions, magnitude weights, values, channel layout."""
+
+    def __init__(self, u, s_basis, z, channels, weights, fit_efficiency, fit_detuning, knots_nT, leak_quadrature):
+        self.u, self.s, self.z = u, s_basis, z
+        self.leak_quadrature = bool(leak_quadrature)
+        self.knots_nT = np.asarray(knots_nT, float)
+        self.inv_b = s_basis @ (LEAK_REFERENCE_NT / self.knots_nT)   # (N,) B_1/B interpolated like the table
+        self.blocks = _level_blocks(s_basis)
+        self.own_knot = np.argmax(s_basis, axis=1)
+        self.channels = tuple(channels)
+        self.pj, self.qi = channel_indices(self.channels)
+        self.n_probes = int(self.qi.max()) + 1
+        self.k = s_basis.shape[1]
+        self.w = np.asarray(weights, float)         # (C,) 1/std
+        self.fit_efficiency, self.fit_detuning = fit_efficiency, fit_detuning
+        self.n_beams = 2 + self.n_probes
+        self.n_theta = 2 * self.n_beams + (4 if fit_efficiency else 0) + (8 if fit_detuning else 0)
+        self.law_powers = np.stack([np.ones(self.k), (self.knots_nT / DETUNING_REFERENCE_NT) ** 2])   # (2, K)
+
+    def solve(self, phys: PhysicsParameters):
+        """Solve the linear coefficients in place; return ((geo, eta, R), solver per channel, residual (N,C))."""
+        geo = phys.geometry(self.u)
+        eta = phys.efficiency_factor(geo["pu"])
+        rot = phys.resonance_factor(geo["pu"])
+        k, n = self.k, self.u.shape[0]
+        solvers, resid = [], np.empty_like(self.z)
+        for c in range(len(self.channels)):
+            column = eta[:, c] * self.inv_b * geo["s_leak"][:, c] if self.leak_quadrature else None
+            if self.blocks is not None:
+                r_own = rot[np.arange(n), c, self.own_knot]
+                terms = eta[:, c, None] * np.column_stack([r_own * geo["c"][:, c], r_own * geo["s"][:, c],
+                                                           geo["c_leak"][:, c], np.ones(n)])
+                lin = _BlockLinear(self.blocks, terms, column)
+            else:
+                se = self.s * eta[:, c, None]                                   # (N, K)
+                cols = [se * rot[:, c, :] * geo["c"][:, c, None], se * rot[:, c, :] * geo["s"][:, c, None],
+                        se * geo["c_leak"][:, c, None], se.astype(complex)]
+                if column is not None:
+                    cols.append(column[:, None].astype(complex))
+                lin = _DenseLinear(np.concatenate(cols, axis=1))
+            coef = lin.coefficients(self.z[:, c])
+            phys.gains[c], phys.quadrature[c] = coef[:k], coef[k:2 * k]
+            phys.leak[c], phys.offset[c] = coef[2 * k:3 * k], coef[3 * k:4 * k]
+            phys.leak_quadrature[c] = coef[4 * k] if self.leak_quadrature else 0.0
+            resid[:, c] = lin.project(self.z[:, c])
+            solvers.append(lin)
+        return (geo, eta, rot), solvers, resid
+
+    def cost(self, resid) -> float:
+        return float(np.sum(np.abs(resid * self.w) ** 2))
+
+    def jacobian(self, phys: PhysicsParameters, terms, qs, frames) -> np.ndarray:
+        """Return the whitened projected Jacobian (2*N*C, n_theta) of the residual (Kaufman's form)."""
+        geo, eta, rot = terms
+        n, c_n, k = self.u.shape[0], len(self.channels), self.k
+        u, s = self.u, self.s
+        pj, qi = self.pj, self.qi
+        pu, qu = geo["pu"], geo["qu"]
+        x = phys.detuning_terms(pu)[:, pj, :]                               # (N, C, K)
+        hand = phys.handedness[None, :, None]
+        own = phys.gains[None] * geo["c"][:, :, None] + phys.quadrature[None] * geo["s"][:, :, None]
+        inv_b = LEAK_REFERENCE_NT / phys.knots_nT
+        sleak = phys.leak_quadrature[:, None] * inv_b[None, :]                # (C, K)
+        inner = (rot * own + phys.leak[None] * geo["c_leak"][:, :, None] + sleak[None] * geo["s_leak"][:, :, None]
+                 + phys.offset[None])
+        drdx = -1j * hand / (1.0 + 1j * hand * x) ** 2                       # dR/dx (N, C, K)
+        longi = phys.longitudinal(pu)
+        d = np.zeros((c_n, n, self.n_theta), complex)                        # d(prediction)/d(theta)
+        col = 0
+        for beam in range(self.n_beams):
+            for e in frames[beam]:
+                ue = u @ e
+                for ch in range(c_n):
+                    j, i = pj[ch], qi[ch]
+                    if beam < 2:                      # pump `beam` turns along e
+                        q = phys.probe_axes[i]
+                        dlong = (1.0 + 3.0 * phys.efficiency[beam, beam] * pu[:, beam] ** 2) * ue
+                        dr = drdx[:, ch, :] * (dlong[:, None] * phys.detuning[j, beam][None, :])
+                        d_eta = 2.0 * phys.efficiency[j, beam] * pu[:, beam] * ue
+                        if j == beam:
+                            dc = e @ q - ue * qu[:, i]
+                            ds = u @ np.cross(e, q)
+                            d_inner = dr * own[:, ch, :] + rot[:, ch, :] * (
+                                phys.gains[ch] * dc[:, None] + phys.quadrature[ch] * ds[:, None])
+                        else:
+                            dcx = e @ q - ue * qu[:, i]
+                            dsx = u @ np.cross(e, q)
+                            d_inner = dr * own[:, ch, :] + phys.leak[ch] * dcx[:, None] + sleak[ch] * dsx[:, None]
+                        term = eta[:, ch, None] * d_inner + d_eta[:, None] * inner[:, ch, :]
+                    elif i == beam - 2:               # this channel's probe turns along e
+                        p_own, p_oth = phys.pump_axes[j], phys.pump_axes[1 - j]
+                        dc = p_own @ e - pu[:, j] * ue
+                        ds = u @ np.cross(p_own, e)
+                        dcx = p_oth @ e - pu[:, 1 - j] * ue
+                        dsx = u @ np.cross(p_oth, e)
+                        term = eta[:, ch, None] * (
+                            rot[:, ch, :] * (phys.gains[ch] * dc[:, None] + phys.quadrature[ch] * ds[:, None])
+                            + phys.leak[ch] * dcx[:, None] + sleak[ch] * dsx[:, None])
+                    else:
+                        continue
+                    d[ch, :, col] = np.sum(s * term, axis=1)
+                col += 1
+        if self.fit_efficiency:
+            for j in range(2):
+                for m in range(2):
+                    for ch in np.flatnonzero(pj == j):
+                        d[ch, :, col] = np.sum(s * (pu[:, m] ** 2)[:, None] * inner[:, ch, :], axis=1)
+                    if j == m:   # the pump's own efficiency also scales its longitudinal drive
+                        for ch in range(c_n):
+                            dx = phys.detuning[pj[ch], m][None, :] * (pu[:, m] ** 3)[:, None]
+                            d[ch, :, col] += np.sum(s * eta[:, ch, None] * drdx[:, ch, :] * dx * own[:, ch, :], axis=1)
+                    col += 1
+        if self.fit_detuning:
+            for j in range(2):
+                for m in range(2):
+                    for r in range(2):
+                        weight = s * self.law_powers[r][None, :]                     # (N, K)
+                        for ch in np.flatnonzero(pj == j):
+                            d[ch, :, col] = np.sum(weight * eta[:, ch, None] * drdx[:, ch, :] * longi[:, m, None]
+                                                   * own[:, ch, :], axis=1)
+                        col += 1
+        jac = np.empty((2, n, c_n, self.n_theta))
+        for ch in range(c_n):
+            proj = qs[ch].project(d[ch])
+            proj *= -self.w[ch]
+            jac[0, :, ch], jac[1, :, ch] = proj.real, proj.imag
+        return jac.reshape(-1, self.n_theta)
+
+    def residual_vector(self, resid) -> np.ndarray:
+        w = resid * self.w
+        return np.stack([w.real, w.imag]).reshape(-1)
+
+    def step(self, phys: PhysicsParameters, frames, delta) -> PhysicsParameters:
+        """Return new parameters moved by delta (n_theta,): beams along their tangent frames, the rest added."""
+        out = PhysicsParameters(phys.pump_axes.copy(), phys.probe_axes.copy(), phys.gains.copy(),
+                                phys.handedness.copy(), phys.channels, phys.quadrature.copy(),
+                                phys.leak.copy(), phys.offset.copy(), phys.efficiency.copy(),
+                                phys.detuning.copy(), phys.leak_quadrature.copy(), phys.knots_nT.copy(),
+                                phys.detuning_law.copy())
+        for beam in range(self.n_beams):
+            e1, e2 = frames[beam]
+            v = delta[2 * beam] * e1 + delta[2 * beam + 1] * e2
+            if beam < 2:
+                out.pump_axes[beam] = exp_map(out.pump_axes[beam], v)
+            else:
+                out.probe_axes[beam - 2] = exp_map(out.probe_axes[beam - 2], v)
+        col = 2 * self.n_beams
+        if self.fit_efficiency:
+            out.efficiency = out.efficiency + delta[col:col + 4].reshape(2, 2)
+            col += 4
+        if self.fit_detuning:
+            out.detuning_law = out.detuning_law + delta[col:col + 8].reshape(2, 2, 2)
+            out.detuning = detuning_from_law(out.detuning_law, self.knots_nT)
+        return out
+
+    def frames(self, phys: PhysicsParameters) -> list:
+        beams = list(phys.pump_axes) + list(phys.probe_axes)
+        return [tangent_basis(b) for b in beams]
+
+
+def _handedness_from(phys: PhysicsParameters) -> np.ndarray:
+    """Return sigma per channel from the fitted a and b: b ~ -i sigma a, so sigma = -sign Im(b conj(a))."""
+    im = np.imag(np.sum(phys.quadrature * np.conj(phys.gains), axis=1))
+    return np.where(im > 0, -1.0, 1.0)
+
+
+def _lag1_inflation(resid_w: np.ndarray) -> float:
+    """Return (1 + rho) / (1 - rho) for the lag-1 correlation rho of whitened residuals in row order, >= 1.
+
+    An AR(1) sequence's mean has variance (1 + rho) / (1 - rho) times that of white noise (common
+    practice for effective sample size): repeated rows of a dwelling scan and a lock-in's output
+    filter correlate neighbouring rows.
+    """
+    a = np.concatenate([resid_w.real, resid_w.imag], axis=1)
+    if a.shape[0] < 3:
+        return 1.0
+    num = np.sum(a[1:] * a[:-1])
+    den = np.sum(a * a)
+    rho = float(num / den) if den > 0 else 0.0
+    # Below 3 standard errors of zero the correlation is indistinguishable from white noise.
+    if rho < 3.0 / np.sqrt(a.size):
+        return 1.0
+    rho = min(rho, 0.95)
+    return (1.0 + rho) / (1.0 - rho)
+
+
+def fit_physics(u: np.ndarray, s_basis: np.ndarray, knots_nT: np.ndarray, z: np.ndarray, channels,
+                pump0: np.ndarray, probe0: np.ndarray, noise_std: np.ndarray, fit_efficiency: bool = True,
+                fit_detuning: bool = True, max_iterations: int = 60) -> PhysicsFit:
+    """Return the PhysicsFit of rows u (N,3), magnitude weights s_basis (N,K) at knots_nT (K,), values z (N,C) V.
+
+    pump0 (2,3), probe0 (P,3): starting axes (within a few degrees); noise_std (C,): starting
+    whitening std per channel, V (re-estimated from the residual before the final pass). The s'
+    leak term is kept only when the knots span a factor of at least 2 in |B| (else it cannot be
+    told from a pump-axis turn) and it lowers the whitened residual by more than the chi-square
+    quantile at LEAK_TEST_ALPHA (2C degrees of freedom, scipy.stats.chi2).
+    """
+    c_n, k = z.shape[1], s_basis.shape[1]
+    knots_nT = np.asarray(knots_nT, float)
+    phys = PhysicsParameters(np.array(pump0, float), np.array(probe0, float), np.zeros((c_n, k), complex),
+                             np.ones(c_n), channels, np.zeros((c_n, k), complex), knots_nT=knots_nT)
+    weights = 1.0 / np.asarray(noise_std, float)
+    prob = _Problem(u, s_basis, z, channels, weights, fit_efficiency, fit_detuning, knots_nT, False)
+    prob.solve(phys)
+    phys.handedness = _handedness_from(phys)
+    phys, iterations = _fit_reweighted(prob, phys, max_iterations)
+    if k >= 2 and knots_nT.max() >= 2.0 * knots_nT.min():
+        with_q = _Problem(u, s_basis, z, channels, prob.w, fit_efficiency, fit_detuning, knots_nT, True)
+        start = with_q.step(phys, with_q.frames(phys), np.zeros(with_q.n_theta))
+        start.handedness = phys.handedness
+        trial, it = _levenberg_marquardt(with_q, start, max_iterations)
+        iterations += it
+        gain = prob.cost(prob.solve(phys)[2]) - with_q.cost(with_q.solve(trial)[2])
+        if gain > chi2.isf(LEAK_TEST_ALPHA, 2 * c_n):
+            prob, phys = with_q, trial
+            phys, it = _fit_reweighted(prob, phys, max_iterations, rounds=1)
+            iterations += it
+    terms, qs, resid = prob.solve(phys)
+    frames = prob.frames(phys)
+    jac = prob.jacobian(phys, terms, qs, frames)
+    cov = _inverse_psd(jac.T @ jac)
+    inflation = _lag1_inflation(resid * prob.w)
+    return PhysicsFit(phys, cov * inflation, frames, resid, 1.0 / prob.w, iterations, inflation)
+
+
+def _fit_reweighted(prob: _Problem, phys: PhysicsParameters, max_iterations: int, rounds: int = 2):
+    """Return (parameters, iterations): LM, then whitening from the residual, `rounds` times (weights set in prob)."""
+    c_n, k = prob.z.shape[1], prob.k
+    iterations = 0
+    for _ in range(rounds):
+        phys, it = _levenberg_marquardt(prob, phys, max_iterations)
+        iterations += it
+        _, _, resid = prob.solve(phys)
+        n_lin = N_LINEAR_TERMS * k + (1 if prob.leak_quadrature else 0)
+        dof = 2 * (prob.z.shape[0] - n_lin) - prob.n_theta / c_n
+        prob.w = 1.0 / np.maximum(np.sqrt(np.sum(np.abs(resid) ** 2, axis=0) / max(dof, 1.0)), 1e-300)
+    return phys, iterations
+
+
+def _inverse_psd(info: np.ndarray) -> np.ndarray:
+    """Return the inverse of a symmetric positive semi-definite matrix (pseudo-inverse on its null space)."""
+    scale = np.sqrt(np.maximum(np.diag(info), 1e-300))
+    normed = info / np.outer(scale, scale)
+    inv = np.linalg.pinv(normed, rcond=1e-12, hermitian=True)
+    return inv / np.outer(scale, scale)
+
+
+def _levenberg_marquardt(prob: _Problem, phys: PhysicsParameters, max_iterations: int):
+    """Return (parameters, iterations) minimizing the projected whitened residual from `phys`."""
+    terms, qs, resid = prob.solve(phys)
+    cost = prob.cost(resid)
+    lam = 1e-3
+    it = 0
+    for it in range(1, max_iterations + 1):
+        frames = prob.frames(phys)
+        jac = prob.jacobian(phys, terms, qs, frames)
+        r = prob.residual_vector(resid)
+        a = jac.T @ jac
+        g = jac.T @ r
+        diag = np.maximum(np.diag(a), 1e-12 * max(np.max(np.diag(a)), 1e-300))
+        improved = False
+        for _ in range(12):
+            try:
+                delta = np.linalg.solve(a + lam * np.diag(diag), -g)
+            except np.linalg.LinAlgError:
+                lam *= 10.0
+                continue
+            trial = prob.step(phys, frames, delta)
+            trial.handedness = phys.handedness
+            try:
+                t_terms, t_qs, t_resid = prob.solve(trial)
+            except PhysicsFitError:
+                lam *= 10.0
+                continue
+            t_cost = prob.cost(t_resid)
+            if t_cost < cost:
+                predicted = -(g @ delta) - 0.5 * delta @ (a @ delta)
+                phys, terms, qs, resid = trial, t_terms, t_qs, t_resid
+                done = (cost - t_cost) <= 1e-10 * cost or (predicted <= 1e-12 * cost)
+                cost = t_cost
+                lam = max(lam / 5.0, 1e-9)
+                improved = True
+                break
+            lam *= 10.0
+        if not improved or done:
+            break
+    prob.solve(phys)
+    return phys, it

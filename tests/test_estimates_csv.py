@@ -1,0 +1,269 @@
+"""Estimates CSV: compiled float text equal to Python's repr, block writer byte-identical to the CSV
+sink, exact round trip through the reader, clear errors, nothing left behind on failure."""
+
+import math
+import os
+
+import numpy as np
+import pytest
+from hypothesis import given, settings
+from hypothesis import strategies as st
+
+from fieldvane.estimator.estimate import ESTIMATE_COLUMNS, Estimate
+from fieldvane.io.errors import InputError, JobError
+from fieldvane.io.estimates_csv import EstimatesWriter, estimate_columns, read_estimates
+from fieldvane.io.float_text import float_texts, format_rows
+from fieldvane.io.sinks import make_formatter
+
+# ---------------------------------------------------------------- float text against repr()
+# Reference: CPython's repr(float), the shortest string that reads back to the same double
+# (David Gay's dtoa, mode 0), with CPython's switch to exponent form below 1e-4 and from 1e16.
+
+
+def _assert_same_as_repr(values):
+    values = np.asarray(values, np.float64)
+    got = float_texts(values)
+    want = [repr(v) for v in values.tolist()]
+    bad = [(g, w) for g, w in zip(got, want) if g != w]
+    assert not bad, bad[:10]
+    assert len(got) == len(want)
+
+
+def test_random_doubles_match_repr():
+    rng = np.random.default_rng(20240501)
+    bits = rng.integers(0, 2 ** 64, size=300_000, dtype=np.uint64, endpoint=False)
+    _assert_same_as_repr(bits.view(np.float64))                  # every exponent, subnormals, NaN payloads
+    _assert_same_as_repr(rng.normal(size=100_000) * 10.0 ** rng.integers(-8, 9, 100_000))
+    _assert_same_as_repr(np.round(rng.uniform(-1e4, 1e4, 50_000), 3))   # short decimals
+
+
+def test_edge_doubles_match_repr():
+    specials = [0.0, -0.0, math.nan, -math.nan, math.inf, -math.inf, 5e-324, -5e-324,
+                2.2250738585072014e-308, 2.225073858507201e-308, 1.7976931348623157e308,
+                1e16, 9999999999999998.0, 1e15, 123456789012345.6, 1e-4, 9.999999999999999e-05, 1e-5,
+                0.1, 0.2, 0.3, 1 / 3, 2 / 3, 0.5, 1.0, 100.0, 1e22, 1e23, 2.0 ** 53, 2.0 ** 53 + 2,
+                1.25e17, 5e-310, 4.35, 0.005, 14.995]
+    _assert_same_as_repr(specials)
+    _assert_same_as_repr(np.ldexp(1.0, np.arange(-1074, 1024)))          # exact powers of two
+    _assert_same_as_repr([float(f"1e{k}") for k in range(-323, 309)])    # powers of ten
+    _assert_same_as_repr(np.nextafter(np.ldexp(1.0, np.arange(-1000, 1000, 7)), 0))
+    _assert_same_as_repr(np.arange(-5000, 5000) * 0.005)                 # sample times at 200 Hz
+
+
+@settings(max_examples=300, deadline=None)
+@given(st.lists(st.floats(allow_nan=True, allow_infinity=True, width=64), min_size=1, max_size=50))
+def test_any_double_matches_repr(values):
+    _assert_same_as_repr(values)
+
+
+def test_ints_and_empty_fields():
+    ints = np.array([0, 1, -1, 9, 10, 99, 100, -100, 2 ** 62, np.iinfo(np.int64).max, np.iinfo(np.int64).min])
+    text = format_rows([ints, None, np.full(ints.size, 0.25)]).decode()
+    assert text == "".join(f"{i},,0.25\n" for i in ints.tolist())        # reference: Python str(int)
+
+
+# ---------------------------------------------------------------- writer: bytes equal the CSV sink
+
+def _random_columns(n, seed, extras=("nis", "nis_dof", "b_a_nT", "phase_1a", "noise_scale")):
+    rng = np.random.default_rng(seed)
+    u = rng.normal(size=(n, 3))
+    u /= np.linalg.norm(u, axis=1)[:, None]
+    u[rng.random(n) < 0.05] = np.nan                      # rows without a direction
+    b = rng.uniform(1e3, 7e4, n)
+    b[rng.random(n) < 0.02] = np.nan
+    ex = {"nis": rng.chisquare(4, n), "nis_dof": rng.integers(0, 9, n), "b_a_nT": b * (1 + 1e-6 * rng.normal(size=n)),
+          "phase_1a": rng.uniform(-180, 180, n), "noise_scale": np.where(rng.random(n) < 0.1, np.inf, 1.0)}
+    ex["nis"][::17] = -0.0
+    ex["nis"][::29] = 5e-324
+    return estimate_columns(np.arange(n) * 0.005 + 1234.5, u, b, rng.uniform(0.001, 5, n),
+                            rng.integers(0, 2 ** 16, n), {k: ex[k] for k in extras})
+
+
+def _sink_text(cols, extras=None):
+    """What the CSV logger sink writes for the same records (header and one line per record)."""
+    fmt = make_formatter("csv", extras)
+    names = list(cols)
+    records = [{k: cols[k][i] for k in names} for i in range(len(cols["t"]))]
+    fmt.bind(records[0])
+    return fmt.header() + "".join(fmt.format(r) for r in records)
+
+
+def test_block_writer_bytes_equal_the_csv_sink(tmp_path):
+    cols = _random_columns(20_000, seed=3)
+    p = tmp_path / "block.csv"
+    with EstimatesWriter(p) as w:
+        w.write_columns({k: v[:7] for k, v in cols.items()})
+        w.write_columns({k: v[7:] for k, v in cols.items()})          # crosses the 8192-row blocks
+    assert p.read_text() == _sink_text(cols)
+    assert w.rows == 20_000
+
+
+def test_block_writer_equals_row_writer_for_estimates(tmp_path):
+    rng = np.random.default_rng(5)
+    ests = []
+    for i in range(500):
+        u = rng.normal(size=3)
+        ests.append(Estimate(i * 0.01, u / np.linalg.norm(u), float(rng.uniform(1e3, 6e4)),
+                             float(rng.uniform(0, 2)), int(rng.integers(0, 1 << 14)),
+                             {"nis": float(rng.chisquare(3)), "nis_dof": int(rng.integers(0, 9)),
+                              "bound_deg": float("nan") if i % 50 == 0 else float(rng.uniform(0, 1))}))
+    a, b = tmp_path / "rows.csv", tmp_path / "block.csv"
+    with EstimatesWriter(a, metadata={"source": "test"}) as w:
+        for e in ests:
+            w.write(e)
+    with EstimatesWriter(b, metadata={"source": "test"}) as w:
+        w.write_estimates(ests[:100])
+        w.write_estimates(ests[100:])
+    assert a.read_bytes() == b.read_bytes()
+    assert a.read_text().startswith("# source: test\n" + ",".join(ESTIMATE_COLUMNS) + ",bound_deg,nis,nis_dof\n")
+
+
+def test_unusual_values_take_the_record_path_and_still_match(tmp_path):
+    n = 40
+    cols = _random_columns(n, seed=9, extras=("nis",))
+    cols["label"] = ["a,b" if i % 3 else "plain" for i in range(n)]        # text: quoted by the sink
+    cols["mixed"] = [1 if i % 2 else 0.5 for i in range(n)]                # int and float in one column
+    cols["small"] = np.arange(n, dtype=np.float32) / 3                      # float32 widened as the sink does
+    cols["ok"] = np.arange(n) % 2 == 0                                      # bool written 1/0
+    p = tmp_path / "odd.csv"
+    with EstimatesWriter(p) as w:
+        w.write_columns(cols)
+    assert p.read_text() == _sink_text(cols)
+
+
+def test_explicit_extras_absent_columns_are_empty(tmp_path):
+    cols = _random_columns(30, seed=11, extras=("nis",))
+    p = tmp_path / "x.csv"
+    with EstimatesWriter(p, extras=["nis", "not_there"]) as w:
+        w.write_columns(cols)
+    assert p.read_text() == _sink_text(cols, extras=["nis", "not_there"])
+    back = read_estimates(p)
+    assert np.isnan(back["not_there"]).all()                # an empty field reads as NaN
+
+
+def test_round_trip_is_exact(tmp_path):
+    cols = _random_columns(70_000, seed=1)                 # more than one read chunk
+    p = tmp_path / "e.csv"
+    with EstimatesWriter(p) as w:
+        w.write_columns(cols)
+    back = read_estimates(p)
+    assert list(back) == list(ESTIMATE_COLUMNS) + sorted(k for k in cols if k not in ESTIMATE_COLUMNS)
+    assert back["flags"].dtype == np.int64
+    for k, v in cols.items():
+        v = np.asarray(v)
+        if v.dtype.kind == "f":         # bit for bit: -0.0, 5e-324, inf and NaN positions included
+            np.testing.assert_array_equal(back[k].view(np.uint64), v.view(np.uint64), err_msg=k)
+        else:
+            np.testing.assert_array_equal(back[k], v, err_msg=k)
+
+
+def test_empty_file_has_a_header_and_reads_as_no_rows(tmp_path):
+    p = tmp_path / "none.csv"
+    with EstimatesWriter(p):
+        pass
+    assert p.read_text() == ",".join(ESTIMATE_COLUMNS) + "\n"
+    assert len(read_estimates(p)["t"]) == 0
+
+
+# ---------------------------------------------------------------- writer: atomic output, errors
+
+def test_failure_inside_the_block_leaves_nothing(tmp_path):
+    p = tmp_path / "out.csv"
+    with pytest.raises(RuntimeError):
+        with EstimatesWriter(p) as w:
+            w.write_columns(_random_columns(10, seed=2))
+            raise RuntimeError("estimator failed")
+    assert os.listdir(tmp_path) == []
+
+
+def test_existing_file_replaced_only_on_success(tmp_path):
+    p = tmp_path / "out.csv"
+    p.write_text("old\n")
+    w = EstimatesWriter(p)
+    w.write_columns(_random_columns(5, seed=2))
+    assert p.read_text() == "old\n"                          # still the old file while writing
+    w.close()
+    assert p.read_text().startswith("t,ux")
+    assert sorted(os.listdir(tmp_path)) == ["out.csv"]
+
+
+def test_write_error_is_a_job_error(tmp_path):
+    if not os.path.exists("/dev/full"):
+        pytest.skip("needs /dev/full")
+    w = EstimatesWriter("/dev/full", atomic=False)
+    with pytest.raises(JobError, match="/dev/full: cannot write estimates"):
+        w.write_columns(_random_columns(20_000, seed=2))
+        w.close()
+
+
+# ---------------------------------------------------------------- reader: clear errors
+
+HEAD = ",".join(ESTIMATE_COLUMNS) + ",nis\n"
+ROW = "0.5,0.0,0.0,1.0,20000.0,0.0,0.0,20000.0,0.1,3,1.5\n"
+
+
+def _write(tmp_path, text, name="e.csv"):
+    p = tmp_path / name
+    p.write_text(text)
+    return p
+
+
+def test_comments_blank_lines_and_bom(tmp_path):
+    p = tmp_path / "bom.csv"
+    p.write_bytes(("\ufeff# source: x\n" + HEAD + ROW + "\n# note\n" + ROW.replace("0.5", "0.6")).encode())
+    e = read_estimates(p)
+    np.testing.assert_array_equal(e["t"], [0.5, 0.6])
+    assert e["flags"].tolist() == [3, 3]
+
+
+@pytest.mark.parametrize("bad,message", [
+    (ROW.replace("1.5", "x1"), ":3: column 'nis': not a number ('x1')"),
+    (ROW.replace(",1.5", ""), ":3: expected 11 fields, found 10"),
+    (ROW.replace(",3,", ",2.5,"), ":3: column 'flags': not a non-negative integer (2.5)"),
+    (ROW.replace(",3,", ",-1,"), ":3: column 'flags': not a non-negative integer (-1.0)"),
+])
+def test_bad_rows_name_file_line_and_column(tmp_path, bad, message):
+    p = _write(tmp_path, HEAD + ROW + bad + ROW)
+    with pytest.raises(InputError) as e:
+        read_estimates(p)
+    assert str(e.value) == f"{p}{message}"
+
+
+def test_bad_row_deep_in_a_big_file_is_named(tmp_path):
+    cols = _random_columns(3000, seed=4, extras=("nis",))
+    p = tmp_path / "big.csv"
+    with EstimatesWriter(p) as w:
+        w.write_columns(cols)
+    lines = p.read_text().splitlines(True)
+    lines[2500] = lines[2500].replace(",", ",,", 1)
+    p.write_text("".join(lines))
+    with pytest.raises(InputError, match=f"{p}:2501: expected 11 fields, found 12"):
+        read_estimates(p)
+
+
+def test_header_checks(tmp_path):
+    with pytest.raises(InputError, match="the first columns must be t, ux"):
+        read_estimates(_write(tmp_path, "t,uy,ux\n", "a.csv"))
+    with pytest.raises(InputError, match="column 'nis': column appears twice"):
+        read_estimates(_write(tmp_path, HEAD.strip() + ",nis\n", "b.csv"))
+    with pytest.raises(InputError, match="no header row"):
+        read_estimates(_write(tmp_path, "# nothing\n", "c.csv"))
+    with pytest.raises(InputError, match="cannot open estimates"):
+        read_estimates(tmp_path / "missing.csv")
+
+
+def test_batches_with_gaps_or_odd_types_match_the_row_writer(tmp_path):
+    u = np.array([0.0, 0.6, 0.8])
+    ests = [Estimate(0.5 * i, u, 20000.0, 0.1, i, {"nis": 1.5, "bound_deg": 0.2}) for i in range(6)]
+    ests[3].extras.pop("bound_deg")                  # absent in one record: an empty field there
+    ests[4] = Estimate(2, u, 20000, 0.1, 4, {"nis": 2, "bound_deg": 0.2})   # ints where floats usually are
+    a, b = tmp_path / "rows.csv", tmp_path / "batch.csv"
+    with EstimatesWriter(a) as w:
+        for e in ests:
+            w.write(e)
+    with EstimatesWriter(b) as w:
+        w.write_estimates(ests)
+    assert a.read_bytes() == b.read_bytes()
+    text = b.read_text()
+    assert "\n1.5,0.0,0.6,0.8,20000.0,0.0,12000.0,16000.0,0.1,3,,1.5\n" in text
+    assert "\n2,0.0,0.6,0.8,20000,0.0,12000.0,16000.0,0.1,4,0.2,2\n" in text
