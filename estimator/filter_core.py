@@ -112,8 +112,8 @@ class FilterArrays:
         self.long_ring = np.full((n_probes, int(icfg[I_LONG])), np.nan)
         self.long_sorted = np.full((n_probes, int(icfg[I_LONG])), np.nan)
         self.ring_pos = np.zeros((n_probes, 4), np.int64)   # short pos, short count, long pos, long count
-        self.yhist = np.zeros((2, m))
-        self.yback = np.zeros(n_probes, np.int64)           # valid innovations kept per probe (0..2)
+        self.zhist = np.zeros((2, m))                       # whitened lock-in values one and two samples back
+        self.zback = np.zeros(n_probes, np.int64)           # how many of them are valid per probe (0..2)
         self.probe_state = np.zeros((n_probes, 4), np.int64)  # rejected run, low, previously gated, present before
         self.probe_ema = np.ones(n_probes)                    # smoothed signal power / calibrated prediction
         self.weff = np.zeros((int(icfg[I_NMONO]), 4 * m))
@@ -139,8 +139,8 @@ class FilterArrays:
         for a in (self.short_ring, self.short_sorted, self.long_ring, self.long_sorted):
             a[:] = np.nan
         self.ring_pos[:] = 0
-        self.yhist[:] = 0.0
-        self.yback[:] = 0
+        self.zhist[:] = 0.0
+        self.zback[:] = 0
         self.probe_state[:] = 0
         self.probe_ema[:] = 1.0
 
@@ -148,8 +148,8 @@ class FilterArrays:
         """Return the constant and state arrays in run_filter's argument order."""
         return (self.cfg, self.icfg, self.w_table, self.exps, self.comp_probe, self.chan_probe, self.normalizers,
                 self.gates, self.fstate, self.istate, self.counters, self.x, self.p, self.ratio, self.baseline,
-                self.short_ring, self.short_sorted, self.long_ring, self.long_sorted, self.ring_pos, self.yhist,
-                self.yback, self.probe_state, self.probe_ema, self.weff)
+                self.short_ring, self.short_sorted, self.long_ring, self.long_sorted, self.ring_pos, self.zhist,
+                self.zback, self.probe_state, self.probe_ema, self.weff)
 
 
 # ============================================================================== small dense algebra
@@ -517,6 +517,24 @@ def _gain(p, no, n, j, b, yy, work_a, work_b, dx):
 
 
 @njit(cache=True, nogil=True)
+def _gain_weakly_separable(j, no, n_probes, use):
+    """Return True when eliminating the used probe's log-gain leaves less than half the direction information
+    (the determinant of the Schur complement of J over that of J's direction block)."""
+    for q in range(n_probes):
+        if use & (1 << q):
+            g = 2 + q
+    jgg = j[g, g]
+    if not jgg > 0.0:
+        return True
+    d00, d01, d11 = j[0, 0], j[0, 1], j[1, 1]
+    s00 = d00 - j[0, g] * j[0, g] / jgg
+    s01 = d01 - j[0, g] * j[1, g] / jgg
+    s11 = d11 - j[1, g] * j[1, g] / jgg
+    det_d = d00 * d11 - d01 * d01
+    return not (det_d > 0.0 and s00 * s11 - s01 * s01 > 0.5 * det_d)
+
+
+@njit(cache=True, nogil=True)
 def _marginal_nis(p, no, j, b, yy, work_a, work_b):
     """Return y^T (H P H^T + R)^-1 y = yy - b^T (I + P_oo J)^-1 P_oo b (information identity), or inf."""
     for r in range(no):
@@ -539,7 +557,7 @@ def _marginal_nis(p, no, j, b, yy, work_a, work_b):
 
 @njit(cache=True, nogil=True)
 def run_filter(cfg, icfg, w_table, exps, comp_probe, chan_probe, normalizers, gates, fs, istate, counters, x, p,
-               ratio, baseline, short_ring, short_sorted, long_ring, long_sorted, ring_pos, yhist, yback, probe_state,
+               ratio, baseline, short_ring, short_sorted, long_ring, long_sorted, ring_pos, zhist, zback, probe_state,
                probe_ema, weff,
                t_in, zw, seg_in, segt_in, flags_in, restart_in, merr_in, sigma_log, fout, iout, start, stop):
     """Advance the filter over samples start..stop-1; return the index where a (re)start is needed, or stop.
@@ -631,7 +649,7 @@ def run_filter(cfg, icfg, w_table, exps, comp_probe, chan_probe, normalizers, ga
                 counters[N_BAD] += 1
             flags |= BAD_INPUT
             for q in range(n_probes):
-                yback[q] = 0
+                zback[q] = 0
             if acquired:
                 if istate[K_LOST] == R_NONE:
                     istate[K_LOST] = R_BAD_TIME
@@ -659,6 +677,8 @@ def run_filter(cfg, icfg, w_table, exps, comp_probe, chan_probe, normalizers, ga
                 # The same instant again: not new information about the field, never fused twice.
                 counters[N_DUPLICATES] += 1
                 counters[N_COASTED] += 1
+                for q in range(n_probes):
+                    zback[q] = 0
                 _write_output(fout, iout, i, fs, p, flags | COASTING, math.nan, 0, math.nan, noise_std, 0, t, 0.0,
                               0.0)
                 continue
@@ -687,7 +707,7 @@ def run_filter(cfg, icfg, w_table, exps, comp_probe, chan_probe, normalizers, ga
         if n_present == 0 or seg < 0:
             counters[N_COASTED] += 1
             for q in range(n_probes):
-                yback[q] = 0
+                zback[q] = 0
             _write_output(fout, iout, i, fs, p, flags | COASTING, math.nan, 0, math.nan, noise_std, 0, t, 0.0, 0.0)
             continue
 
@@ -702,19 +722,18 @@ def run_filter(cfg, icfg, w_table, exps, comp_probe, chan_probe, normalizers, ga
         for q in range(n_probes):
             pending[q] = math.nan
             if not present & (1 << q):
-                yback[q] = 0
+                zback[q] = 0
                 continue
-            # noise value: smaller squared difference to the innovations one and two samples back
-            if yback[q] == 2 and full & (1 << q):
-                d1 = 0.0
+            # noise value: squared second difference of the lock-in values themselves. It cancels whatever is
+            # constant or changes linearly over three samples (the field's motion, a drift, a wrong track) and
+            # keeps the noise six times (white); it depends on nothing the filter believes.
+            if zback[q] == 2 and full & (1 << q):
                 d2 = 0.0
                 for k in range(m):
                     if comp_probe[k] == q:
-                        a1 = y[k] - yhist[0, k]
-                        a2 = y[k] - yhist[1, k]
-                        d1 += a1 * a1
+                        a2 = zw[i, k] - 2.0 * zhist[0, k] + zhist[1, k]
                         d2 += a2 * a2
-                v = min(d1, d2) * normalizers[q]
+                v = d2 * normalizers[q]
                 if v < math.inf:
                     pending[q] = v
             # low signal: smoothed observed signal power over the calibrated prediction at this direction
@@ -753,7 +772,7 @@ def run_filter(cfg, icfg, w_table, exps, comp_probe, chan_probe, normalizers, ga
             flags |= INTERPOLATED
         if active == 0:
             counters[N_COASTED] += 1
-            _shift_history(y, yhist, yback, full, comp_probe, n_probes, m)
+            _shift_history(zw[i], zhist, zback, full, comp_probe, n_probes, m)
             _write_output(fout, iout, i, fs, p, flags | COASTING, math.nan, 0, math.nan, noise_std, 0, t, 0.0, 0.0)
             continue
 
@@ -793,17 +812,6 @@ def run_filter(cfg, icfg, w_table, exps, comp_probe, chan_probe, normalizers, ga
                 bpm[q, r] = bp[q, r] * scale
                 for c in range(no):
                     jpm[q, r, c] = jp[q, r, c] * scale
-            if pending[q] == pending[q]:
-                # Innovations of a consistent filter are white with covariance R + H P H^T, so their differences
-                # measure the prior's uncertainty too: take its share tr(H^T R_cal^-1 H P) / m out of the value.
-                tr_hp = 0.0
-                for r in range(no):
-                    for c in range(no):
-                        tr_hp += jp[q, r, c] * p[c, r]
-                share = tr_hp / weff_q / cnt[q]
-                # (floored: where the prior's share dominates, e.g. coasting across a blind fold, the first-order
-                # correction is poor, and a value near zero would drag the level down)
-                pending[q] = max(pending[q] - share, 0.1 * pending[q])
 
         # ---- gain of all active probes (effective noise); chi-square gate on the marginal NIS, and per probe
         # when the whole sample fails
@@ -903,7 +911,7 @@ def run_filter(cfg, icfg, w_table, exps, comp_probe, chan_probe, normalizers, ga
             probe_state[q, 2] = 1 if out else 0
         if not learning and t >= fs[S_NEXT_PUSH]:
             fs[S_NEXT_PUSH] = t + cfg[C_STRIDE_S]
-        _shift_history(y, yhist, yback, full, comp_probe, n_probes, m)
+        _shift_history(zw[i], zhist, zback, full, comp_probe, n_probes, m)
         noisy = False
         noise_now = 0.0
         for q in range(n_probes):
@@ -949,6 +957,23 @@ def run_filter(cfg, icfg, w_table, exps, comp_probe, chan_probe, normalizers, ga
                 probe_state[q, 0] += 1
             else:
                 probe_state[q, 0] = 0
+        n_used = 0
+        for q in range(n_probes):
+            if use & (1 << q):
+                n_used += 1
+        if ng and n_used == 1 and _gain_weakly_separable(jsum, no, n_probes, use):
+            # One probe alone cannot tell its own gain from the field's direction well (near its axis a gain
+            # change and a move toward the axis look alike, and the linearized filter would believe it can):
+            # its gain is then a 'consider' state (Schmidt-Kalman): not corrected, its uncertainty carried into
+            # the direction's by the Joseph form. With two probes, their agreement informs each gain.
+            for r in range(2, 2 + ng):
+                for c in range(no):
+                    work_b[c, r] = 0.0
+            for c in range(n):
+                s_ = 0.0
+                for r in range(no):
+                    s_ += bsum[r] * work_b[r, c]
+                dx[c] = s_
         if blind:
             # Near a blind fold the measurement is quadratic across it and its linearization can pull the
             # state onto the mirror branch: correct only along the well-observed tangent direction (and the
@@ -1070,21 +1095,21 @@ def sigma_log_of(sigma_log, use, comp_probe, zw_row, m):
 
 
 @njit(cache=True, nogil=True)
-def _shift_history(y, yhist, yback, present, comp_probe, n_probes, m):
-    """Keep this sample's innovations as the previous ones (per probe in the bitmask `present`; others forget)."""
+def _shift_history(z_row, zhist, zback, present, comp_probe, n_probes, m):
+    """Keep this sample's values as the previous ones (per probe in the bitmask `present`; others forget)."""
     for k in range(m):
         if present & (1 << comp_probe[k]):
-            yhist[1, k] = yhist[0, k]
-            yhist[0, k] = y[k]
+            zhist[1, k] = zhist[0, k]
+            zhist[0, k] = z_row[k]
     for q in range(n_probes):
         if present & (1 << q):
-            yback[q] = min(yback[q] + 1, 2)
+            zback[q] = min(zback[q] + 1, 2)
         else:
-            yback[q] = 0
+            zback[q] = 0
 
 
 @njit(cache=True, nogil=True)
-def finish_acquisition(cfg, icfg, fs, istate, counters, x, p, ratio, yback, probe_state, fout, iout, i, ok, u, e1,
+def finish_acquisition(cfg, icfg, fs, istate, counters, x, p, ratio, zback, probe_state, fout, iout, i, ok, u, e1,
                        cov, init_var):
     """Complete sample i after Python asked the initiator: start the track from (u, cov) if ok, else coast.
 
@@ -1127,7 +1152,7 @@ def finish_acquisition(cfg, icfg, fs, istate, counters, x, p, ratio, yback, prob
         istate[K_GATED_RUN] = 0
         istate[K_ACQ_INDEX] = i
         for q in range(n_probes):
-            yback[q] = 0
+            zback[q] = 0
             probe_state[q, 0] = 0
         counters[N_ACQ] += 1
         _write_output(fout, iout, i, fs, p, flags | REACQUIRED, fout[i, O_NIS], iout[i, J_DOF], fout[i, O_BOUND2],

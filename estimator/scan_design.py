@@ -25,7 +25,7 @@ import numpy as np
 from fieldvane.estimator.physics import DETUNING_REFERENCE_NT, LEAK_REFERENCE_NT, channel_indices
 from fieldvane.estimator.sphere import fibonacci_sphere, rotation_matrix, tangent_basis
 
-BASE_ROWS_PER_LEVEL = 48     # near-uniform rows every level starts with: 3 x 16 (degree-3 corrections)
+BASE_ROWS_PER_LEVEL = 100    # near-uniform rows every level starts with (degree-4 corrections need 75)
 CANDIDATES_PER_LEVEL = 1000  # direction grid each level chooses from
 MAX_ROWS = 50000             # a plan never grows beyond this many rows
 BATCH_FRACTION = 0.03        # rows added per greedy round, as a fraction of the rows so far

@@ -47,7 +47,8 @@ from fieldvane.estimator.calibration import Calibration
 from fieldvane.estimator.estimate import Estimate
 from fieldvane.estimator.filter_settings import FilterSettings
 from fieldvane.estimator.flags import EstimateFlag as F
-from fieldvane.estimator.lockin_noise import correlation_factor, difference_median, autocorrelation, group_delay_s
+from fieldvane.estimator.lockin_noise import (autocorrelation, correlation_factor, group_delay_s,
+                                              second_difference_variance)
 from fieldvane.estimator.magnitude import fuse_magnitudes, magnitudes_from_frequencies
 from fieldvane.estimator.response import to_real
 from fieldvane.estimator.samples import Sample, SampleBlock, channel_probe
@@ -359,8 +360,10 @@ class Tracker:
         self.kappa = kappa
         a = self._arrays
         a.cfg[core.C_KAPPA] = kappa
-        a.normalizers[:] = [1.0 / _difference_median_cached(m, round(rho1, 4), round(rho2, 4))
-                            for m in self._group_sizes]
+        # A noise value is |z_k - 2 z_(k-1) + z_(k-2)|^2 over a probe's m components: each component's variance
+        # is (6 - 8 rho1 + 2 rho2) sigma^2, so the sum over its median is median-unbiased for the variance ratio.
+        second = second_difference_variance(rho1, rho2)
+        a.normalizers[:] = [1.0 / (second * float(chi2_quantile(0.5, m))) for m in self._group_sizes]
 
     # ----------------------------------------------------------------------------------- state views
     @property
@@ -551,12 +554,12 @@ class Tracker:
             else:
                 u = u / norm
         if u is None:
-            core.finish_acquisition(a.cfg, a.icfg, a.fstate, a.istate, a.counters, a.x, a.p, a.ratio, a.yback,
+            core.finish_acquisition(a.cfg, a.icfg, a.fstate, a.istate, a.counters, a.x, a.p, a.ratio, a.zback,
                                     a.probe_state, fout, iout, i, False, np.zeros(3), np.zeros(3), np.eye(2),
                                     self._init_var)
             return
         e1, _ = tangent_basis(u)
-        core.finish_acquisition(a.cfg, a.icfg, a.fstate, a.istate, a.counters, a.x, a.p, a.ratio, a.yback,
+        core.finish_acquisition(a.cfg, a.icfg, a.fstate, a.istate, a.counters, a.x, a.p, a.ratio, a.zback,
                                 a.probe_state, fout, iout, i, True, np.ascontiguousarray(u), np.ascontiguousarray(e1),
                                 np.ascontiguousarray(cov), self._init_var)
         jump = math.degrees(float(angle_between(was, u))) if was is not None else math.nan
@@ -616,14 +619,3 @@ def _rate_from_times(t: np.ndarray) -> float | None:
     if dt.size == 0:
         return None
     return float(1.0 / np.median(dt))
-
-
-_DIFF_CACHE: dict[tuple, float] = {}
-
-
-def _difference_median_cached(m: int, rho1: float, rho2: float) -> float:
-    """Return difference_median(m, rho1, rho2), computed once per process for each argument set."""
-    key = (m, rho1, rho2)
-    if key not in _DIFF_CACHE:
-        _DIFF_CACHE[key] = difference_median(m, rho1, rho2)
-    return _DIFF_CACHE[key]

@@ -44,6 +44,7 @@ class CellRates:
     depth: float               # modulation depth m
     pumps: np.ndarray          # (2, 3) pump axes
     probes: np.ndarray         # (P, 3) probe axes
+    along: np.ndarray          # (N, 2) p_j . u, each pump's component along the field
 
     @property
     def n_species(self) -> int:
@@ -56,7 +57,7 @@ class CellRates:
 
     def pump_along(self) -> np.ndarray:
         """Return p_j . u, (N, 2): each pump's component along the field."""
-        return self.u @ self.pumps.T
+        return self.along
 
     def light_rate(self) -> np.ndarray:
         """Return 2 pi g_s b_j, (N, S, 2) rad/s: pump j's light-shift precession rate for species s."""
@@ -93,7 +94,7 @@ def cell_rates(config: SensorConfig, u: np.ndarray, b_nT: np.ndarray) -> CellRat
     u = np.asarray(u, dtype=float)
     b = np.asarray(b_nT, dtype=float)
     pumps = config.pump_array()
-    along = u @ pumps.T
+    along = u[:, 0, None] * pumps[None, :, 0] + u[:, 1, None] * pumps[None, :, 1] + u[:, 2, None] * pumps[None, :, 2]
     efficiency = 1.0 + np.array(config.pump_angle_efficiency)[None, :] * along ** 2
     z = config.pump_line_shape()
     nominal = np.array(config.pump_rate_per_s) * np.array(config.pump_power)       # (2,) 1/s
@@ -116,7 +117,7 @@ def cell_rates(config: SensorConfig, u: np.ndarray, b_nT: np.ndarray) -> CellRat
     return CellRates(u=u, b_nT=b, rates=rates, light_nT=light_nT, cross=config.pump_weights(),
                      relax=np.array(config.relaxation_per_s), exchange=config.exchange_per_s(),
                      gamma=gamma, kappa=kappa, isotope=isotope, probe_weight=probe_weight,
-                     depth=config.modulation_depth, pumps=pumps, probes=config.probe_array())
+                     depth=config.modulation_depth, pumps=pumps, probes=config.probe_array(), along=along)
 
 
 def longitudinal_polarization(cell: CellRates) -> np.ndarray:

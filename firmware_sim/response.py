@@ -4,13 +4,18 @@ This is the steady-state, first-order-in-modulation solution of the same Bloch e
 `bloch.py` integrates in time (constants from `cell.py`, same sign conventions), solved directly:
 
 * Mean state: with the pumps unmodulated, dP_s/dt = 0 is a linear system for the species'
-  polarization vectors (3 per species; the two upper levels are coupled by spin exchange, a lower
-  level stands alone), except that the heading term moves each upper level's precession rate with
-  its own longitudinal polarization: solved by fixed-point iteration from the longitudinal steady
-  state (exact in one step unless a light shift tilts the precession axes).
+  polarization vectors (the two upper levels coupled by spin exchange, a lower level alone),
+  except that the heading term moves each upper level's precession rate with its own longitudinal
+  polarization: solved by fixed-point iteration from the longitudinal steady state (exact in one
+  step unless a light shift tilts the precession axes off u, then two steps agree to ~1e-16).
 * Modulated part: linearized about the mean state (the heading term's derivative included), the
   response to pump j's modulation m cos(w_j t) of the pumping rate and of the light-shift field is
   the complex phasor dP solving (i w_j - J) dP = d_j. Probe k's phasor at w_j is q_k . sum_s w_s dP_s.
+* Both systems are solved in the frame (e1, e2, u) in circular components: precession about u is
+  diagonal there, exchange acts component by component, and only the light shift's transverse
+  field couples the longitudinal part to the transverse ones, so eliminating the transverse parts
+  leaves a 2 x 2 system per row in closed form (`_solve`; checked against a dense Cartesian solve
+  with numpy.linalg in tests/test_sim_realism.py).
 
 Without coupling this reduces to the DESIGN.md channel factor (c + i s)/2 times the Bell-Bloom
 resonance; the counter-rotating and longitudinal responses (order Gamma/omega, about 1 % at 1 uT)
@@ -31,7 +36,7 @@ from .lockin import channel_outputs
 from .loop import modulation_hz
 from .sensor import SensorConfig
 
-_HEADING_ITERATIONS = 3
+_HEADING_ITERATIONS = 2
 
 
 def _prepare(u, b_nT):
@@ -119,7 +124,7 @@ class _Geometry:
 
     def __init__(self, cell: CellRates):
         e1, e2 = transverse_frame(cell.u)
-        self.p_long = cell.u @ cell.pumps.T                                 # (N, 2): p_j . u
+        self.p_long = cell.pump_along()                                     # (N, 2): p_j . u
         self.p_beta = e1 @ cell.pumps.T - 1j * (e2 @ cell.pumps.T)          # (N, 2)
         self.q_long = cell.u @ cell.probes.T                                # (N, P)
         self.q_beta = e1 @ cell.probes.T - 1j * (e2 @ cell.probes.T)

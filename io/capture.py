@@ -48,6 +48,7 @@ _KINDS = (EVENT_DATA, EVENT_LINK_OPEN, EVENT_LOST)
 META_KEYS = {"run_id": str, "input_format": str, "source": str, "columns": list,
              "fieldvane": str, "wire_format_version": int}
 INPUT_FORMATS = ("binary", "csv")
+WIRE_VERSIONS = (1,)              # docs/wire_format.md versions this reader decodes
 
 
 class Chunk(NamedTuple):
@@ -102,6 +103,10 @@ def check_metadata(meta, path: str | None = None) -> dict:
     if "columns" in meta and not (meta["columns"] and all(isinstance(c, str) and c
                                                           for c in meta["columns"])):
         raise InputError("must be a list of column names", path, column="columns", kind="key")
+    if "wire_format_version" in meta and meta["wire_format_version"] not in WIRE_VERSIONS:
+        raise InputError(f"wire format version {meta['wire_format_version']} is not supported (only "
+                         f"{', '.join(map(str, WIRE_VERSIONS))}): a newer fieldvane wrote this capture",
+                         path, column="wire_format_version", kind="key")
     if "run_id" in meta and (not meta["run_id"] or "/" in meta["run_id"]):
         raise InputError("must be a non-empty name", path, column="run_id", kind="key")
     return meta

@@ -198,7 +198,10 @@ class CaptureThread:
                     self._overflow_pending = 0
                 rest = list(self._items)
                 self._items.clear()
-            if rest and not self._abandon:
+            if self._abandon and self.lost_abandoned:
+                # Mark the abandoned tail too, if the disk lets us in the time left.
+                rest = [Chunk(time.time_ns(), b"", EVENT_LOST, self.lost_abandoned)]
+            if rest:
                 try:
                     self.writer.write_chunks(rest)
                 except OSError:

@@ -18,6 +18,7 @@ COMMANDS = {
     "simulate": ("simulate", "write a simulated recording CSV from a scenario TOML"),
     "emit": ("emit", "stream a simulated sensor as wire frames or CSV lines to a pty, TCP or a file"),
     "calibrate": ("calibrate", "fit a calibration from a scan recording"),
+    "plan-scan": ("plan_scan", "propose the field vectors of a calibration scan for a target axis accuracy"),
     "replay": ("replay", "estimate field directions from a recording CSV or a capture"),
     "map": ("map", "map the Cramer-Rao bound over the sphere for a calibration"),
     "run": ("run", "live: read a serial port, estimate, stream to loggers, capture raw bytes"),

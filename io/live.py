@@ -306,7 +306,8 @@ class LiveLoop:
             events = cap.events()
             for kind, message in events:
                 if kind == "resumed":
-                    self.log(f"fieldvane live: {message}; {cap.bytes_lost} raw bytes lost so far")
+                    if self._repeat.due("capture:resumed", now):
+                        self.log(f"fieldvane live: {message}; {cap.bytes_lost} raw bytes lost so far")
                 elif self._repeat.due("capture:" + kind, now):
                     self.log(f"fieldvane live: CAPTURE PROBLEM: {message} ({cap.bytes_lost} "
                              "raw bytes lost so far)")

@@ -194,6 +194,7 @@ def test_bad_files_are_clear_errors(tmp_path, content, message):
     ({"columns": "t,f_a"}, "key 'columns': must be list"),
     ({"columns": [1, 2]}, "key 'columns': must be a list of column names"),
     ({"wire_format_version": True}, "key 'wire_format_version': must be int"),
+    ({"wire_format_version": 2}, "key 'wire_format_version': wire format version 2 is not supported"),
     ({"speed": 3}, "key 'speed': unknown capture metadata key"),
 ])
 def test_metadata_of_the_wrong_type_is_refused_by_key(tmp_path, meta, words):

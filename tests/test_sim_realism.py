@@ -319,3 +319,64 @@ def test_a_scenario_with_the_realistic_cell_reports_locked_frequencies():
     # Spin-exchange pulling (REFERENCES.md, coupled modes): 87Rb reads low, 85Rb high, both off |B|.
     assert np.all(magnitudes[:, 0] < run.b_nT) and np.all(magnitudes[:, 1] > run.b_nT)
     assert 0.1 < 100.0 * np.mean((magnitudes[:, 1] - magnitudes[:, 0]) / run.b_nT) < 0.4
+
+
+# ----- the fast model's closed-form algebra --------------------------------------------------
+
+def _dense_phasors(cell, f_mod):
+    """Probe phasors from the Bloch equations of cell.py written as one dense Cartesian system per row.
+
+    Reference for response.probe_phasors (which eliminates components in closed form): every species'
+    3-vector stacked, the static state and the modulated phasor solved with numpy.linalg.solve.
+    """
+    n, ns = cell.u.shape[0], cell.n_species
+    u, size = cell.u, 3 * ns
+    light, damping = cell.light_rate(), cell.damping()
+    src = np.zeros((n, size))
+    for s in range(ns):
+        src[:, 3 * s:3 * s + 3] = (cell.rates * cell.cross[:, cell.isotope[s]][None, :]) @ cell.pumps
+
+    def generator(p_long):
+        jac = np.zeros((n, size, size))
+        for s in range(ns):
+            omega = ((2 * np.pi * cell.gamma[s] * cell.b_nT - cell.kappa[:, s] * p_long[:, s])[:, None] * u
+                     + light[:, s, :] @ cell.pumps)
+            cross = np.zeros((n, 3, 3))                       # C P = P x omega
+            cross[:, 0, 1], cross[:, 0, 2], cross[:, 1, 2] = omega[:, 2], -omega[:, 1], omega[:, 0]
+            cross -= np.transpose(cross, (0, 2, 1))
+            jac[:, 3 * s:3 * s + 3, 3 * s:3 * s + 3] = cross - damping[:, cell.isotope[s], None, None] * np.eye(3)
+        for a, b in ((0, 1), (1, 0)):
+            jac[:, 3 * a:3 * a + 3, 3 * b:3 * b + 3] += cell.exchange[a] * np.eye(3)
+        return jac
+
+    p_long = np.zeros((n, ns))
+    for _ in range(4):
+        mean = np.linalg.solve(generator(p_long), -src[..., None])[..., 0].reshape(n, ns, 3)
+        p_long = np.einsum("nsc,nc->ns", mean, u)
+    jac = generator(p_long)
+    for s in range(ns):
+        t = np.cross(mean[:, s], u) * cell.kappa[:, s, None]
+        jac[:, 3 * s:3 * s + 3, 3 * s:3 * s + 3] -= t[:, :, None] * u[:, None, :]
+    out = np.zeros((n, cell.probes.shape[0], 2), complex)
+    for j in range(2):
+        rate = cell.depth * cell.rates[:, j, None] * cell.cross[j, cell.isotope][None, :]        # (N, S)
+        drive = rate[:, :, None] * (cell.pumps[j] - mean)
+        drive += np.cross(mean, cell.pumps[j]) * (cell.depth * light[:, :, j])[:, :, None]
+        system = 2j * np.pi * f_mod[:, j, None, None] * np.eye(size) - jac
+        dp = np.linalg.solve(system, drive.reshape(n, size, 1))[..., 0].reshape(n, ns, 3)
+        out[:, :, j] = np.einsum("nsc,s,kc->nk", dp, cell.probe_weight, cell.probes)
+    return out
+
+
+def test_fast_model_algebra_matches_a_dense_solve():
+    from fieldvane.firmware_sim.loop import modulation_hz
+    from fieldvane.firmware_sim.response import probe_phasors
+
+    cfg = default_config(2, misalignment_deg=3.0, **REALISTIC).replace(pump_power=(1.3, 0.8))
+    u = _sphere(60, seed=5)
+    for b in (1_000.0, 50_000.0):
+        cell = _cell(cfg, u, b)
+        f = modulation_hz(cfg, cell) + 25.0          # a little off resonance as well
+        fast, dense = probe_phasors(cell, f), _dense_phasors(cell, f)
+        # Reference library: numpy.linalg.solve on the full Cartesian system (LAPACK).
+        assert np.max(np.abs(fast - dense)) < 1e-9 * np.max(np.abs(dense))
