@@ -19,7 +19,7 @@ import numpy as np
 from fieldvane.estimator.constants import CELL_PAIRS, gamma_hz_per_nt, identify_isotope
 from fieldvane.estimator.harmonics import harmonics, n_harmonics
 from fieldvane.estimator.magnitude_basis import MagnitudeBasis
-from fieldvane.estimator.magnitude_error import MagnitudeCheck, check_magnitudes
+from fieldvane.estimator.magnitude_error import MagnitudeCheck, check_magnitudes, scan_levels
 from fieldvane.estimator.outliers import robust_scale, row_statistic, row_threshold, screen_rows
 from fieldvane.estimator.physics import PhysicsParameters
 from fieldvane.estimator.physics_fit import N_LINEAR_TERMS, PhysicsFitError, fit_physics
@@ -256,20 +256,11 @@ def _align_signs(phys: PhysicsParameters, nominal_pumps, nominal_probes) -> None
             phys.flip_axis("probe", i)
 
 
-def _fit_corrections(u, s_basis, resid, per_knot, max_degree, folds, ridge, seed):
-    """Return (chosen degree, scores by degree, held-out residual of the chosen degree, solution or None)."""
-    n = u.shape[0]
-    rng = np.random.default_rng(seed)
-    fold_of = rng.permutation(np.arange(n) % folds)
-    scores: dict[int, float] = {-1: float(np.sqrt(np.mean(np.abs(resid) ** 2) / 2))}
-    heldout = {-1: resid}
-    solutions: dict[int, np.ndarray] = {}
-    k = s_basis.shape[1]
-    for degree in range(0, max_degree + 1):
-        n_par = k * n_harmonics(degree)
-        if per_knot.min() < MIN_ROWS_PER_PARAMETER * n_harmonics(degree) or n * (folds - 1) / folds < 2 * n_par:
-            break
-        design = _correction_design(u, s_basis, degree)
+def _cross_validate(design_for, degrees, resid, fold_of, folds, ridge):
+    """Return ({degree: held-out residual}, {degree: full-data solution}) of ridge fits of resid (n, C)."""
+    heldout, solutions = {}, {}
+    for degree in degrees:
+        design = design_for(degree)
         gram_total = design.T @ design
         rhs_total = design.T @ resid
         pred = np.empty_like(resid)
@@ -278,13 +269,69 @@ def _fit_corrections(u, s_basis, resid, per_knot, max_degree, folds, ridge, seed
             dt = design[test]
             sol = _solve_gram(gram_total - dt.T @ dt, rhs_total - dt.T @ resid[test], ridge)
             pred[test] = dt @ sol
-        r = resid - pred
-        heldout[degree] = r
-        scores[degree] = float(np.sqrt(np.mean(np.abs(r) ** 2) / 2))
+        heldout[degree] = resid - pred
         solutions[degree] = _solve_gram(gram_total, rhs_total, ridge)
-    best = min(scores.values())
-    chosen = min(d for d, s in scores.items() if s <= 1.02 * best)
-    return chosen, scores, heldout[chosen], solutions.get(chosen)
+    return heldout, solutions
+
+
+def _one_standard_error(heldout: dict, whiten: np.ndarray) -> int:
+    """Return the smallest degree whose whitened held-out mean square is within one standard error of the best."""
+    per_row = {d: np.mean(np.abs(r * whiten) ** 2, axis=1) for d, r in heldout.items()}
+    mse = {d: float(np.mean(v)) for d, v in per_row.items()}
+    best = min(mse, key=mse.get)
+    limit = mse[best] + float(np.std(per_row[best]) / np.sqrt(per_row[best].size))
+    return min(d for d, v in mse.items() if v <= limit)
+
+
+def _fit_corrections(u, s_basis, resid, nearest_knot, max_degree, folds, ridge, seed, whiten, stepped):
+    """Return (degrees per knot (K,), scores by degree, held-out residual (N, C), corrections (C, K, J)).
+
+    Each candidate degree's corrections are scored by k-fold held-out residual and the smallest
+    degree within one standard error of the best wins: the one-standard-error rule of
+    cross-validation (Hastie, Tibshirani and Friedman, 'The Elements of Statistical Learning',
+    2009, section 7.10), on residuals whitened by `whiten` (C,) 1/V. A stepped scan's levels are
+    chosen one by one (their rows share no correction); a continuous scan's all together.
+    """
+    n, c_n = resid.shape
+    k_n = s_basis.shape[1]
+    rng = np.random.default_rng(seed)
+    fold_of = rng.permutation(np.arange(n) % folds)
+    groups = [np.flatnonzero(nearest_knot == k) for k in range(k_n)] if stepped else [np.arange(n)]
+    chosen = np.full(k_n, -1)
+    heldout_all = resid.copy()
+    sse = {-1: float(np.sum(np.abs(resid) ** 2))}
+    counted = {-1: n}
+    top = max_degree
+    corrections = np.zeros((c_n, k_n, n_harmonics(max(top, 0))), complex)
+    for gi, rows in enumerate(groups):
+        m = rows.size
+        degrees = [d for d in range(0, max_degree + 1)
+                   if m >= MIN_ROWS_PER_PARAMETER * n_harmonics(d)
+                   and m * (folds - 1) / folds >= 2 * n_harmonics(d) * (1 if stepped else k_n)]
+        if stepped:
+            y_all = harmonics(max(degrees), u[rows]) if degrees else None
+            design_for = (lambda d, y=y_all: y[:, :n_harmonics(d)])
+        else:
+            design_for = (lambda d: _correction_design(u, s_basis, d))
+        heldout, solutions = _cross_validate(design_for, degrees, resid[rows], fold_of[rows], folds, ridge)
+        heldout[-1] = resid[rows]
+        for d, r in heldout.items():
+            if d >= 0:
+                sse[d] = sse.get(d, 0.0) + float(np.sum(np.abs(r) ** 2))
+                counted[d] = counted.get(d, 0) + m
+        pick = _one_standard_error(heldout, whiten)
+        heldout_all[rows] = heldout[pick]
+        if pick >= 0:
+            sol = solutions[pick]
+            if stepped:
+                corrections[:, gi, :n_harmonics(pick)] = sol.T
+                chosen[gi] = pick
+            else:
+                corrections[:, :, :n_harmonics(pick)] = sol.T.reshape(c_n, k_n, n_harmonics(pick))
+                chosen[:] = pick
+    # Scores by degree over the levels that could try it (the rest at their own best), for the summary.
+    scores = {d: float(np.sqrt(v / counted[d] / (2 * c_n))) for d, v in sse.items() if counted[d] == n}
+    return chosen, scores, heldout_all, corrections
 
 
 def _physics_table_degree(phys_coef: np.ndarray, noise: np.ndarray) -> int:
@@ -446,8 +493,10 @@ def _fit_inliers(u, b_nT, z, s_basis, knots, basis, nearest_knot, channels, nois
     _align_signs(phys, nominal_pumps, nominal_probes)
     resid = z - phys.predict(u, s_basis)
 
-    chosen, scores, heldout, sol = _fit_corrections(u, s_basis, resid, per_knot, max_correction_degree,
-                                                    folds, ridge, seed)
+    stepped = scan_levels(b_nT, knots)[2]
+    per_level, scores, heldout, corr = _fit_corrections(u, s_basis, resid, nearest_knot, max_correction_degree,
+                                                        folds, ridge, seed, 1.0 / pfit.noise_std, stepped)
+    chosen = int(per_level.max())
     noise = np.maximum(np.sqrt(np.mean(np.abs(heldout) ** 2, axis=0) / 2), 1e-300)
 
     phys_coef = phys.harmonic_coefficients()
@@ -457,26 +506,30 @@ def _fit_inliers(u, b_nT, z, s_basis, knots, basis, nearest_knot, channels, nois
     coef = np.zeros((c_n, basis.size, n_harmonics(degree)), complex)
     keep_h = min(n_harmonics(degree), phys_coef.shape[2])
     coef[:, :, :keep_h] = phys_coef[:, :, :keep_h]
-    correction_rms = np.zeros(c_n)
-    if chosen >= 0 and sol is not None:
-        corr = sol.T.reshape(c_n, basis.size, n_harmonics(chosen))
-        coef[:, :, :n_harmonics(chosen)] += corr
-        correction_rms = np.sqrt(np.max(np.sum(np.abs(corr) ** 2, axis=2), axis=1) / (4 * np.pi) / 2)
+    used = min(corr.shape[2], n_harmonics(max(chosen, 0)))
+    coef[:, :, :used] += corr[:, :, :used]
+    correction_rms = np.sqrt(np.max(np.sum(np.abs(corr) ** 2, axis=2), axis=1) / (4 * np.pi) / 2)
     model = ResponseModel(channels, degree, knots, coef, noise)
     reports = _channel_reports(channels, z, z - heldout, noise)
 
     std = pfit.parameter_std()
     n_beams = 2 + phys.probe_axes.shape[0]
     fit_info = {"iterations": pfit.iterations, "covariance_inflation": round(float(pfit.inflation), 4),
+                "correction_degree_per_knot": [int(d) for d in per_level],
                 "physics_residual_V": [float(x) for x in pfit.noise_std],
-                "physics_table_degree": phys_degree}
+                "physics_table_degree": phys_degree,
+                "covariance_std_deg": [round(float(x), 6) for x in pfit.covariance_std_deg()],
+                "jackknife_std_deg": (None if pfit.jackknife_std_deg() is None
+                                      else [round(float(x), 6) for x in pfit.jackknife_std_deg()]),
+                "misfit_beams": [bool(x) for x in pfit.misfit_beams()]}
     col = 2 * n_beams
     if fit_efficiency:
-        fit_info["efficiency_std"] = std[col:col + 4].reshape(2, 2).tolist()
-        col += 4
+        fit_info["efficiency_std"] = std[col:col + 8].reshape(2, 2, 2).tolist()   # [pump, pump of (p.u)^2, re/im]
+        col += 8
     if fit_detuning:
         fit_info["detuning_law_std"] = std[col:col + 8].reshape(2, 2, 2).tolist()
-    params_per_knot = N_LINEAR_TERMS + (n_harmonics(chosen) if chosen >= 0 else 0)
+        fit_info["detuning_shape_std"] = std[col + 8:col + 12].reshape(2, 2).tolist()
+    params_per_knot = N_LINEAR_TERMS + np.array([n_harmonics(d) if d >= 0 else 0 for d in per_level])
     check = check_magnitudes(coef, knots, noise, b_nT, params_per_knot)
     cal = Calibration(model, phys, ("", ""), chosen, reports, scores, coverage, sparse, n, warnings,
                       direction_std_deg=pfit.direction_std_deg(), correction_rms_V=correction_rms,

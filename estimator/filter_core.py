@@ -379,7 +379,7 @@ def _sorted_median(ordered, cnt):
 
 @njit(cache=True, nogil=True)
 def _push_noise(p, value, learning, short_ring, short_sorted, long_ring, long_sorted, ring_pos, baseline, ratio, cfg,
-                t, fs):
+                t, fs, probe_state):
     """Add one noise value (variance ratio) of probe p; refresh its short level, baseline and ratio.
 
     Short level: running median of the last W values (follows a burst within (W + 1) / 2 values). Baseline
@@ -396,9 +396,18 @@ def _push_noise(p, value, learning, short_ring, short_sorted, long_ring, long_so
         ring_pos[p, 2], ring_pos[p, 3] = lpos, lcnt
         baseline[p] = _sorted_median(long_sorted[p], lcnt)
     elif cnt >= (w + 1) // 2 and t >= fs[S_NEXT_PUSH]:
-        lpos, lcnt = _ring_push(long_ring[p], long_sorted[p], ring_pos[p, 2], ring_pos[p, 3], level)
-        ring_pos[p, 2], ring_pos[p, 3] = lpos, lcnt
-        baseline[p] = _sorted_median(long_sorted[p], lcnt)
+        # A burst (level above the NOISY threshold) is kept out of the baseline; one lasting longer than half
+        # the baseline window is a new normal: then its levels go in (clipped at the threshold, so the baseline
+        # follows a lasting rise by up to that factor every half window).
+        limit = cfg[C_NOISE_THR] * max(baseline[p], 1e-6)
+        if level > limit:
+            probe_state[p, 3] += 1
+        else:
+            probe_state[p, 3] = 0
+        if level <= limit or 2 * probe_state[p, 3] > long_ring.shape[1]:
+            lpos, lcnt = _ring_push(long_ring[p], long_sorted[p], ring_pos[p, 2], ring_pos[p, 3], min(level, limit))
+            ring_pos[p, 2], ring_pos[p, 3] = lpos, lcnt
+            baseline[p] = _sorted_median(long_sorted[p], lcnt)
     base = max(baseline[p], 1e-6)
     if cnt >= (w + 1) // 2 and level > cfg[C_NOISE_THR] * base:
         ratio[p] = min(level, cfg[C_NOISE_MAX] * base)
@@ -907,7 +916,7 @@ def run_filter(cfg, icfg, w_table, exps, comp_probe, chan_probe, normalizers, ga
             v = pending[q]
             if icfg[I_ADAPTIVE] and v == v and (learning or not out or probe_state[q, 2]):
                 _push_noise(q, v, learning, short_ring, short_sorted, long_ring, long_sorted, ring_pos, baseline,
-                            ratio, cfg, t, fs)
+                            ratio, cfg, t, fs, probe_state)
             probe_state[q, 2] = 1 if out else 0
         if not learning and t >= fs[S_NEXT_PUSH]:
             fs[S_NEXT_PUSH] = t + cfg[C_STRIDE_S]

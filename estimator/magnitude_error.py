@@ -124,12 +124,13 @@ def scan_levels(b_nT: np.ndarray, knots_nT: np.ndarray, gap: float = 0.05) -> tu
 
 
 def leave_one_level_out(coef: np.ndarray, knots_nT: np.ndarray, noise_std: np.ndarray, level_rows: np.ndarray,
-                        params_per_knot: int) -> np.ndarray:
+                        params_per_knot) -> np.ndarray:
     """Return (K, C): sphere-mean squared error of each knot's table predicted from the others, over noise variance.
 
-    The expected contribution of estimation noise (params_per_knot / rows at each knot involved) is
-    subtracted; the result is floored at 0.
+    The expected contribution of estimation noise (params_per_knot, scalar or (K,), over the rows
+    at each knot involved) is subtracted; the result is floored at 0.
     """
+    params = np.broadcast_to(np.asarray(params_per_knot, float), knots_nT.shape)
     k_n = knots_nT.size
     out = np.zeros((k_n, coef.shape[0]))
     if k_n < 2:
@@ -141,7 +142,7 @@ def leave_one_level_out(coef: np.ndarray, knots_nT: np.ndarray, noise_std: np.nd
         # Orthonormal harmonics: the sphere mean of |sum_j a_j Y_j|^2 is sum_j |a_j|^2 / (4 pi).
         err = np.sum(np.abs(coef[:, k, :] - pred) ** 2, axis=1) / (4.0 * np.pi) / (2.0 * noise_std ** 2)
         rows = np.maximum(level_rows.astype(float), 1.0)
-        estimation = params_per_knot / rows[k] + np.sum(w ** 2 * params_per_knot / rows[others])
+        estimation = params[k] / rows[k] + np.sum(w ** 2 * params[others] / rows[others])
         out[k] = np.maximum(err - estimation, 0.0)
     return out
 
@@ -172,8 +173,11 @@ def fit_error_prior(lolo: np.ndarray, knots_nT: np.ndarray, x_ref: float) -> tup
 
 
 def check_magnitudes(coef: np.ndarray, knots_nT: np.ndarray, noise_std: np.ndarray, b_nT: np.ndarray,
-                     params_per_knot: int) -> MagnitudeCheck:
-    """Return the MagnitudeCheck of a model table coef (C, K, J) at knots_nT fitted to rows at b_nT (nT)."""
+                     params_per_knot) -> MagnitudeCheck:
+    """Return the MagnitudeCheck of a model table coef (C, K, J) at knots_nT fitted to rows at b_nT (nT).
+
+    params_per_knot (scalar or (K,)): fitted parameters per channel behind each knot's table.
+    """
     knots_nT = np.asarray(knots_nT, float)
     levels, rows, stepped = scan_levels(b_nT, knots_nT)
     lolo = leave_one_level_out(coef, knots_nT, np.asarray(noise_std, float), rows, params_per_knot)

@@ -2,32 +2,37 @@
 
 Channel (probe q, pump p, other pump p'), field direction u, at magnitude knot k:
 
-    Z_k(u) = eta(u) * [R_k(u) * (a_k c + b_k s) + l_k c' + m (B_1 / B_k) s' + o_k]
+    Z_k(u) = eta(u) * [R_k(u) * (a_k c + b_k s) + l_k c' + (m_1 (B_1/B_k) + m_2 (B_1/B_k)^2) s' + o_k]
     c = p.q - (p.u)(q.u),  s = u.(p x q),  c' = p'.q - (p'.u)(q.u),  s' = u.(p' x q)
     eta(u) = 1 + e_own (p.u)^2 + e_other (p'.u)^2
-    R_k(u) = 1 - i*sigma*x_k - x_k^2,   x_k = t_k,a L_a + t_k,b L_b,   L = (p.u)(1 + e_own (p.u)^2)
+    R_k(u) = 1 / (1 + i*sigma*x_k),   x_k = t_k,a L_a + t_k,b L_b,
+    L_m = (p_m.u) (1 + v_m,a (p_a.u)^2 + v_m,b (p_b.u)^2)
 
 * a_k c + b_k s is DESIGN.md's ideal channel g exp(i phi0) (c - i sigma s) when b = -i sigma a; a
   free b also carries the counter-rotating part of the precession (b/a differs from -i sigma by a
   few percent below ~2 uT, falling as 1/|B|).
-* l_k c' + m (B_1/B) s' is the other pump's leak into this channel (REFERENCES.md, 'Two isotopes
+* l_k c' + m(B) s' is the other pump's leak into this channel (REFERENCES.md, 'Two isotopes
   coupled by spin exchange'): the modulated pump acts on the mean polarization the other pump
   holds, whose longitudinal part the probe reads as (q.u)(p'.u) (the c' term, free at every knot)
   and whose small transverse part, turned by the precession, is driven on resonance into
-  u.(p' x q) (the s' term). Both fall roughly as 1/|B|; the s' term is given exactly that form
-  (B_1 = 1000 nT, m its complex size at 1 uT) because a free s' term at every knot would let each
+  u.(p' x q) (the s' term). Both fall with |B|; the s' term is given the form m_1 (B_1/B) +
+  m_2 (B_1/B)^2 (B_1 = 1000 nT, m complex, V) because a free s' term at every knot would let each
   pump axis slide toward the other one without changing the fit. o_k takes the constant parts.
 * eta is the pump efficiency versus the pump-field angle (even in p.u): it scales everything this
   pump's modulation drives, so the whole channel (e_own). The other pump's efficiency changes the
   mean pumping rate and with it the line width, so the amplitude also follows (p'.u)^2 (e_other).
-  One pair per pump, shared by its channels and every magnitude.
+  e is complex: its imaginary part is a phase that follows the angle (the line width moves with
+  the pumping, and with it the phase of a resonance that is slightly detuned). One pair per pump,
+  shared by its channels and every magnitude.
 * x_k is a detuning, relative to the line width, that follows the longitudinal polarization (a
-  combination of the pumps' longitudinal drives L, efficiency included): the nonlinear-Zeeman
-  heading shift at Earth-field magnitudes. Its coefficients follow t_0 + t_2 (|B| / 50 uT)^2: the
+  combination of the pumps' longitudinal drives L): the nonlinear-Zeeman heading shift at
+  Earth-field magnitudes. L's even factor (v) carries the pumps' efficiency and line width versus
+  the pump-field angle, which the polarization and the width follow. The coefficients t follow
+  t_0 + t_2 (|B| / 50 uT)^2: the
   nonlinear Zeeman splitting grows as f_L^2 (REFERENCES.md, 2 f_L^2 / f_hfs), a light shift adds a
   constant; four pairs (t_0, t_2) in all, whatever the number of knots.
-  R is the second-order expansion of 1/(1 + i sigma x) and acts on the resonant part only; one
-  set of t per pump and knot, shared by that pump's channels.
+  R, the resonance's response to that detuning, acts on the resonant part only; one set of t
+  per pump, shared by that pump's channels.
 
 The whole part is a polynomial of degree 10 in u (degree 2 when e and x vanish), folded exactly
 into the response model's spherical-harmonic table; between knots the table, not these
@@ -44,8 +49,15 @@ from fieldvane.estimator.harmonics import harmonics, n_harmonics
 from fieldvane.estimator.sphere import fibonacci_sphere
 
 PHYSICS_MAX_DEGREE = 10  # degree of the physics part as a polynomial in u
-LEAK_REFERENCE_NT = 1000.0  # B_1: the s' leak coefficient m is its size at 1 uT
+LEAK_REFERENCE_NT = 1000.0  # B_1: the s' leak coefficients m are its parts at 1 uT
+LEAK_POWERS = (1, 2)        # the s' leak law: powers of B_1 / |B|
 DETUNING_REFERENCE_NT = 50000.0  # B_2: the detuning law t_0 + t_2 (|B| / B_2)^2 is quoted at 50 uT
+
+
+def leak_law(b_nT) -> np.ndarray:
+    """Return (len(LEAK_POWERS), N): (B_1 / |B|)^p for each power of the s' leak law at magnitudes b_nT (nT)."""
+    b = np.atleast_1d(np.asarray(b_nT, float))
+    return np.stack([(LEAK_REFERENCE_NT / b) ** p for p in LEAK_POWERS])
 
 
 def detuning_from_law(law: np.ndarray, knots_nT: np.ndarray) -> np.ndarray:
@@ -83,11 +95,11 @@ class PhysicsParameters:
 
     gains (C,K) complex: a, the coefficient of c, V (g exp(i phi0)); quadrature (C,K) complex: b,
     the coefficient of s, V; handedness (C,) +1/-1 (the sign sigma of -Im(b/a)); leak (C,K) complex:
-    l, V; leak_quadrature (C,) complex: m, V at 1 uT; offset (C,K) complex: o, V; knots_nT (K,):
-    the magnitude knots (for the 1/B of the s' leak); efficiency (2,2) real: e [pump of the channel, pump whose
+    l, V; leak_quadrature (C, 2) complex: (m_1, m_2), V; offset (C,K) complex: o, V; knots_nT (K,):
+    the magnitude knots (for the 1/B of the s' leak); efficiency (2,2) complex: e [pump of the channel, pump whose
     (p.u)^2 it follows]; detuning (2,2,K) real: t [pump of the channel, pump whose p.u it follows,
-    knot]; detuning_law (2,2,2): its (t_0, t_2), from which a fit sets `detuning`. Omitted terms take
-    their ideal values.
+    knot]; detuning_law (2,2,2): its (t_0, t_2), from which a fit sets `detuning`; detuning_shape
+    (2,2): v [pump m of L_m, pump whose (p.u)^2 it follows]. Omitted terms take their ideal values.
     """
 
     pump_axes: np.ndarray      # (2, 3) unit vectors: pump a, pump b
@@ -103,6 +115,7 @@ class PhysicsParameters:
     leak_quadrature: np.ndarray | None = None
     knots_nT: np.ndarray | None = None
     detuning_law: np.ndarray | None = None
+    detuning_shape: np.ndarray | None = None
 
     def __post_init__(self):
         self.pump_axes = np.asarray(self.pump_axes, float)
@@ -119,17 +132,20 @@ class PhysicsParameters:
             if v.shape != shape:
                 raise ValueError(f"physics {name} has shape {v.shape}, expected {shape}")
             setattr(self, name, v)
-        self.leak_quadrature = (np.zeros(shape[0], complex) if self.leak_quadrature is None
+        self.leak_quadrature = (np.zeros((shape[0], len(LEAK_POWERS)), complex) if self.leak_quadrature is None
                                 else np.asarray(self.leak_quadrature, complex))
         self.knots_nT = (np.full(shape[1], LEAK_REFERENCE_NT) if self.knots_nT is None
                          else np.asarray(self.knots_nT, float))
-        if self.leak_quadrature.shape != (shape[0],) or self.knots_nT.shape != (shape[1],):
-            raise ValueError("physics leak_quadrature must have shape (C,) and knots_nT (K,)")
-        self.efficiency = np.zeros((2, 2)) if self.efficiency is None else np.asarray(self.efficiency, float)
+        if self.leak_quadrature.shape != (shape[0], len(LEAK_POWERS)) or self.knots_nT.shape != (shape[1],):
+            raise ValueError(f"physics leak_quadrature must have shape (C, {len(LEAK_POWERS)}) and knots_nT (K,)")
+        self.efficiency = (np.zeros((2, 2), complex) if self.efficiency is None
+                           else np.asarray(self.efficiency, complex))
         self.detuning_law = (np.zeros((2, 2, 2)) if self.detuning_law is None
                              else np.asarray(self.detuning_law, float))
-        if self.detuning_law.shape != (2, 2, 2):
-            raise ValueError("physics detuning_law must have shape (2, 2, 2)")
+        self.detuning_shape = (np.zeros((2, 2)) if self.detuning_shape is None
+                               else np.asarray(self.detuning_shape, float))
+        if self.detuning_law.shape != (2, 2, 2) or self.detuning_shape.shape != (2, 2):
+            raise ValueError("physics detuning_law must have shape (2, 2, 2) and detuning_shape (2, 2)")
         self.detuning = (detuning_from_law(self.detuning_law, self.knots_nT) if self.detuning is None
                          else np.asarray(self.detuning, float))
         if self.efficiency.shape != (2, 2) or self.detuning.shape != (2, 2, shape[1]):
@@ -165,8 +181,16 @@ class PhysicsParameters:
         return {"pu": pu, "qu": qu, "c": c, "s": s, "c_leak": cx, "s_leak": sx}
 
     def longitudinal(self, pu: np.ndarray) -> np.ndarray:
-        """Return (N, 2): each pump's longitudinal drive (p.u)(1 + e (p.u)^2), its own efficiency included."""
-        return pu * (1.0 + np.diag(self.efficiency)[None, :] * pu ** 2)
+        """Return L (N, 2): each pump's longitudinal drive (p_m.u)(1 + sum_m' v[m, m'] (p_m'.u)^2) from p.u (N,2)."""
+        return pu * (1.0 + (pu ** 2) @ self.detuning_shape.T)
+
+    def longitudinal_gradient(self, pu: np.ndarray) -> np.ndarray:
+        """Return dL_m/d(p_n.u) (N, 2 [m], 2 [n]) from p.u (N,2)."""
+        v = self.detuning_shape
+        out = 2.0 * pu[:, :, None] * v[None, :, :] * pu[:, None, :]          # pu_m * 2 v[m,n] pu_n
+        for m in range(2):
+            out[:, m, m] += 1.0 + (pu ** 2) @ v[m]
+        return out
 
     def detuning_terms(self, pu: np.ndarray) -> np.ndarray:
         """Return x (N, 2, K): each pump's relative detuning at every knot, from p.u (N,2)."""
@@ -187,11 +211,13 @@ class PhysicsParameters:
         """Return Z (N, C, K) complex V: the physics response at u (N,3) with each knot's parameters."""
         geo = self.geometry(u)
         own = self.gains[None] * geo["c"][:, :, None] + self.quadrature[None] * geo["s"][:, :, None]
-        inv_b = LEAK_REFERENCE_NT / self.knots_nT                          # (K,)
         inner = (self.resonance_factor(geo["pu"]) * own + self.leak[None] * geo["c_leak"][:, :, None]
-                 + (self.leak_quadrature[:, None] * inv_b[None, :])[None] * geo["s_leak"][:, :, None]
-                 + self.offset[None])
+                 + self.s_leak_per_knot()[None] * geo["s_leak"][:, :, None] + self.offset[None])
         return self.efficiency_factor(geo["pu"])[:, :, None] * inner
+
+    def s_leak_per_knot(self) -> np.ndarray:
+        """Return the s' leak coefficient m(B) (C, K) complex V at every knot."""
+        return self.leak_quadrature @ leak_law(self.knots_nT)
 
     def predict(self, u: np.ndarray, s_basis: np.ndarray) -> np.ndarray:
         """Return Z (N, C) complex V at u (N,3) with magnitude-basis weights s_basis (N, K)."""
@@ -216,7 +242,7 @@ class PhysicsParameters:
             self.leak[other] *= -1                 # c' and s' flip with p'
             self.leak_quadrature[other] *= -1
             self.detuning[:, index, :] *= -1       # x follows p.u
-            self.detuning_law[:, index, :] *= -1
+            self.detuning_law[:, index, :] *= -1     # (L_m flips with p_m; v is even)
         else:
             self.probe_axes[index] *= -1
             mine = qi == index

@@ -2,8 +2,8 @@
 
 The per-knot coefficients (a, b, l, o of every channel) enter linearly: for given axes, pump
 efficiencies and detunings they are one least-squares solve per channel. Only the nonlinear
-parameters are iterated: two tangent-plane angles per beam, the pump efficiencies (2 x 2) and
-the detuning law (2 x 2 pairs t_0, t_2). Levenberg-Marquardt on the projected residual with the Jacobian of
+parameters are iterated: two tangent-plane angles per beam, the pump efficiencies (2 x 2 complex),
+the detuning law (2 x 2 pairs t_0, t_2) and its even shape (2 x 2). Levenberg-Marquardt on the projected residual with the Jacobian of
 Kaufman (BIT 15, 1975; Golub and Pereyra, Inverse Problems 19, 2003), re-centred on the sphere
 after every step. Its Gauss-Newton matrix is the Fisher information of the nonlinear parameters
 with the linear ones eliminated, so its inverse scaled by the whitened residual is their covariance.
@@ -16,12 +16,15 @@ from dataclasses import dataclass
 import numpy as np
 from scipy.stats import chi2
 
-from fieldvane.estimator.physics import (DETUNING_REFERENCE_NT, LEAK_REFERENCE_NT, PhysicsParameters,
-                                         channel_indices, detuning_from_law)
-from fieldvane.estimator.sphere import exp_map, tangent_basis
+from fieldvane.estimator.physics import (DETUNING_REFERENCE_NT, LEAK_POWERS, PhysicsParameters, channel_indices,
+                                         detuning_from_law, leak_law)
+from fieldvane.estimator.sphere import exp_map, log_map, tangent_basis
 
 N_LINEAR_TERMS = 4        # a (c), b (s), l (c'), o (1) per channel and knot; plus one m (s') per channel
 LEAK_TEST_ALPHA = 1e-3    # significance level for keeping the s' leak term
+JACKKNIFE_MIN_LEVELS = 3  # fewer levels give too few leave-one-out fits for a spread
+JACKKNIFE_ITERATIONS = 12 # restarted from the full solution, a few steps suffice
+JACKKNIFE_ALPHA = 0.05    # the jackknife replaces the covariance when it is larger at this level (chi-square)
 RANK_TOLERANCE = 1e-10    # relative size of a QR diagonal below which the design is rank-deficient
 RANK_MESSAGE = ("the scan cannot separate the channel terms (rank-deficient design); "
                 "it needs more directions at every magnitude")
@@ -42,16 +45,45 @@ class PhysicsFit:
     noise_std: np.ndarray         # (C,) per-component residual std used for whitening, V
     iterations: int
     inflation: float              # covariance factor for correlated residuals (AR(1), >= 1)
+    jackknife: np.ndarray | None = None   # (n_beams, 2, 2) delete-one-level covariance, rad^2
+
+    def covariance_std_deg(self) -> np.ndarray:
+        """Return each beam's 1-sigma angle from the fit's covariance alone, degrees (pumps, probes)."""
+        n_beams = 2 + self.params.probe_axes.shape[0]
+        return np.array([np.degrees(np.sqrt(max(np.trace(self.beam_covariance(b)), 0.0)))
+                         for b in range(n_beams)])
+
+    def jackknife_std_deg(self) -> np.ndarray | None:
+        """Return each beam's 1-sigma angle from the delete-one-level jackknife, degrees, or None."""
+        if self.jackknife is None:
+            return None
+        return np.degrees(np.sqrt(np.maximum(np.trace(self.jackknife, axis1=1, axis2=2), 0.0)))
+
+    def misfit_beams(self) -> np.ndarray:
+        """Return True per beam where the jackknife spread exceeds the covariance (chi-square test at JACKKNIFE_ALPHA).
+
+        Under a correct model the jackknife trace is about the covariance trace times a chi-square
+        with 2(K-1) degrees of freedom over 2(K-1) (scipy.stats.chi2 gives the limit).
+        """
+        jack = self.jackknife_std_deg()
+        if jack is None:
+            return np.zeros(2 + self.params.probe_axes.shape[0], bool)
+        dof = 2 * (self.params.n_knots - 1)
+        return jack ** 2 > self.covariance_std_deg() ** 2 * chi2.isf(JACKKNIFE_ALPHA, dof) / dof
 
     def beam_covariance(self, beam: int) -> np.ndarray:
         """Return the 2x2 covariance (rad^2) of beam `beam` (pumps a, b, then probes) on beam_frames[beam]."""
         return self.covariance[2 * beam:2 * beam + 2, 2 * beam:2 * beam + 2]
 
     def direction_std_deg(self) -> np.ndarray:
-        """Return each beam's 1-sigma axis angle sqrt(trace of its 2x2 covariance), degrees (pumps, probes)."""
-        n_beams = 2 + self.params.probe_axes.shape[0]
-        return np.array([np.degrees(np.sqrt(max(np.trace(self.beam_covariance(b)), 0.0)))
-                         for b in range(n_beams)])
+        """Return each beam's 1-sigma axis angle sqrt(trace of its 2x2 covariance), degrees (pumps, probes).
+
+        The covariance is the fit's, or the delete-one-level jackknife's where that is significantly
+        larger (misfit_beams): the axis then moves with the scanned magnitudes more than noise explains.
+        """
+        std = self.covariance_std_deg()
+        jack = self.jackknife_std_deg()
+        return std if jack is None else np.where(self.misfit_beams(), jack, std)
 
     def parameter_std(self) -> np.ndarray:
         """Return the 1-sigma of every nonlinear parameter (n_theta,), in their own units."""
@@ -77,13 +109,15 @@ class _DenseLinear:
 
 
 class _BlockLinear:
-    """The same for a stepped scan: one (n_k, 4) block per magnitude level plus an optional global column.
+    """The same for a stepped scan: one (n_k, m) block per magnitude level plus a few global columns.
 
     Small per-level factorizations keep every product small (and single-threaded in BLAS), and
-    cost K times less than one factorization of the whole (N, 4K) design.
+    cost K times less than one factorization of the whole (N, mK) design. The first 4 columns of
+    every block are the physics terms whose coefficients are returned; further ones are only
+    projected out.
     """
 
-    def __init__(self, blocks: list, terms: np.ndarray, column: np.ndarray | None):
+    def __init__(self, blocks: list, terms: np.ndarray, columns: np.ndarray | None):
         self.blocks = blocks
         self.factors = []
         for idx in blocks:
@@ -92,34 +126,38 @@ class _BlockLinear:
             if diag.min() <= RANK_TOLERANCE * max(diag.max(), 1e-300):
                 raise PhysicsFitError(RANK_MESSAGE)
             self.factors.append((q, r))
-        self.column = column
-        if column is not None:
-            g = column.astype(complex)
-            for idx, (q, _) in zip(blocks, self.factors):
-                g[idx] = g[idx] - q @ (q.conj().T @ g[idx])
-            self.g_norm = float(np.linalg.norm(g))
-            if self.g_norm <= RANK_TOLERANCE * max(float(np.linalg.norm(column)), 1e-300):
+        self.columns = None if columns is None or columns.shape[1] == 0 else columns.astype(complex)
+        if self.columns is not None:
+            g = self._project_blocks(self.columns)
+            q_g, r_g = np.linalg.qr(g)
+            diag = np.abs(np.diag(r_g))
+            if diag.min() <= RANK_TOLERANCE * max(float(np.abs(self.columns).max()), 1e-300):
                 raise PhysicsFitError(RANK_MESSAGE)
-            self.q_g = g / self.g_norm
+            self.q_g, self.r_g = q_g, r_g
 
-    def coefficients(self, y: np.ndarray) -> np.ndarray:
-        k = len(self.blocks)
-        out = np.zeros(4 * k + (1 if self.column is not None else 0), complex)
-        rest = y
-        if self.column is not None:
-            x_g = (self.q_g.conj() @ y) / self.g_norm
-            out[-1] = x_g
-            rest = y - self.column * x_g
-        for i, (idx, (q, r)) in enumerate(zip(self.blocks, self.factors)):
-            out[i:4 * k:k] = np.linalg.solve(r, q.conj().T @ rest[idx])
-        return out
-
-    def project(self, d: np.ndarray) -> np.ndarray:
+    def _project_blocks(self, d: np.ndarray) -> np.ndarray:
         out = np.array(d, dtype=complex, copy=True)
         for idx, (q, _) in zip(self.blocks, self.factors):
             out[idx] -= q @ (q.conj().T @ out[idx])
-        if self.column is not None:
-            out -= np.multiply.outer(self.q_g, self.q_g.conj() @ out)
+        return out
+
+    def coefficients(self, y: np.ndarray) -> np.ndarray:
+        k = len(self.blocks)
+        n_g = 0 if self.columns is None else self.columns.shape[1]
+        out = np.zeros(4 * k + n_g, complex)
+        rest = y
+        if n_g:
+            x_g = np.linalg.solve(self.r_g, self.q_g.conj().T @ y)
+            out[4 * k:] = x_g
+            rest = y - self.columns @ x_g
+        for i, (idx, (q, r)) in enumerate(zip(self.blocks, self.factors)):
+            out[i:4 * k:k] = np.linalg.solve(r, q.conj().T @ rest[idx])[:4]
+        return out
+
+    def project(self, d: np.ndarray) -> np.ndarray:
+        out = self._project_blocks(d)
+        if self.columns is not None:
+            out -= self.q_g @ (self.q_g.conj().T @ out)
         return out
 
 
@@ -136,11 +174,13 @@ def _level_blocks(s_basis: np.ndarray) -> list | None:
 class _Problem:
     """Data and fixed structure of one fit: directions, magnitude weights, values, channel layout."""
 
-    def __init__(self, u, s_basis, z, channels, weights, fit_efficiency, fit_detuning, knots_nT, leak_quadrature):
+    def __init__(self, u, s_basis, z, channels, weights, fit_efficiency, fit_detuning, knots_nT, leak_terms: int,
+                 extra: np.ndarray | None = None):
         self.u, self.s, self.z = u, s_basis, z
-        self.leak_quadrature = bool(leak_quadrature)
+        self.extra = extra          # (N, X) free per-level columns (higher harmonics) or None
+        self.leak_terms = int(leak_terms)   # how many of the s' leak law's powers are fitted (0, 1 or 2)
         self.knots_nT = np.asarray(knots_nT, float)
-        self.inv_b = s_basis @ (LEAK_REFERENCE_NT / self.knots_nT)   # (N,) B_1/B interpolated like the table
+        self.law = s_basis @ leak_law(self.knots_nT).T                 # (N, powers): (B_1/B)^p, like the table
         self.blocks = _level_blocks(s_basis)
         self.own_knot = np.argmax(s_basis, axis=1)
         self.channels = tuple(channels)
@@ -150,7 +190,7 @@ class _Problem:
         self.w = np.asarray(weights, float)         # (C,) 1/std
         self.fit_efficiency, self.fit_detuning = fit_efficiency, fit_detuning
         self.n_beams = 2 + self.n_probes
-        self.n_theta = 2 * self.n_beams + (4 if fit_efficiency else 0) + (8 if fit_detuning else 0)
+        self.n_theta = 2 * self.n_beams + (8 if fit_efficiency else 0) + (12 if fit_detuning else 0)
         self.law_powers = np.stack([np.ones(self.k), (self.knots_nT / DETUNING_REFERENCE_NT) ** 2])   # (2, K)
 
     def solve(self, phys: PhysicsParameters):
@@ -161,23 +201,25 @@ class _Problem:
         k, n = self.k, self.u.shape[0]
         solvers, resid = [], np.empty_like(self.z)
         for c in range(len(self.channels)):
-            column = eta[:, c] * self.inv_b * geo["s_leak"][:, c] if self.leak_quadrature else None
+            columns = (eta[:, c] * geo["s_leak"][:, c])[:, None] * self.law[:, :self.leak_terms]
             if self.blocks is not None:
                 r_own = rot[np.arange(n), c, self.own_knot]
                 terms = eta[:, c, None] * np.column_stack([r_own * geo["c"][:, c], r_own * geo["s"][:, c],
                                                            geo["c_leak"][:, c], np.ones(n)])
-                lin = _BlockLinear(self.blocks, terms, column)
+                if self.extra is not None:
+                    terms = np.concatenate([terms, self.extra.astype(complex)], axis=1)
+                lin = _BlockLinear(self.blocks, terms, columns)
             else:
                 se = self.s * eta[:, c, None]                                   # (N, K)
                 cols = [se * rot[:, c, :] * geo["c"][:, c, None], se * rot[:, c, :] * geo["s"][:, c, None],
                         se * geo["c_leak"][:, c, None], se.astype(complex)]
-                if column is not None:
-                    cols.append(column[:, None].astype(complex))
+                cols.append(columns.astype(complex))
                 lin = _DenseLinear(np.concatenate(cols, axis=1))
             coef = lin.coefficients(self.z[:, c])
             phys.gains[c], phys.quadrature[c] = coef[:k], coef[k:2 * k]
             phys.leak[c], phys.offset[c] = coef[2 * k:3 * k], coef[3 * k:4 * k]
-            phys.leak_quadrature[c] = coef[4 * k] if self.leak_quadrature else 0.0
+            phys.leak_quadrature[c] = 0.0
+            phys.leak_quadrature[c, :self.leak_terms] = coef[4 * k:4 * k + self.leak_terms]
             resid[:, c] = lin.project(self.z[:, c])
             solvers.append(lin)
         return (geo, eta, rot), solvers, resid
@@ -195,12 +237,12 @@ class _Problem:
         x = phys.detuning_terms(pu)[:, pj, :]                               # (N, C, K)
         hand = phys.handedness[None, :, None]
         own = phys.gains[None] * geo["c"][:, :, None] + phys.quadrature[None] * geo["s"][:, :, None]
-        inv_b = LEAK_REFERENCE_NT / phys.knots_nT
-        sleak = phys.leak_quadrature[:, None] * inv_b[None, :]                # (C, K)
+        sleak = phys.s_leak_per_knot()                                        # (C, K)
         inner = (rot * own + phys.leak[None] * geo["c_leak"][:, :, None] + sleak[None] * geo["s_leak"][:, :, None]
                  + phys.offset[None])
         drdx = -1j * hand / (1.0 + 1j * hand * x) ** 2                       # dR/dx (N, C, K)
         longi = phys.longitudinal(pu)
+        dlong_dpu = phys.longitudinal_gradient(pu)                            # (N, 2, 2)
         d = np.zeros((c_n, n, self.n_theta), complex)                        # d(prediction)/d(theta)
         col = 0
         for beam in range(self.n_beams):
@@ -210,8 +252,8 @@ class _Problem:
                     j, i = pj[ch], qi[ch]
                     if beam < 2:                      # pump `beam` turns along e
                         q = phys.probe_axes[i]
-                        dlong = (1.0 + 3.0 * phys.efficiency[beam, beam] * pu[:, beam] ** 2) * ue
-                        dr = drdx[:, ch, :] * (dlong[:, None] * phys.detuning[j, beam][None, :])
+                        dx = (dlong_dpu[:, :, beam] * ue[:, None]) @ phys.detuning[j]     # (N, K)
+                        dr = drdx[:, ch, :] * dx
                         d_eta = 2.0 * phys.efficiency[j, beam] * pu[:, beam] * ue
                         if j == beam:
                             dc = e @ q - ue * qu[:, i]
@@ -239,13 +281,10 @@ class _Problem:
         if self.fit_efficiency:
             for j in range(2):
                 for m in range(2):
-                    for ch in np.flatnonzero(pj == j):
-                        d[ch, :, col] = np.sum(s * (pu[:, m] ** 2)[:, None] * inner[:, ch, :], axis=1)
-                    if j == m:   # the pump's own efficiency also scales its longitudinal drive
-                        for ch in range(c_n):
-                            dx = phys.detuning[pj[ch], m][None, :] * (pu[:, m] ** 3)[:, None]
-                            d[ch, :, col] += np.sum(s * eta[:, ch, None] * drdx[:, ch, :] * dx * own[:, ch, :], axis=1)
-                    col += 1
+                    for part in (1.0, 1j):                  # real and imaginary part of e[j, m]
+                        for ch in np.flatnonzero(pj == j):
+                            d[ch, :, col] = part * np.sum(s * (pu[:, m] ** 2)[:, None] * inner[:, ch, :], axis=1)
+                        col += 1
         if self.fit_detuning:
             for j in range(2):
                 for m in range(2):
@@ -255,6 +294,13 @@ class _Problem:
                             d[ch, :, col] = np.sum(weight * eta[:, ch, None] * drdx[:, ch, :] * longi[:, m, None]
                                                    * own[:, ch, :], axis=1)
                         col += 1
+            for m in range(2):
+                for mm in range(2):
+                    dl = pu[:, m] * pu[:, mm] ** 2                                  # dL_m / dv[m, mm]
+                    for ch in range(c_n):
+                        dx = dl[:, None] * phys.detuning[pj[ch], m][None, :]
+                        d[ch, :, col] = np.sum(s * eta[:, ch, None] * drdx[:, ch, :] * dx * own[:, ch, :], axis=1)
+                    col += 1
         jac = np.empty((2, n, c_n, self.n_theta))
         for ch in range(c_n):
             proj = qs[ch].project(d[ch])
@@ -272,7 +318,7 @@ class _Problem:
                                 phys.handedness.copy(), phys.channels, phys.quadrature.copy(),
                                 phys.leak.copy(), phys.offset.copy(), phys.efficiency.copy(),
                                 phys.detuning.copy(), phys.leak_quadrature.copy(), phys.knots_nT.copy(),
-                                phys.detuning_law.copy())
+                                phys.detuning_law.copy(), phys.detuning_shape.copy())
         for beam in range(self.n_beams):
             e1, e2 = frames[beam]
             v = delta[2 * beam] * e1 + delta[2 * beam + 1] * e2
@@ -282,11 +328,13 @@ class _Problem:
                 out.probe_axes[beam - 2] = exp_map(out.probe_axes[beam - 2], v)
         col = 2 * self.n_beams
         if self.fit_efficiency:
-            out.efficiency = out.efficiency + delta[col:col + 4].reshape(2, 2)
-            col += 4
+            step = delta[col:col + 8].reshape(2, 2, 2)
+            out.efficiency = out.efficiency + step[..., 0] + 1j * step[..., 1]
+            col += 8
         if self.fit_detuning:
             out.detuning_law = out.detuning_law + delta[col:col + 8].reshape(2, 2, 2)
             out.detuning = detuning_from_law(out.detuning_law, self.knots_nT)
+            out.detuning_shape = out.detuning_shape + delta[col + 8:col + 12].reshape(2, 2)
         return out
 
     def frames(self, phys: PhysicsParameters) -> list:
@@ -327,28 +375,36 @@ def fit_physics(u: np.ndarray, s_basis: np.ndarray, knots_nT: np.ndarray, z: np.
 
     pump0 (2,3), probe0 (P,3): starting axes (within a few degrees); noise_std (C,): starting
     whitening std per channel, V (re-estimated from the residual before the final pass). The s'
-    leak term is kept only when the knots span a factor of at least 2 in |B| (else it cannot be
-    told from a pump-axis turn) and it lowers the whitened residual by more than the chi-square
-    quantile at LEAK_TEST_ALPHA (2C degrees of freedom, scipy.stats.chi2).
+    leak law is fitted only when the knots span a factor of at least 2 in |B| (else it cannot be
+    told from a pump-axis turn) and its first term lowers the whitened residual by more than the
+    chi-square quantile at LEAK_TEST_ALPHA (2C degrees of freedom, scipy.stats.chi2).
     """
     c_n, k = z.shape[1], s_basis.shape[1]
     knots_nT = np.asarray(knots_nT, float)
     phys = PhysicsParameters(np.array(pump0, float), np.array(probe0, float), np.zeros((c_n, k), complex),
                              np.ones(c_n), channels, np.zeros((c_n, k), complex), knots_nT=knots_nT)
     weights = 1.0 / np.asarray(noise_std, float)
-    prob = _Problem(u, s_basis, z, channels, weights, fit_efficiency, fit_detuning, knots_nT, False)
+    prob = _Problem(u, s_basis, z, channels, weights, fit_efficiency, fit_detuning, knots_nT, 0)
     prob.solve(phys)
     phys.handedness = _handedness_from(phys)
     phys, iterations = _fit_reweighted(prob, phys, max_iterations)
-    if k >= 2 and knots_nT.max() >= 2.0 * knots_nT.min():
-        with_q = _Problem(u, s_basis, z, channels, prob.w, fit_efficiency, fit_detuning, knots_nT, True)
-        start = with_q.step(phys, with_q.frames(phys), np.zeros(with_q.n_theta))
-        start.handedness = phys.handedness
-        trial, it = _levenberg_marquardt(with_q, start, max_iterations)
+    # The s' leak law: tried when the knots span a factor 2 in |B| (its first term, 1/B, must not look
+    # like a constant, i.e. a pump-axis turn) and kept when it lowers the residual significantly; then
+    # its second term (1/B^2) too wherever the knots span a factor 4 and hold 3 levels. The second
+    # term is not tested on its own: a weak term left out still pulls the pump axes.
+    eligible = sum(1 for t in range(1, len(LEAK_POWERS) + 1)
+                   if k >= t + 1 and knots_nT.max() >= 2.0 ** t * knots_nT.min())
+    if eligible:
+        one = _Problem(u, s_basis, z, channels, prob.w, fit_efficiency, fit_detuning, knots_nT, 1)
+        trial, it = _levenberg_marquardt(one, _same(phys, one), max_iterations)
         iterations += it
-        gain = prob.cost(prob.solve(phys)[2]) - with_q.cost(with_q.solve(trial)[2])
+        gain = prob.cost(prob.solve(phys)[2]) - one.cost(one.solve(trial)[2])
         if gain > chi2.isf(LEAK_TEST_ALPHA, 2 * c_n):
-            prob, phys = with_q, trial
+            prob, phys = one, trial
+            if eligible >= 2:
+                prob = _Problem(u, s_basis, z, channels, prob.w, fit_efficiency, fit_detuning, knots_nT, eligible)
+                phys, it = _levenberg_marquardt(prob, _same(phys, prob), max_iterations)
+                iterations += it
             phys, it = _fit_reweighted(prob, phys, max_iterations, rounds=1)
             iterations += it
     terms, qs, resid = prob.solve(phys)
@@ -356,7 +412,53 @@ def fit_physics(u: np.ndarray, s_basis: np.ndarray, knots_nT: np.ndarray, z: np.
     jac = prob.jacobian(phys, terms, qs, frames)
     cov = _inverse_psd(jac.T @ jac)
     inflation = _lag1_inflation(resid * prob.w)
-    return PhysicsFit(phys, cov * inflation, frames, resid, 1.0 / prob.w, iterations, inflation)
+    jack = _level_jackknife(prob, phys, frames) if prob.blocks is not None and k >= JACKKNIFE_MIN_LEVELS else None
+    return PhysicsFit(phys, cov * inflation, frames, resid, 1.0 / prob.w, iterations, inflation, jack)
+
+
+def _subset_parameters(phys: PhysicsParameters, keep: np.ndarray) -> PhysicsParameters:
+    """Return a copy of phys restricted to the knots `keep` (indices)."""
+    return PhysicsParameters(phys.pump_axes.copy(), phys.probe_axes.copy(), phys.gains[:, keep].copy(),
+                             phys.handedness.copy(), phys.channels, phys.quadrature[:, keep].copy(),
+                             phys.leak[:, keep].copy(), phys.offset[:, keep].copy(), phys.efficiency.copy(),
+                             phys.detuning[:, :, keep].copy(), phys.leak_quadrature.copy(),
+                             phys.knots_nT[keep].copy(), phys.detuning_law.copy(), phys.detuning_shape.copy())
+
+
+def _level_jackknife(prob: _Problem, phys: PhysicsParameters, frames) -> np.ndarray | None:
+    """Return the delete-one-level jackknife covariance of the beam angles (n_beams, 2, 2), rad^2.
+
+    Each magnitude level is left out in turn and the fit restarted from the full solution; the
+    spread of the axes, (K-1)/K sum (d_k - mean)(d_k - mean)^T (Efron and Stein, Ann. Stat. 9,
+    1981; the delete-a-group form), shows how much they depend on which magnitudes were scanned:
+    no more than the covariance when the physics model holds, more when it misses an effect that
+    changes with |B|.
+    """
+    k_n = prob.k
+    shifts = np.zeros((k_n, prob.n_beams, 2))
+    beams_full = list(phys.pump_axes) + list(phys.probe_axes)
+    for k in range(k_n):
+        keep = np.array([i for i in range(k_n) if i != k])
+        rows = np.concatenate([prob.blocks[i] for i in keep])
+        sub = _Problem(prob.u[rows], prob.s[np.ix_(rows, keep)], prob.z[rows], prob.channels, prob.w,
+                       prob.fit_efficiency, prob.fit_detuning, prob.knots_nT[keep], prob.leak_terms)
+        try:
+            fitted, _ = _levenberg_marquardt(sub, _subset_parameters(phys, keep), JACKKNIFE_ITERATIONS)
+        except PhysicsFitError:
+            return None
+        beams = list(fitted.pump_axes) + list(fitted.probe_axes)
+        for b, (full, new, (e1, e2)) in enumerate(zip(beams_full, beams, frames)):
+            v = log_map(full, new if full @ new >= 0 else -new)
+            shifts[k, b] = (v @ e1, v @ e2)
+    centred = shifts - shifts.mean(axis=0)
+    return (k_n - 1) / k_n * np.einsum("kbi,kbj->bij", centred, centred)
+
+
+def _same(phys: PhysicsParameters, prob: _Problem) -> PhysicsParameters:
+    """Return a copy of phys (for a start in another problem)."""
+    out = prob.step(phys, prob.frames(phys), np.zeros(prob.n_theta))
+    out.handedness = phys.handedness
+    return out
 
 
 def _fit_reweighted(prob: _Problem, phys: PhysicsParameters, max_iterations: int, rounds: int = 2):
@@ -367,7 +469,7 @@ def _fit_reweighted(prob: _Problem, phys: PhysicsParameters, max_iterations: int
         phys, it = _levenberg_marquardt(prob, phys, max_iterations)
         iterations += it
         _, _, resid = prob.solve(phys)
-        n_lin = N_LINEAR_TERMS * k + (1 if prob.leak_quadrature else 0)
+        n_lin = N_LINEAR_TERMS * k + prob.leak_terms
         dof = 2 * (prob.z.shape[0] - n_lin) - prob.n_theta / c_n
         prob.w = 1.0 / np.maximum(np.sqrt(np.sum(np.abs(resid) ** 2, axis=0) / max(dof, 1.0)), 1e-300)
     return phys, iterations

@@ -13,8 +13,9 @@ from __future__ import annotations
 import math
 from dataclasses import dataclass, field
 
+from scipy.special import chdtri
+
 import numpy as np
-from scipy.stats import chi2 as _chi2
 
 from fieldvane.estimator.blind import BLIND_FACTOR, blind_mask, check_factor, median_bound_deg
 from fieldvane.estimator.estimate import Estimate
@@ -340,7 +341,8 @@ class SnapshotSolver:
         has_alt = np.isfinite(alt_d)
 
         flags = np.zeros(n, dtype=np.int64)
-        flags[has_alt & (alt_d < _chi2.ppf(1 - s.ambiguity_alpha, 2))] |= int(F.AMBIGUOUS)
+        # chi-square quantile with 2 dof: chdtri inverts the upper tail (scipy.special: lighter than scipy.stats)
+        flags[has_alt & (alt_d < chdtri(2.0, s.ambiguity_alpha))] |= int(F.AMBIGUOUS)
         flags[blind_mask(sigma, self.median_bound_deg, s.blind_factor)] |= int(F.BLIND)
         flags[np.all(np.abs(zw) < s.low_signal_snr, axis=1)] |= int(F.LOW_SIGNAL)
 

@@ -291,6 +291,7 @@ class RecordingReader:
         self.rows_read = 0
         self.rows_without_probe: dict[int, int] = {}
         self.layout: Layout | None = None
+        self.header_line: int | None = None    # line of the header row, once read
         self._problems = 0
         self._rules: _RowRules | None = None
         self._last_t = -math.inf
@@ -327,6 +328,7 @@ class RecordingReader:
                     self.metadata[k.strip()] = v.strip()
                 continue
             layout = resolve_layout(s.split(","), self.path, lineno)
+            self.header_line = lineno
             break
         if layout is None:
             raise InputError("no header row found (a header naming the columns is required)", self.path)

@@ -15,7 +15,7 @@ from fieldvane.estimator.filter_settings import FilterSettings
 from fieldvane.estimator.flags import EstimateFlag as F
 from fieldvane.estimator.innovation import innovation_loglik
 from fieldvane.estimator import filter_core as core
-from fieldvane.estimator.lockin_noise import WHITE_DIFFERENCE_MEDIAN, difference_median
+from fieldvane.estimator.lockin_noise import second_difference_variance
 from fieldvane.estimator.samples import SampleBlock
 from fieldvane.estimator.sphere import angle_between, normalize, rotation_matrix
 from fieldvane.estimator.tracker import Tracker
@@ -50,37 +50,38 @@ def turning_stream(sensor, sigma, n=3000, seed=5):
 
 
 # ------------------------------------------------------------------------------ the statistic itself
-def ncx2_difference_median(m: int) -> float:
-    """Reference: the median of min(|a - b|^2, |a - c|^2), a, b, c ~ N(0, I_m), by the one-dimensional integral
-    over noncentral chi-square laws (given a, both squared distances are independent ncx2 with m dof and
-    noncentrality |a|^2; scipy.stats.ncx2 and chi2 are the reference library), solved for P = 1/2."""
-    from scipy.optimize import brentq
-    from scipy.stats import chi2, ncx2
-
-    r = chi2.ppf((np.arange(4000) + 0.5) / 4000, m)
-    return float(brentq(lambda s: np.mean(ncx2.sf(s, m, r) ** 2) - 0.5, 1e-9, 10.0 * m + 50.0, xtol=1e-12))
-
-
-@pytest.mark.parametrize("m", [2, 4, 6, 8])
-def test_difference_median_matches_the_ncx2_integral_and_monte_carlo(m):
-    """The tabulated white-noise medians equal the ncx2 integral (scipy); the seeded Monte Carlo used for
-    correlated noise agrees with both at rho = 0 (independent draws: relative standard error ~0.3 %)."""
-    assert WHITE_DIFFERENCE_MEDIAN[m] == pytest.approx(ncx2_difference_median(m), rel=1e-9)
-    rng = np.random.default_rng(m)
-    a, b, c = (rng.normal(size=(400_000, m)) for _ in range(3))
-    mc = np.median(np.minimum(((a - b) ** 2).sum(axis=1), ((a - c) ** 2).sum(axis=1)))
-    assert WHITE_DIFFERENCE_MEDIAN[m] == pytest.approx(mc, rel=0.01)
-    assert difference_median(m, 1e-12, 0.0) == pytest.approx(mc, rel=0.02)
-
-
-def test_correlated_difference_median_against_direct_simulation():
-    """With lock-in-correlated noise (rho1 = 0.9, rho2 = 0.7) the median follows from an AR-free direct
-    simulation of correlated triples (numpy multivariate normal, the reference): within 2 %."""
+@pytest.mark.parametrize("rho1, rho2", [(0.0, 0.0), (0.9074, 0.7151), (0.3, -0.1)])
+def test_second_difference_variance_against_simulated_noise(rho1, rho2):
+    """var(e_k - 2 e_(k-1) + e_(k-2)) / var(e) = 6 - 8 rho1 + 2 rho2, against seeded draws of correlated triples
+    (numpy multivariate normal, the reference): within 2 %."""
     rng = np.random.default_rng(21)
-    cov = np.array([[1.0, 0.9, 0.7], [0.9, 1.0, 0.9], [0.7, 0.9, 1.0]])
-    e = rng.multivariate_normal(np.zeros(3), cov, size=(200_000, 4))            # (N, m = 4, 3)
-    ref = np.median(np.minimum(((e[..., 0] - e[..., 1]) ** 2).sum(axis=1), ((e[..., 0] - e[..., 2]) ** 2).sum(axis=1)))
-    assert difference_median(4, 0.9, 0.7) == pytest.approx(ref, rel=0.02)
+    cov = np.array([[1.0, rho1, rho2], [rho1, 1.0, rho1], [rho2, rho1, 1.0]])
+    e = rng.multivariate_normal(np.zeros(3), cov, size=400_000)
+    assert second_difference_variance(rho1, rho2) == pytest.approx(np.var(e[:, 0] - 2 * e[:, 1] + e[:, 2]), rel=0.02)
+
+
+def test_noise_values_are_median_unbiased_through_a_lock_in_filter():
+    """Through a 4-stage, 5 ms RC filter sampled at 200 Hz (simulated at 20x the rate with scipy.signal.lfilter),
+    the sum over m = 4 components of squared second differences, divided by (6 - 8 rho1 + 2 rho2) times the
+    chi-square median (scipy.stats.chi2, reference), has median 1 in units of the output variance."""
+    from scipy.signal import lfilter
+    from scipy.stats import chi2
+
+    from fieldvane.estimator.lockin_noise import autocorrelation
+
+    rng = np.random.default_rng(5)
+    over, tau, fs = 20, 0.005, 200.0
+    dt = 1.0 / (fs * over)
+    a = math.exp(-dt / tau)
+    x = rng.normal(size=(4, 200_000 * over // 20))
+    for _ in range(4):
+        x = lfilter([1 - a], [1, -a], x, axis=1)
+    y = x[:, 2000::over]
+    y /= y.std(axis=1, keepdims=True)
+    rho1, rho2 = autocorrelation(np.array([1.0, 2.0]) / fs, tau, 4)
+    d2 = ((y[:, 2:] - 2 * y[:, 1:-1] + y[:, :-2]) ** 2).sum(axis=0)
+    ratio = d2 / (second_difference_variance(rho1, rho2) * chi2.median(4))
+    assert np.median(ratio) == pytest.approx(1.0, abs=0.05)
 
 
 class _Level:
@@ -96,10 +97,11 @@ class _Level:
         self.fs = np.zeros(core.N_FSTATE)
         self.fs[core.S_NEXT_PUSH] = 1e18
         self.learning = learning
+        self.probe_state = np.zeros((1, 4), np.int64)
 
     def push(self, value):
         core._push_noise(0, float(value), self.learning, self.short, self.short_sorted, self.long, self.long_sorted,
-                         self.pos, self.baseline, self.ratio, self.cfg, 0.0, self.fs)
+                         self.pos, self.baseline, self.ratio, self.cfg, 0.0, self.fs, self.probe_state)
         return float(self.ratio[0])
 
 
@@ -112,13 +114,17 @@ def test_noise_level_is_median_unbiased_and_follows_a_rise():
     y = rng.normal(size=(3000, m))
     y[2000:] *= 10.0
     ratios = []
+    from scipy.stats import chi2
+
     for k in range(2, y.shape[0]):
-        d = min(((y[k] - y[k - 1]) ** 2).sum(), ((y[k] - y[k - 2]) ** 2).sum()) / WHITE_DIFFERENCE_MEDIAN[m]
+        d = ((y[k] - 2 * y[k - 1] + y[k - 2]) ** 2).sum() / (6.0 * chi2.median(m))
         ratios.append(level.push(d))
     ratios = np.array(ratios)
-    calm, noisy = ratios[:1998], ratios[2004:]          # index k - 2
+    calm, noisy = ratios[:1998], ratios[2005:]          # index k - 2
     assert np.mean(calm == 1.0) > 0.99
-    assert np.all(noisy > 25.0) and 70.0 < np.median(noisy) < 140.0
+    # (neighbouring second differences share samples, so a 9-value median has fewer independent values and
+    # dips lower now and then than one of independent values would)
+    assert noisy.min() > 15.0 and 70.0 < np.median(noisy) < 140.0, (noisy.min(), np.argmin(noisy))
 
 
 def test_noise_level_median_threshold_cap_and_baseline_against_numpy():
@@ -159,7 +165,7 @@ def test_noise_burst_is_tracked_honestly(two_probe, one_probe, n_probes):
     assert np.all(rec.flags[burst[:3]] & F.GATED)                   # the first samples of the burst
     assert 12.0 < np.median(rec.noise_scale[burst]) < 20.0           # sqrt(226) = 15.03
     calm = np.r_[200:990, 1815:3000]
-    assert np.mean(rec.flags[calm] & F.NOISY > 0) < 0.01
+    assert np.mean(rec.flags[calm] & F.NOISY > 0) < 0.02
     assert np.allclose(tracker.noise_baseline, 1.0, atol=0.1)         # the stream's own normal level
     assert np.mean(err[calm] < 2 * rec.sigma_deg[calm]) > 0.95
 
@@ -231,7 +237,8 @@ def test_direction_step_inside_a_burst_is_still_reacquired(two_probe, one_probe,
 def test_single_spikes_are_gated_inside_and_outside_a_burst(two_probe):
     """Lone spikes of 80 calibrated sigma are rejected (the spiked probe is left out, or the whole sample gated),
     and the noise level ignores them: NOISY stays off but for the rare brief false alarms of a calm stream (a
-    9-value median of white noise above 2.5 times its baseline, well under 1%)."""
+    9-value median of noise values above 2.5 times its baseline; neighbouring values share lock-in samples,
+    so fewer than 9 are independent: under 2 %)."""
     sensor, cal, sigma = two_probe
     blk, u = turning_stream(sensor, sigma)
     rng = np.random.default_rng(12)
@@ -244,7 +251,7 @@ def test_single_spikes_are_gated_inside_and_outside_a_burst(two_probe):
     left_out = (rec.flags[spikes] & F.TRACKING) > 0
     assert np.all(left_out | (rec.flags[spikes] & F.GATED > 0))
     assert np.all(rec.probes_used[spikes][left_out] == 3 - spiked_probe[left_out])
-    assert rec.noise_scale.max() < 2.0 and np.mean(rec.flags & F.NOISY > 0) < 0.01
+    assert rec.noise_scale.max() < 2.0 and np.mean(rec.flags & F.NOISY > 0) < 0.02
     assert errors_deg(rec, u)[1:].max() < 0.3
 
 

@@ -7,14 +7,23 @@ import time
 
 DESCRIPTION = """Estimate field directions from a recording CSV or a raw capture folder.
 
-INPUT is a recording CSV (DESIGN columns), or a capture folder / capture file written by
-`fieldvane run --capture` (replayed byte for byte through the same decoder, so the estimates
-equal the live run's). Tracking (the extended Kalman filter) is the default; `--mode snapshot`
-solves every sample on its own with the lookup-table inverse.
+INPUT is a recording CSV (docs/recording_format.md), or a capture folder / capture file written by
+`fieldvane run --capture` (replayed byte for byte through the same decoder; each run of a capture
+gets a fresh tracker, as it had live, so the estimates equal the live run's). Tracking (the extended
+Kalman filter) is the default; `--mode snapshot` solves every sample on its own with the lookup-table
+inverse.
 
-The output is the estimates CSV: t, ux, uy, uz, b_nT, bx_nT, by_nT, bz_nT, sigma_deg, flags,
-then extra columns (nis, nis_dof, b_a_nT, b_b_nT, bound_deg, ...). The lookup table is cached
-beside the calibration in .fieldvane-tables/.
+A recording may hold fewer probes than the calibration, or a probe's fields may be empty for a while:
+each estimate uses the probes present (extra column probes_used: 1 = probe 1, 2 = probe 2, 3 = both).
+The lock-in's filter (time constant, order) is read from the recording's metadata lines when the
+filter settings do not give it: correlated samples are then weighted honestly and the lock-in's
+delay is removed from t.
+
+The output is the estimates CSV: t, ux, uy, uz, b_nT, bx_nT, by_nT, bz_nT, sigma_deg, flags, then
+extra columns (nis, nis_dof, b_a_nT, b_b_nT, bound_deg, noise_scale, probes_used, ...; see
+docs/estimates_columns.md). The output's format follows its suffix (.csv, .jsonl, .nmea); --out adds
+more outputs with the grammar of `run --out`. The lookup table is cached beside the calibration in
+.fieldvane-tables/. An existing output is refused unless --force; an input is never overwritten.
 
 examples:
   fieldvane replay rec.csv -c cal.json -o est.csv
@@ -22,22 +31,27 @@ examples:
   fieldvane replay rec.csv -c cal.json -o snap.csv --mode snapshot --gain-free
 """
 
+CHUNK = 8192     # samples of a capture estimated together
+
 
 def add_arguments(parser) -> None:
     """Register replay's options."""
     parser.add_argument("input", help="recording CSV, capture folder or capture file")
     parser.add_argument("-c", "--calibration", required=True, help="calibration JSON from `fieldvane calibrate`")
-    parser.add_argument("-o", "--output", required=True, help="estimates CSV to write")
+    parser.add_argument("-o", "--output", required=True,
+                        help="estimates file to write (.csv, .jsonl or .nmea; CSV for other suffixes)")
+    parser.add_argument("--out", action="append", default=[], metavar="SINK",
+                        help="a further output with the grammar of `run --out` (repeatable)")
     parser.add_argument("--mode", choices=("track", "snapshot"), default="track",
                         help="track: extended Kalman filter (default); snapshot: each sample on its own")
     parser.add_argument("--filter", help="filter settings TOML (see docs/config_files.md); defaults otherwise")
     parser.add_argument("--gain-free", action="store_true",
-                        help="treat each probe's common gain as unknown (unstable optical power)")
+                        help="snapshot mode: treat each probe's common gain as unknown (unstable optical power)")
     parser.add_argument("--readouts", action="store_true",
                         help="add demodulated phases (deg) and amplitude ratios as extra columns")
     parser.add_argument("--input-format", choices=("binary", "csv"),
                         help="format of a capture that does not record it")
-    parser.add_argument("--force", action="store_true", help="overwrite the output file if it exists")
+    parser.add_argument("--force", action="store_true", help="replace the output file if it exists")
     parser.add_argument("--no-progress", action="store_true", help="no progress bar")
 
 
@@ -56,8 +70,76 @@ def _is_capture(path) -> bool:
     return head.startswith(CAPTURE_MAGIC)
 
 
+class _Outputs:
+    """The estimates file (fast block writer for CSV, a sink otherwise) plus any --out sinks."""
+
+    def __init__(self, path, specs, force):
+        from pathlib import Path
+
+        from fieldvane.io.estimates_csv import EstimatesWriter
+        from fieldvane.io.sinks import FILE_SUFFIXES
+
+        self.path = Path(path)
+        fmt = FILE_SUFFIXES.get(self.path.suffix.lower(), "csv")
+        self.writer = EstimatesWriter(self.path) if fmt == "csv" else None
+        self.sinks = []
+        self._specs = ([] if fmt == "csv" else [f"{fmt}:file:{self.path}"]) + list(specs)
+        self._force = force
+
+    def _open_sinks(self, extras):
+        from fieldvane.io.sinks import open_sink
+
+        for spec in self._specs:
+            self.sinks.append(open_sink(spec, extras))
+        self._specs = []
+
+    def write_record(self, record):
+        """Write one track record (arrays)."""
+        from fieldvane.io.estimates_csv import estimate_columns
+
+        if len(record) == 0:
+            return
+        extras = record.extra_columns()
+        if self._specs:
+            self._open_sinks(list(extras))
+        if self.writer is not None:
+            self.writer.write_columns(estimate_columns(record.t, record.u, record.b_nT, record.sigma_deg,
+                                                       record.flags, extras))
+        if self.sinks:
+            for est in record.estimates():
+                row = est.row()
+                for sink in self.sinks:
+                    sink.emit_wait(row, timeout=60.0)
+
+    def write_estimates(self, estimates):
+        """Write Estimate objects (snapshot mode)."""
+        if not estimates:
+            return
+        if self._specs:
+            self._open_sinks(list(estimates[0].extras))
+        if self.writer is not None:
+            self.writer.write_estimates(estimates)
+        for sink in self.sinks:
+            for est in estimates:
+                sink.emit_wait(est.row(), timeout=60.0)
+
+    def close(self, ok: bool):
+        from fieldvane.io.sinks import close_sinks
+
+        if self._specs:
+            self._open_sinks([])
+        if self.writer is not None:
+            if ok:
+                self.writer.close()
+            else:                          # a failed replay leaves no partial file behind
+                failure = RuntimeError("replay failed")
+                self.writer.__exit__(type(failure), failure, None)
+        if self.sinks and not close_sinks(self.sinks, 30.0):
+            print("warning: some outputs did not finish writing in time", file=sys.stderr)
+
+
 def run(args) -> int:
-    """Replay and write the estimates CSV; returns the exit code."""
+    """Replay and write the estimates; returns the exit code."""
     from collections import Counter
     from pathlib import Path
 
@@ -66,15 +148,16 @@ def run(args) -> int:
     from fieldvane.estimator.tracker import Tracker
     from fieldvane.io.calfile import load_calibration
     from fieldvane.io.errors import InputError
-    from fieldvane.io.estimates_csv import EstimatesWriter
+    from fieldvane.io.estimation import (counters_table, health_warnings, noise_line, probe_use_line, resets_lines,
+                                         sample_rate_from, settings_for_stream)
     from fieldvane.io.filterfile import read_filter_settings
+    from fieldvane.io.outputs import check_output
     from fieldvane.io.table_cache import cache_dir_for, load_or_build_table
 
-    out = Path(args.output)
-    if out.exists() and not args.force:
-        raise InputError("output exists (use --force to overwrite)", str(out))
     if not Path(args.input).exists():
         raise InputError("no such file or folder", args.input)
+    out = check_output(args.output, inputs=[args.input, args.calibration, args.filter], force=args.force,
+                       option="--output")
     cal = load_calibration(args.calibration)
     settings = read_filter_settings(args.filter) if args.filter else None
     table, info = load_or_build_table(cal, cache_dir_for(args.calibration))
@@ -83,47 +166,127 @@ def run(args) -> int:
         print(f"lookup table: {table.size} directions, built in {info.build_seconds:.2f} s, "
               f"{info.size_bytes / 1024:.0f} KiB ({where})", file=sys.stderr)
     solver = SnapshotSolver.from_calibration(cal, table, gain_free=args.gain_free)
+    track = args.mode == "track"
 
     start = time.perf_counter()
-    flag_words: Counter = Counter()    # flags value -> samples; split into bits once at the end
-    with EstimatesWriter(out) as writer:
-        def emit(est):
-            writer.write(est)
-            flag_words[int(est.flags)] += 1
+    flag_words: Counter = Counter()     # flags value -> samples; split into bits once at the end
+    probe_sets: Counter = Counter()
+    trackers = []
+    capture_lines: list[str] = []
+    warnings: list[str] = []
+    outputs = _Outputs(out, args.out, args.force)
+    ok = False
+    try:
+        def note(flags, probes):
+            flag_words.update(flags.tolist())
+            probe_sets.update(probes.tolist())
 
-        if args.mode == "track":
-            tracker = Tracker(cal, settings, solver.initiate, report_channels=args.readouts)
         if _is_capture(args.input):
-            from fieldvane.io.live import frames_from_capture
+            from fieldvane.io.live import capture_problem_lines, runs_from_capture
 
             decoder_counters: dict = {}
-            step = tracker.step if args.mode == "track" else solver.solve_sample
-            for sample in _progress(frames_from_capture(args.input, args.input_format, counters=decoder_counters),
-                                    None, args.no_progress):
-                emit(step(sample))
+            capture_counters: dict = {}
+            cap_warnings: list[str] = []
+            for _run_id, samples in runs_from_capture(args.input, args.input_format, counters=decoder_counters,
+                                                      capture_counters=capture_counters, warnings=cap_warnings):
+                tracker = Tracker(cal, settings, solver.initiate, report_channels=args.readouts) if track else None
+                trackers.append(tracker)
+                for batch in _batches(_progress(samples, None, args.no_progress), CHUNK):
+                    if track:
+                        rec = tracker.step_record(batch)
+                        outputs.write_record(rec)
+                        note(rec.flags, rec.probes_used)
+                    else:
+                        ests = [solver.solve_sample(s) for s in batch]
+                        outputs.write_estimates(ests)
+                        note(_flags_of(ests), _probes_of(ests))
             print("capture decoder: " + ", ".join(f"{k} {v}" for k, v in decoder_counters.items()), file=sys.stderr)
+            capture_lines = capture_problem_lines(capture_counters, cap_warnings)
         else:
-            from fieldvane.io.recording import RecordingReader
             from fieldvane.estimator.snapshot import solve_block
+            from fieldvane.io.recording import RecordingReader
 
             reader = RecordingReader(args.input)
+            tracker = None
             for block in _progress(reader, "chunks", args.no_progress):
-                ests = tracker.run(block) if args.mode == "track" else solve_block(solver, block)
-                for est in ests:
-                    emit(est)
-            for w in reader.warnings:
-                print(f"warning: {w}", file=sys.stderr)
+                if tracker is None and track:
+                    _check_channels(block.channels, cal, args.input, reader)
+                    stream = settings_for_stream(settings, reader.metadata, args.input)
+                    tracker = Tracker(cal, stream, solver.initiate, report_channels=args.readouts,
+                                      sample_rate_hz=sample_rate_from(reader.metadata, args.input))
+                    trackers.append(tracker)
+                elif not track and not probe_sets:
+                    _check_channels(block.channels, cal, args.input, reader)
+                if track:
+                    rec = tracker.run_arrays(block)
+                    outputs.write_record(rec)
+                    note(rec.flags, rec.probes_used)
+                else:
+                    ests = solve_block(solver, block)
+                    outputs.write_estimates(ests)
+                    note(_flags_of(ests), _probes_of(ests))
+            warnings += reader.warnings
+        ok = True
+    finally:
+        outputs.close(ok)
     seconds = time.perf_counter() - start
     rows = sum(flag_words.values())
+    for w in warnings:
+        print(f"warning: {w}", file=sys.stderr)
+    for line in capture_lines:
+        print(line, file=sys.stderr)
     counts = {bit: sum(n for word, n in flag_words.items() if word & bit) for bit in EstimateFlag}
     counts = {bit: n for bit, n in counts.items() if n}
     rate = rows / seconds if seconds > 0 else float("inf")
     print(f"replay ({args.mode}): {rows} estimates in {seconds:.2f} s ({rate:,.0f}/s) -> {out}")
+    print(probe_use_line(probe_sets))
     if counts:
         print("flags: " + ", ".join(f"{bit.name} {n}" for bit, n in counts.items()))
-    if args.mode == "track":
-        print(f"tracker: {tracker.counters}")
+    for k, tracker in enumerate(trackers):
+        label = f" (capture run {k + 1} of {len(trackers)})" if len(trackers) > 1 else ""
+        print(noise_line(tracker) + label)
+        print(counters_table(tracker.counters.as_dict(), "tracker" + label + ":"))
+        print("(re)acquisitions:")
+        print("\n".join(resets_lines(tracker.resets)))
+        for w in health_warnings(tracker.counters, tracker.counters.samples):
+            print(f"warning: {w}", file=sys.stderr)
     return 0
+
+
+def _check_channels(channels, cal, path, reader) -> None:
+    """Stop with a message naming file, line and columns when the recording holds no calibrated probe."""
+    from fieldvane.io.errors import InputError
+
+    calibrated = tuple(cal.model.channels)
+    if not any(c in channels for c in calibrated):
+        line = getattr(reader, "header_line", None)
+        wanted = ", ".join(f"x_{c}, y_{c}" for c in calibrated)
+        raise InputError(f"the recording holds none of the calibrated channels (missing columns {wanted}; "
+                         f"it has {', '.join(channels) or 'no lock-in columns'})", str(path), line)
+
+
+def _flags_of(estimates):
+    import numpy as np
+
+    return np.array([int(e.flags) for e in estimates], np.int64)
+
+
+def _probes_of(estimates):
+    import numpy as np
+
+    return np.array([int(e.extras.get("probes_used", 0)) for e in estimates], np.int64)
+
+
+def _batches(iterable, size):
+    """Yield lists of up to `size` items."""
+    batch = []
+    for item in iterable:
+        batch.append(item)
+        if len(batch) >= size:
+            yield batch
+            batch = []
+    if batch:
+        yield batch
 
 
 def _progress(iterable, unit, disabled):
