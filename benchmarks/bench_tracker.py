@@ -24,8 +24,10 @@ from fieldvane.estimator.innovation import innovation_loglik
 from fieldvane.estimator.response import to_real
 from fieldvane.estimator.samples import SampleBlock
 from fieldvane.estimator.sphere import angle_between, normalize, spherical_to_unit, unit_to_spherical
-from fieldvane.estimator.tracker import Tracker, process_noise_static
-from fieldvane.estimator.tracker_model import StateLayout
+from filterpy.common import Q_continuous_white_noise
+
+from fieldvane.estimator import filter_core as core
+from fieldvane.estimator.tracker import Tracker
 from fieldvane.estimator.calibration import fit_calibration
 from synthetic_sensor import make_sensor, scan
 from test_tracker import B0, DT, GridInitiator, make_stream, rotating
@@ -76,6 +78,45 @@ def test_tracker_array_path(benchmark, problem):
     record_rate(benchmark, ("array", which), N_TRACK)
 
 
+@pytest.mark.parametrize("gain_drift", [True, False], ids=["gain-states", "no-drift-states"])
+def test_compiled_step_alone(benchmark, problem, gain_drift):
+    """The compiled core's per-sample step over 100,000 prepared samples (two probes; the default gain states on,
+    and off), without the Python preparation and output assembly around it: microseconds per sample."""
+    cal, block, u, which = problem
+    sensor, _, _ = make_sensor(seed=1, n_probes=2, distortion=[0.0, 0.05][which])
+    n_long = 100_000
+    t = np.arange(n_long) * DT
+    axis, u0 = normalize(np.array([0.3, 1.0, 0.2])), normalize(np.array([1.0, 0.5, 0.7]))
+    ang = np.radians(3.0) * t[:, None]
+    u_long = u0 * np.cos(ang) + np.cross(axis, u0) * np.sin(ang) + axis * (axis @ u0) * (1 - np.cos(ang))
+    long_block = make_stream(sensor, t, u_long, B0, cal.model.noise_std)
+    settings = FilterSettings(gain_drift=gain_drift)
+    prepared = Tracker(cal, settings, truth_initiator(u[0])).prepare(long_block.t, long_block.f, long_block.z,
+                                                                       long_block.channels)
+    n = len(prepared.t)
+
+    def setup():
+        tracker = Tracker(cal, settings, truth_initiator(u[0]), sample_rate_hz=1 / DT)
+        fout, iout = np.empty((n, core.N_FOUT)), np.zeros((n, core.N_IOUT), np.int64)
+        head = tracker.prepare(long_block.t[:2], long_block.f[:2], long_block.z[:2], long_block.channels)
+        tracker._run_prepared(head, fout[:2], iout[:2], long_block.sample)     # the acquisition
+        return (tracker, fout, iout), {}
+
+    def run(tracker, fout, iout):
+        a = tracker._arrays
+        return core.run_filter(*a.kernel_args(), prepared.t, prepared.zw, prepared.segment, prepared.seg_t,
+                               prepared.flags, prepared.restarted, prepared.model_error, tracker._sigma_log, fout,
+                               iout, 2, n)
+
+    stop = benchmark.pedantic(run, setup=setup, rounds=5, iterations=1)
+    assert stop == n
+    if benchmark.stats is not None:
+        us = 1e6 * benchmark.stats.stats.min / n
+        benchmark.extra_info.update(samples=n, us_per_sample=round(us, 3), states=7 if gain_drift else 5)
+        print(f"\n[compiled step, {'gain states' if gain_drift else 'no drift states'}, degree {cal.model.degree}] "
+              f"{us:.2f} us/sample")
+
+
 def test_tracker_step_path(benchmark, problem):
     cal, block, u, which = problem
     samples = [block.sample(i) for i in range(N_TRACK)]
@@ -124,8 +165,12 @@ def baseline_run(cal, block, u0, n, columns):
     polar, azimuth = unit_to_spherical(u0)
     ekf.x = np.array([[polar], [azimuth], [0.0], [0.0], [0.0]])
     ekf.P = np.diag([1e-6, 1e-6] + [math.radians(settings.initial_rate_std_deg_s) ** 2] * 3)
-    # The tracker's process noise without its direction-rate cross term (the chart differs).
-    q, _ = process_noise_static(settings, StateLayout(2, model.n_channels, False, False), DT)
+    # The tracker's process noise without its direction-rate cross term (the chart differs): per axis filterpy's
+    # continuous white-noise model of the rate, plus the angle random walk on the angles.
+    cwn = Q_continuous_white_noise(dim=2, dt=DT, spectral_density=math.radians(settings.rate_random_walk_deg_s_rt_s) ** 2)
+    q = np.zeros((5, 5))
+    q[0, 0] = q[1, 1] = cwn[0, 0] + math.radians(settings.angle_random_walk_deg_rt_s) ** 2 * DT
+    q[2, 2] = q[3, 3] = q[4, 4] = cwn[1, 1]
     ekf.Q = q
     ekf.R = np.diag(model.measurement_noise() ** 2)
 

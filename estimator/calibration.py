@@ -20,6 +20,7 @@ from fieldvane.estimator.constants import CELL_PAIRS, gamma_hz_per_nt, identify_
 from fieldvane.estimator.harmonics import harmonics, n_harmonics
 from fieldvane.estimator.magnitude_basis import MagnitudeBasis
 from fieldvane.estimator.magnitude_error import MagnitudeCheck, check_magnitudes, scan_levels
+from fieldvane.estimator.magnitude_model import MagnitudeModel, fit_magnitude_model
 from fieldvane.estimator.outliers import robust_scale, row_statistic, row_threshold, screen_rows
 from fieldvane.estimator.physics import PhysicsParameters
 from fieldvane.estimator.physics_fit import N_LINEAR_TERMS, PhysicsFitError, fit_physics
@@ -90,6 +91,7 @@ class Calibration:
     correction_rms_V: np.ndarray | None = None    # (C,) sphere RMS of the corrections at the worst knot
     magnitude_check: MagnitudeCheck | None = None
     fit_info: dict = field(default_factory=dict)  # physics-fit diagnostics (iterations, inflation, stds)
+    magnitude_model: MagnitudeModel | None = None  # the loops' frequency errors: corrected |B| and its sigma
 
     @property
     def gammas_hz_per_nt(self) -> np.ndarray:
@@ -454,6 +456,11 @@ def fit_calibration(u: np.ndarray, b_nT: np.ndarray, z: np.ndarray, f: np.ndarra
     cal.warnings = warnings + cal.warnings
     cal.nominal_pump_axes = None if nominal_pumps is None else normalize(nominal_pumps)
     cal.nominal_probe_axes = None if nominal_probes is None else normalize(nominal_probes)
+    # The same usable rows give the frequency loops' errors (the model rejects its own outlier rows).
+    try:
+        cal.magnitude_model = fit_magnitude_model(u, b_nT, f, cal.gammas_hz_per_nt, cal.pump_isotopes, seed=seed)
+    except ValueError as exc:
+        cal.warnings.append(f"no magnitude model ({exc}): |B| is f / gamma, uncorrected")
     return cal
 
 

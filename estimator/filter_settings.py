@@ -110,6 +110,9 @@ class FilterSettings:
     def __post_init__(self):
         for f in fields(self):
             _check_type(f.name, getattr(self, f.name), f.type)
+        for name, limit in UPPER_LIMITS.items():
+            if getattr(self, name) > limit:
+                raise ValueError(f"FilterSettings.{name} must be at most {limit:g} (got {getattr(self, name)!r})")
         positive = ("angle_random_walk_deg_rt_s", "rate_random_walk_deg_s_rt_s", "initial_rate_std_deg_s",
                     "gain_drift_per_rt_s", "initial_gain_std", "phase_drift_deg_rt_s",
                     "initial_phase_std_deg", "measurement_noise_scale", "max_gap_s", "blind_factor",
@@ -211,6 +214,12 @@ class FilterSettings:
     def replace(self, **changes) -> "FilterSettings":
         """Return a validated copy with some settings changed (for tuning)."""
         return dataclasses.replace(self, **changes)
+
+
+# Upper limits where the checks below set none: beyond them no filter makes sense (and counts or products overflow).
+UPPER_LIMITS = {"adaptive_noise_window_samples": 100_001, "lost_after_gated": 10_000_000,
+                "probe_reset_after": 10_000_000, "nis_average_samples": 1e9, "nis_average_limit": 1e6,
+                "calibration_margin": 1e3, "model_error_flag_ratio": 1e6}
 
 
 def _check_type(name: str, value, type_name: str) -> None:

@@ -196,11 +196,9 @@ def _fit_isotope(names, u, b_nT, delta, reference_nT, candidates, seed) -> tuple
             break
         keep = new_keep
     scores: dict[int, float] = {}
-    heldout: dict[int, np.ndarray] = {}
     for d in feasible:
         design = _design(names, d, u, b_nT, reference_nT)
         r = _kfold_residual(design[keep], delta[keep], fold_of[keep], FOLDS)
-        heldout[d] = r
         scores[d] = float(np.sqrt(np.mean(r * r)))
     best = min(scores.values())
     chosen = min(d for d, s in scores.items() if s <= max(best * (1 + DEGREE_TOLERANCE), best + IMMATERIAL_NT))
@@ -344,9 +342,10 @@ class MagnitudeModel:
         """Return the MagnitudeEstimate from frequencies f_hz (N, 2) Hz and directions u (N, 3), sensor frame.
 
         u_cov, the direction's uncertainty: None (exact); a number or (N,) array, the total angular
-        1-sigma in rad (sqrt of the trace of the 2 x 2 tangent covariance, isotropic); or (N, 3, 3)
-        covariances of u in the sensor frame, rad^2 (only the tangent part matters). Rows with a
-        non-finite u use the sphere-mean correction with the sphere spread as its error.
+        1-sigma in rad (sqrt of the trace of the 2 x 2 tangent covariance, taken isotropic: the
+        tracker's sigma_deg in radians); or (N, 3, 3) covariances of u in the sensor frame, rad^2
+        (only the tangent part matters). Rows with a non-finite u or uncertainty use the
+        sphere-mean correction, with the correction's spread over the sphere as its error.
         """
         f = np.atleast_2d(np.asarray(f_hz, float))
         n = f.shape[0]
@@ -355,7 +354,8 @@ class MagnitudeModel:
             norm_u = np.linalg.norm(u, axis=1)
         known_u = np.isfinite(norm_u) & (norm_u > 0)
         u = np.where(known_u[:, None], u / np.where(known_u, norm_u, 1.0)[:, None], 0.0)
-        cov = _direction_covariance(u_cov, u, n)
+        cov, unknown_cov = _direction_covariance(u_cov, u, n)
+        known_u &= ~unknown_cov
         with np.errstate(invalid="ignore", divide="ignore"):
             m = f / self.gammas_hz_per_nt[None, :]
         ok = np.isfinite(m) & (m > 0)
@@ -592,19 +592,25 @@ def _validate(model: MagnitudeModel) -> None:
         raise ValueError(f"magnitude_model.range_nT: expected 0 < low <= high, got {model.range_nT!r}")
 
 
-def _direction_covariance(u_cov, u: np.ndarray, n: int) -> np.ndarray | None:
-    """Return (N, 3, 3) tangent covariances (rad^2) from u_cov (None, sigma, (N,) sigmas or (N, 3, 3))."""
+def _direction_covariance(u_cov, u: np.ndarray, n: int) -> tuple[np.ndarray | None, np.ndarray]:
+    """Return ((N, 3, 3) tangent covariances rad^2 or None, (N,) rows whose uncertainty is unknown) from u_cov.
+
+    u_cov: None, a total angular sigma (rad), (N,) sigmas or (N, 3, 3) covariances; a non-finite
+    entry means the direction's uncertainty is unknown on that row.
+    """
     if u_cov is None:
-        return None
+        return None, np.zeros(n, bool)
     c = np.asarray(u_cov, float)
     if c.ndim == 0 or c.shape == (n,):
         sigma = np.broadcast_to(c, (n,))
         if np.any(sigma < 0):
             raise ValueError("u_cov: angular sigma must be >= 0 rad")
+        unknown = ~np.isfinite(sigma)
         tangent = np.eye(3)[None] - u[:, :, None] * u[:, None, :]
-        return np.where(np.isfinite(sigma), sigma ** 2 / 2, 0.0)[:, None, None] * tangent
+        return np.where(unknown, 0.0, sigma ** 2 / 2)[:, None, None] * tangent, unknown
     if c.shape == (n, 3, 3):
-        return np.where(np.isfinite(c), c, 0.0)
+        unknown = ~np.all(np.isfinite(c), axis=(1, 2))
+        return np.where(unknown[:, None, None], 0.0, c), unknown
     raise ValueError(f"u_cov: expected None, a sigma (rad), ({n},) sigmas or ({n}, 3, 3) covariances, got shape {c.shape}")
 
 
@@ -644,6 +650,8 @@ def fit_magnitude_model(u: np.ndarray, b_nT: np.ndarray, f_hz: np.ndarray, gamma
         raise ValueError("magnitude model: expected u (N, 3), b_nT (N,), f_hz (N, 2), gammas (2,)")
     if np.any(~np.isfinite(g)) or np.any(g <= 0):
         raise ValueError(f"magnitude model: gammas must be positive Hz/nT, got {g.tolist()}")
+    if not (isinstance(max_degree, (int, np.integer)) and 0 <= max_degree <= 10):
+        raise ValueError(f"magnitude model: max_degree must be an integer 0..10, got {max_degree!r}")
     if degree is not None and not (isinstance(degree, (int, np.integer)) and 0 <= degree <= 10):
         raise ValueError(f"magnitude model: degree must be an integer 0..10, got {degree!r}")
     with np.errstate(invalid="ignore"):

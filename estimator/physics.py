@@ -116,6 +116,7 @@ class PhysicsParameters:
     knots_nT: np.ndarray | None = None
     detuning_law: np.ndarray | None = None
     detuning_shape: np.ndarray | None = None
+    detuning_width_shape: np.ndarray | None = None
 
     def __post_init__(self):
         self.pump_axes = np.asarray(self.pump_axes, float)
@@ -144,6 +145,8 @@ class PhysicsParameters:
                              else np.asarray(self.detuning_law, float))
         self.detuning_shape = (np.zeros((2, 2)) if self.detuning_shape is None
                                else np.asarray(self.detuning_shape, float))
+        self.detuning_width_shape = (np.zeros((2, 2)) if self.detuning_width_shape is None
+                                     else np.asarray(self.detuning_width_shape, float))
         if self.detuning_law.shape != (2, 2, 2) or self.detuning_shape.shape != (2, 2):
             raise ValueError("physics detuning_law must have shape (2, 2, 2) and detuning_shape (2, 2)")
         self.detuning = (detuning_from_law(self.detuning_law, self.knots_nT) if self.detuning is None
@@ -192,9 +195,13 @@ class PhysicsParameters:
             out[:, m, m] += 1.0 + (pu ** 2) @ v[m]
         return out
 
+    def detuning_width(self, pu: np.ndarray) -> np.ndarray:
+        """Return (N, 2): the even factor 1 + sum_m y[j, m] (p_m.u)^2 of each pump j's detuning (its line width)."""
+        return 1.0 + (pu ** 2) @ self.detuning_width_shape.T
+
     def detuning_terms(self, pu: np.ndarray) -> np.ndarray:
         """Return x (N, 2, K): each pump's relative detuning at every knot, from p.u (N,2)."""
-        return np.einsum("nm,jmk->njk", self.longitudinal(pu), self.detuning)
+        return np.einsum("nm,jmk->njk", self.longitudinal(pu), self.detuning) * self.detuning_width(pu)[:, :, None]
 
     def efficiency_factor(self, pu: np.ndarray) -> np.ndarray:
         """Return eta (N, C): each channel's efficiency factor 1 + sum_m e[pump, m] (p_m.u)^2 from p.u (N,2)."""

@@ -18,13 +18,15 @@ from scipy.stats import chi2
 
 from fieldvane.estimator.physics import (DETUNING_REFERENCE_NT, LEAK_POWERS, PhysicsParameters, channel_indices,
                                          detuning_from_law, leak_law)
-from fieldvane.estimator.sphere import exp_map, log_map, tangent_basis
+from fieldvane.estimator.sphere import exp_map, tangent_basis
 
 N_LINEAR_TERMS = 4        # a (c), b (s), l (c'), o (1) per channel and knot; plus one m (s') per channel
 LEAK_TEST_ALPHA = 1e-3    # significance level for keeping the s' leak term
 JACKKNIFE_MIN_LEVELS = 3  # fewer levels give too few leave-one-out fits for a spread
-JACKKNIFE_ITERATIONS = 12 # restarted from the full solution, a few steps suffice
 JACKKNIFE_ALPHA = 0.05    # the jackknife replaces the covariance when it is larger at this level (chi-square)
+DEBUG = False
+PRIOR_STD = 1.0           # weak prior on efficiency and detuning parameters (dimensionless)
+COST_TOLERANCE = 1e-3     # LM stops when the whitened chi-square falls by less than this
 RANK_TOLERANCE = 1e-10    # relative size of a QR diagonal below which the design is rank-deficient
 RANK_MESSAGE = ("the scan cannot separate the channel terms (rank-deficient design); "
                 "it needs more directions at every magnitude")
@@ -190,8 +192,13 @@ class _Problem:
         self.w = np.asarray(weights, float)         # (C,) 1/std
         self.fit_efficiency, self.fit_detuning = fit_efficiency, fit_detuning
         self.n_beams = 2 + self.n_probes
-        self.n_theta = 2 * self.n_beams + (8 if fit_efficiency else 0) + (12 if fit_detuning else 0)
+        self.n_theta = 2 * self.n_beams + (8 if fit_efficiency else 0) + (16 if fit_detuning else 0)
         self.law_powers = np.stack([np.ones(self.k), (self.knots_nT / DETUNING_REFERENCE_NT) ** 2])   # (2, K)
+        # A weak prior (std PRIOR_STD) on the dimensionless efficiency and detuning parameters keeps them
+        # bounded where the scan cannot see them (a detuning shape when there is no detuning); it is
+        # negligible wherever the data determine them.
+        self.prior = np.zeros(self.n_theta)
+        self.prior[2 * self.n_beams:] = 1.0 / PRIOR_STD
 
     def solve(self, phys: PhysicsParameters):
         """Solve the linear coefficients in place; return ((geo, eta, R), solver per channel, residual (N,C))."""
@@ -224,93 +231,136 @@ class _Problem:
             solvers.append(lin)
         return (geo, eta, rot), solvers, resid
 
-    def cost(self, resid) -> float:
-        return float(np.sum(np.abs(resid * self.w) ** 2))
+    def values(self, phys: PhysicsParameters) -> np.ndarray:
+        """Return the current nonlinear parameters (n_theta,) with zeros for the beams (they are re-centred)."""
+        out = np.zeros(self.n_theta)
+        col = 2 * self.n_beams
+        if self.fit_efficiency:
+            out[col:col + 8] = np.stack([phys.efficiency.real, phys.efficiency.imag], axis=-1).ravel()
+            col += 8
+        if self.fit_detuning:
+            out[col:col + 8] = phys.detuning_law.ravel()
+            out[col + 8:col + 12] = phys.detuning_shape.ravel()
+            out[col + 12:col + 16] = phys.detuning_width_shape.ravel()
+        return out
+
+    def cost(self, resid, phys: PhysicsParameters) -> float:
+        """Return the whitened sum of squares plus the prior's."""
+        return float(np.sum(np.abs(resid * self.w) ** 2) + np.sum((self.values(phys) * self.prior) ** 2))
+
+    def at_rows(self, v: np.ndarray) -> np.ndarray:
+        """Return a per-knot array (..., K) as seen by each row: (N, ..., 1) at the row's own knot for a
+        stepped scan (whose rows sit at knots), else (1, ..., K) for the magnitude-weight sum."""
+        if self.blocks is None:
+            return v[None]
+        return np.moveaxis(v[..., self.own_knot], -1, 0)[..., None]
+
+    def rows_knots(self, a: np.ndarray) -> np.ndarray:
+        """Return a row array (N, ..., K) reduced to the row's own knot (N, ..., 1) for a stepped scan."""
+        if self.blocks is None:
+            return a
+        n = a.shape[0]
+        return np.take_along_axis(a, self.own_knot.reshape((n,) + (1,) * (a.ndim - 1)), axis=-1)
 
     def jacobian(self, phys: PhysicsParameters, terms, qs, frames) -> np.ndarray:
         """Return the whitened projected Jacobian (2*N*C, n_theta) of the residual (Kaufman's form)."""
         geo, eta, rot = terms
-        n, c_n, k = self.u.shape[0], len(self.channels), self.k
-        u, s = self.u, self.s
+        n, c_n = self.u.shape[0], len(self.channels)
+        u = self.u
+        s = np.ones((n, 1, 1)) if self.blocks is not None else self.s[:, None, :]      # (N, 1, Ke)
         pj, qi = self.pj, self.qi
         pu, qu = geo["pu"], geo["qu"]
-        x = phys.detuning_terms(pu)[:, pj, :]                               # (N, C, K)
+        rot = self.rows_knots(rot)                                                      # (N, C, Ke)
+        x = self.rows_knots(phys.detuning_terms(pu))[:, pj, :]
         hand = phys.handedness[None, :, None]
-        own = phys.gains[None] * geo["c"][:, :, None] + phys.quadrature[None] * geo["s"][:, :, None]
-        sleak = phys.s_leak_per_knot()                                        # (C, K)
-        inner = (rot * own + phys.leak[None] * geo["c_leak"][:, :, None] + sleak[None] * geo["s_leak"][:, :, None]
-                 + phys.offset[None])
-        drdx = -1j * hand / (1.0 + 1j * hand * x) ** 2                       # dR/dx (N, C, K)
-        longi = phys.longitudinal(pu)
-        dlong_dpu = phys.longitudinal_gradient(pu)                            # (N, 2, 2)
-        d = np.zeros((c_n, n, self.n_theta), complex)                        # d(prediction)/d(theta)
+        gains, quad, leak = self.at_rows(phys.gains), self.at_rows(phys.quadrature), self.at_rows(phys.leak)
+        sleak = self.at_rows(phys.s_leak_per_knot())
+        own = gains * geo["c"][:, :, None] + quad * geo["s"][:, :, None]
+        inner = (rot * own + leak * geo["c_leak"][:, :, None] + sleak * geo["s_leak"][:, :, None]
+                 + self.at_rows(phys.offset))
+        drdx = -1j * hand / (1.0 + 1j * hand * x) ** 2                       # dR/dx (N, C, Ke)
+        longi = phys.longitudinal(pu)                                         # (N, 2)
+        dlong_dpu = phys.longitudinal_gradient(pu)                            # (N, 2 [m], 2 [n])
+        width = phys.detuning_width(pu)                                       # (N, 2)
+        t_rows = self.at_rows(phys.detuning)                                  # (N or 1, 2, 2, Ke)
+        xraw = np.einsum("nm,njmk->njk", longi, np.broadcast_to(t_rows, (n,) + t_rows.shape[1:]))
+        ee = eta[:, :, None]
+        p_own, p_oth, q_all = phys.pump_axes[pj], phys.pump_axes[1 - pj], phys.probe_axes[qi]
+        d = np.zeros((n, c_n, self.n_theta), complex)                        # d(prediction)/d(theta)
         col = 0
         for beam in range(self.n_beams):
             for e in frames[beam]:
                 ue = u @ e
-                for ch in range(c_n):
-                    j, i = pj[ch], qi[ch]
-                    if beam < 2:                      # pump `beam` turns along e
-                        q = phys.probe_axes[i]
-                        dx = (dlong_dpu[:, :, beam] * ue[:, None]) @ phys.detuning[j]     # (N, K)
-                        dr = drdx[:, ch, :] * dx
-                        d_eta = 2.0 * phys.efficiency[j, beam] * pu[:, beam] * ue
-                        if j == beam:
-                            dc = e @ q - ue * qu[:, i]
-                            ds = u @ np.cross(e, q)
-                            d_inner = dr * own[:, ch, :] + rot[:, ch, :] * (
-                                phys.gains[ch] * dc[:, None] + phys.quadrature[ch] * ds[:, None])
-                        else:
-                            dcx = e @ q - ue * qu[:, i]
-                            dsx = u @ np.cross(e, q)
-                            d_inner = dr * own[:, ch, :] + phys.leak[ch] * dcx[:, None] + sleak[ch] * dsx[:, None]
-                        term = eta[:, ch, None] * d_inner + d_eta[:, None] * inner[:, ch, :]
-                    elif i == beam - 2:               # this channel's probe turns along e
-                        p_own, p_oth = phys.pump_axes[j], phys.pump_axes[1 - j]
-                        dc = p_own @ e - pu[:, j] * ue
-                        ds = u @ np.cross(p_own, e)
-                        dcx = p_oth @ e - pu[:, 1 - j] * ue
-                        dsx = u @ np.cross(p_oth, e)
-                        term = eta[:, ch, None] * (
-                            rot[:, ch, :] * (phys.gains[ch] * dc[:, None] + phys.quadrature[ch] * ds[:, None])
-                            + phys.leak[ch] * dcx[:, None] + sleak[ch] * dsx[:, None])
-                    else:
-                        continue
-                    d[ch, :, col] = np.sum(s * term, axis=1)
+                if beam < 2:                                  # pump `beam` turns along e
+                    m = beam
+                    dx_pump = (np.einsum("nm,njmk->njk", dlong_dpu[:, :, m] * ue[:, None],
+                                         np.broadcast_to(t_rows, (n,) + t_rows.shape[1:])) * width[:, :, None]
+                               + xraw * (2.0 * phys.detuning_width_shape[:, m][None, :] * (pu[:, m] * ue)[:, None])[:, :, None])
+                    dr = drdx * dx_pump[:, pj, :]
+                    d_eta = 2.0 * phys.efficiency[pj, m][None, :] * (pu[:, m] * ue)[:, None]      # (N, C)
+                    dcq = e @ q_all.T - ue[:, None] * qu[:, qi]                                    # dc or dc'
+                    dsq = u @ np.cross(e, q_all).T
+                    mine = (pj == m)[None, :, None]
+                    d_inner = dr * own + np.where(mine, rot * (gains * dcq[:, :, None] + quad * dsq[:, :, None]),
+                                                  leak * dcq[:, :, None] + sleak * dsq[:, :, None])
+                    term = ee * d_inner + d_eta[:, :, None] * inner
+                else:                                         # a probe turns along e
+                    dc = e @ p_own.T - pu[:, pj] * ue[:, None]
+                    ds = u @ np.cross(p_own, e).T
+                    dcx = e @ p_oth.T - pu[:, 1 - pj] * ue[:, None]
+                    dsx = u @ np.cross(p_oth, e).T
+                    term = ee * (rot * (gains * dc[:, :, None] + quad * ds[:, :, None])
+                                 + leak * dcx[:, :, None] + sleak * dsx[:, :, None])
+                    term = term * (qi == beam - 2)[None, :, None]
+                d[:, :, col] = np.sum(s * term, axis=2)
                 col += 1
         if self.fit_efficiency:
+            base = np.sum(s * inner, axis=2)                                  # (N, C)
             for j in range(2):
                 for m in range(2):
                     for part in (1.0, 1j):                  # real and imaginary part of e[j, m]
-                        for ch in np.flatnonzero(pj == j):
-                            d[ch, :, col] = part * np.sum(s * (pu[:, m] ** 2)[:, None] * inner[:, ch, :], axis=1)
+                        d[:, :, col] = part * (pu[:, m] ** 2)[:, None] * base * (pj == j)[None, :]
                         col += 1
         if self.fit_detuning:
+            lead = ee * drdx * own                                            # (N, C, Ke)
+            law = self.at_rows(self.law_powers)                               # (N or 1, 2, Ke)
+            law = np.broadcast_to(law, (n,) + law.shape[1:])
             for j in range(2):
                 for m in range(2):
                     for r in range(2):
-                        weight = s * self.law_powers[r][None, :]                     # (N, K)
-                        for ch in np.flatnonzero(pj == j):
-                            d[ch, :, col] = np.sum(weight * eta[:, ch, None] * drdx[:, ch, :] * longi[:, m, None]
-                                                   * own[:, ch, :], axis=1)
+                        v = lead * (longi[:, m] * width[:, j])[:, None, None] * law[:, r, None, :]
+                        d[:, :, col] = np.sum(s * v, axis=2) * (pj == j)[None, :]
                         col += 1
+            t_ch = np.broadcast_to(t_rows, (n,) + t_rows.shape[1:])[:, pj]    # (N, C, 2 [m], Ke)
             for m in range(2):
                 for mm in range(2):
-                    dl = pu[:, m] * pu[:, mm] ** 2                                  # dL_m / dv[m, mm]
-                    for ch in range(c_n):
-                        dx = dl[:, None] * phys.detuning[pj[ch], m][None, :]
-                        d[ch, :, col] = np.sum(s * eta[:, ch, None] * drdx[:, ch, :] * dx * own[:, ch, :], axis=1)
+                    dl = pu[:, m] * pu[:, mm] ** 2                              # dL_m / dv[m, mm]
+                    dx = dl[:, None, None] * t_ch[:, :, m, :] * width[:, pj][:, :, None]
+                    d[:, :, col] = np.sum(s * lead * dx, axis=2)
+                    col += 1
+            for j in range(2):
+                for m in range(2):
+                    dx = xraw[:, pj, :] * (pu[:, m] ** 2)[:, None, None]
+                    d[:, :, col] = np.sum(s * lead * dx, axis=2) * (pj == j)[None, :]
                     col += 1
         jac = np.empty((2, n, c_n, self.n_theta))
         for ch in range(c_n):
-            proj = qs[ch].project(d[ch])
+            proj = qs[ch].project(d[:, ch, :])
             proj *= -self.w[ch]
             jac[0, :, ch], jac[1, :, ch] = proj.real, proj.imag
         return jac.reshape(-1, self.n_theta)
 
-    def residual_vector(self, resid) -> np.ndarray:
+    def residual_vector(self, resid, phys: PhysicsParameters | None = None) -> np.ndarray:
+        """Return the whitened real residual (2*N*C,), followed by the prior's (n_theta,) when phys is given."""
         w = resid * self.w
-        return np.stack([w.real, w.imag]).reshape(-1)
+        out = np.stack([w.real, w.imag]).reshape(-1)
+        if phys is None:
+            return out
+        return np.concatenate([out, self.values(phys) * self.prior])
+
+    def full_jacobian(self, phys: PhysicsParameters, terms, qs, frames) -> np.ndarray:
+        """Return the Jacobian with the prior's rows appended ((2*N*C + n_theta), n_theta)."""
+        return np.vstack([self.jacobian(phys, terms, qs, frames), np.diag(self.prior)])
 
     def step(self, phys: PhysicsParameters, frames, delta) -> PhysicsParameters:
         """Return new parameters moved by delta (n_theta,): beams along their tangent frames, the rest added."""
@@ -318,7 +368,7 @@ class _Problem:
                                 phys.handedness.copy(), phys.channels, phys.quadrature.copy(),
                                 phys.leak.copy(), phys.offset.copy(), phys.efficiency.copy(),
                                 phys.detuning.copy(), phys.leak_quadrature.copy(), phys.knots_nT.copy(),
-                                phys.detuning_law.copy(), phys.detuning_shape.copy())
+                                phys.detuning_law.copy(), phys.detuning_shape.copy(), phys.detuning_width_shape.copy())
         for beam in range(self.n_beams):
             e1, e2 = frames[beam]
             v = delta[2 * beam] * e1 + delta[2 * beam + 1] * e2
@@ -335,6 +385,7 @@ class _Problem:
             out.detuning_law = out.detuning_law + delta[col:col + 8].reshape(2, 2, 2)
             out.detuning = detuning_from_law(out.detuning_law, self.knots_nT)
             out.detuning_shape = out.detuning_shape + delta[col + 8:col + 12].reshape(2, 2)
+            out.detuning_width_shape = out.detuning_width_shape + delta[col + 12:col + 16].reshape(2, 2)
         return out
 
     def frames(self, phys: PhysicsParameters) -> list:
@@ -398,7 +449,7 @@ def fit_physics(u: np.ndarray, s_basis: np.ndarray, knots_nT: np.ndarray, z: np.
         one = _Problem(u, s_basis, z, channels, prob.w, fit_efficiency, fit_detuning, knots_nT, 1)
         trial, it = _levenberg_marquardt(one, _same(phys, one), max_iterations)
         iterations += it
-        gain = prob.cost(prob.solve(phys)[2]) - one.cost(one.solve(trial)[2])
+        gain = prob.cost(prob.solve(phys)[2], phys) - one.cost(one.solve(trial)[2], trial)
         if gain > chi2.isf(LEAK_TEST_ALPHA, 2 * c_n):
             prob, phys = one, trial
             if eligible >= 2:
@@ -410,46 +461,33 @@ def fit_physics(u: np.ndarray, s_basis: np.ndarray, knots_nT: np.ndarray, z: np.
     terms, qs, resid = prob.solve(phys)
     frames = prob.frames(phys)
     jac = prob.jacobian(phys, terms, qs, frames)
-    cov = _inverse_psd(jac.T @ jac)
+    cov = _inverse_psd(jac.T @ jac + np.diag(prob.prior ** 2))
     inflation = _lag1_inflation(resid * prob.w)
-    jack = _level_jackknife(prob, phys, frames) if prob.blocks is not None and k >= JACKKNIFE_MIN_LEVELS else None
+    jack = _level_jackknife(prob, jac, resid) if prob.blocks is not None and k >= JACKKNIFE_MIN_LEVELS else None
     return PhysicsFit(phys, cov * inflation, frames, resid, 1.0 / prob.w, iterations, inflation, jack)
 
 
-def _subset_parameters(phys: PhysicsParameters, keep: np.ndarray) -> PhysicsParameters:
-    """Return a copy of phys restricted to the knots `keep` (indices)."""
-    return PhysicsParameters(phys.pump_axes.copy(), phys.probe_axes.copy(), phys.gains[:, keep].copy(),
-                             phys.handedness.copy(), phys.channels, phys.quadrature[:, keep].copy(),
-                             phys.leak[:, keep].copy(), phys.offset[:, keep].copy(), phys.efficiency.copy(),
-                             phys.detuning[:, :, keep].copy(), phys.leak_quadrature.copy(),
-                             phys.knots_nT[keep].copy(), phys.detuning_law.copy(), phys.detuning_shape.copy())
-
-
-def _level_jackknife(prob: _Problem, phys: PhysicsParameters, frames) -> np.ndarray | None:
+def _level_jackknife(prob: _Problem, jac: np.ndarray, resid: np.ndarray) -> np.ndarray | None:
     """Return the delete-one-level jackknife covariance of the beam angles (n_beams, 2, 2), rad^2.
 
-    Each magnitude level is left out in turn and the fit restarted from the full solution; the
-    spread of the axes, (K-1)/K sum (d_k - mean)(d_k - mean)^T (Efron and Stein, Ann. Stat. 9,
-    1981; the delete-a-group form), shows how much they depend on which magnitudes were scanned:
-    no more than the covariance when the physics model holds, more when it misses an effect that
-    changes with |B|.
+    Each magnitude level is left out in turn: the fit without it is one Gauss-Newton step from
+    the full solution, (A - A_k)^-1 J_k^T r_k, with A = J^T J and A_k, J_k that level's rows (the
+    one-step jackknife; for a stepped scan the level's own linear terms leave with it). The spread,
+    (K-1)/K sum (d_k - mean)(d_k - mean)^T (Efron and Stein, Ann. Stat. 9, 1981; delete-a-group
+    form), shows how much the axes depend on which magnitudes were scanned: no more than the
+    covariance when the physics model holds, more when it misses an effect that changes with |B|.
     """
-    k_n = prob.k
-    shifts = np.zeros((k_n, prob.n_beams, 2))
-    beams_full = list(phys.pump_axes) + list(phys.probe_axes)
-    for k in range(k_n):
-        keep = np.array([i for i in range(k_n) if i != k])
-        rows = np.concatenate([prob.blocks[i] for i in keep])
-        sub = _Problem(prob.u[rows], prob.s[np.ix_(rows, keep)], prob.z[rows], prob.channels, prob.w,
-                       prob.fit_efficiency, prob.fit_detuning, prob.knots_nT[keep], prob.leak_terms)
-        try:
-            fitted, _ = _levenberg_marquardt(sub, _subset_parameters(phys, keep), JACKKNIFE_ITERATIONS)
-        except PhysicsFitError:
-            return None
-        beams = list(fitted.pump_axes) + list(fitted.probe_axes)
-        for b, (full, new, (e1, e2)) in enumerate(zip(beams_full, beams, frames)):
-            v = log_map(full, new if full @ new >= 0 else -new)
-            shifts[k, b] = (v @ e1, v @ e2)
+    k_n, n, c_n = prob.k, prob.u.shape[0], len(prob.channels)
+    rows = jac.reshape(2, n, c_n, -1)
+    r = prob.residual_vector(resid).reshape(2, n, c_n)
+    total = jac.T @ jac + np.diag(prob.prior ** 2)
+    steps = np.zeros((k_n, prob.n_theta))
+    for k, idx in enumerate(prob.blocks):
+        j_k = rows[:, idx].reshape(-1, prob.n_theta)
+        a_k = j_k.T @ j_k
+        g_k = j_k.T @ r[:, idx].reshape(-1)
+        steps[k] = -_inverse_psd(total - a_k) @ g_k
+    shifts = steps[:, :2 * prob.n_beams].reshape(k_n, prob.n_beams, 2)
     centred = shifts - shifts.mean(axis=0)
     return (k_n - 1) / k_n * np.einsum("kbi,kbj->bij", centred, centred)
 
@@ -486,13 +524,13 @@ def _inverse_psd(info: np.ndarray) -> np.ndarray:
 def _levenberg_marquardt(prob: _Problem, phys: PhysicsParameters, max_iterations: int):
     """Return (parameters, iterations) minimizing the projected whitened residual from `phys`."""
     terms, qs, resid = prob.solve(phys)
-    cost = prob.cost(resid)
+    cost = prob.cost(resid, phys)
     lam = 1e-3
     it = 0
     for it in range(1, max_iterations + 1):
         frames = prob.frames(phys)
-        jac = prob.jacobian(phys, terms, qs, frames)
-        r = prob.residual_vector(resid)
+        jac = prob.full_jacobian(phys, terms, qs, frames)
+        r = prob.residual_vector(resid, phys)
         a = jac.T @ jac
         g = jac.T @ r
         diag = np.maximum(np.diag(a), 1e-12 * max(np.max(np.diag(a)), 1e-300))
@@ -510,11 +548,13 @@ def _levenberg_marquardt(prob: _Problem, phys: PhysicsParameters, max_iterations
             except PhysicsFitError:
                 lam *= 10.0
                 continue
-            t_cost = prob.cost(t_resid)
+            t_cost = prob.cost(t_resid, trial)
             if t_cost < cost:
-                predicted = -(g @ delta) - 0.5 * delta @ (a @ delta)
+                if DEBUG:
+                    print("  it", it, "cost", cost, "->", t_cost, "lam", lam, "max|d|", np.abs(delta).max())
                 phys, terms, qs, resid = trial, t_terms, t_qs, t_resid
-                done = (cost - t_cost) <= 1e-10 * cost or (predicted <= 1e-12 * cost)
+                # Whitened chi-square: a fall below COST_TOLERANCE is far below any statistical meaning.
+                done = (cost - t_cost) <= COST_TOLERANCE + 1e-10 * cost
                 cost = t_cost
                 lam = max(lam / 5.0, 1e-9)
                 improved = True

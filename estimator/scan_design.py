@@ -22,7 +22,7 @@ from dataclasses import dataclass
 
 import numpy as np
 
-from fieldvane.estimator.physics import DETUNING_REFERENCE_NT, LEAK_REFERENCE_NT, channel_indices
+from fieldvane.estimator.physics import DETUNING_REFERENCE_NT, LEAK_POWERS, LEAK_REFERENCE_NT, channel_indices
 from fieldvane.estimator.sphere import fibonacci_sphere, rotation_matrix, tangent_basis
 
 BASE_ROWS_PER_LEVEL = 100    # near-uniform rows every level starts with (degree-4 corrections need 75)
@@ -70,7 +70,7 @@ class _Geometry:
     """Per-direction terms of the nominal model: linear columns (C, M, 4) and derivatives (C, M, n_global)."""
 
     def __init__(self, guess: SensorGuess, u: np.ndarray, n_levels: int, level_b: np.ndarray,
-                 with_leak: bool):
+                 leak_terms: int):
         self.guess = guess
         pj, qi = channel_indices(guess.channels)
         P, Q = guess.pump_axes, guess.probe_axes
@@ -79,10 +79,12 @@ class _Geometry:
         n_beams = 2 + Q.shape[0]
         self.n_beams = n_beams
         self.n_levels = n_levels
-        # Global parameters: beams (2 each), efficiencies (4), detuning law (8), leak m (2 real per channel).
-        self.n_global = 2 * n_beams + 4 + 8 + (2 * c_n if with_leak else 0)
-        self.detune_col = 2 * n_beams + 4
-        self.with_leak = with_leak
+        # Global parameters: beams (2 each), efficiencies (8: complex 2 x 2), detuning law (8), the s'
+        # leak law (2 real per channel and term). The detuning's shape factors have no information
+        # at the nominal sensor (no detuning yet) and are left out.
+        self.leak_terms = int(leak_terms)
+        self.n_global = 2 * n_beams + 8 + 8 + 2 * c_n * self.leak_terms
+        self.detune_col = 2 * n_beams + 8
         self.linear = np.empty((c_n, m, 4), complex)
         self.glob = np.zeros((c_n, m, self.n_global), complex)
         self.detune = np.zeros((c_n, m, 4), complex)     # d/dt[j, m] per unit of the law's factor (j: channel's pump)
@@ -109,12 +111,11 @@ class _Geometry:
                         self.glob[ch, :, col] = g * (dc - 1j * h * ds)
                     col += 1
             for mm in range(2):
-                self.glob[ch, :, col + 2 * j + mm] = pu[:, mm] ** 2 * own
-            col += 4 + 8
-            if with_leak:
-                sx = u @ np.cross(px, q)
-                self.s_leak[ch] = sx
-                self.glob_leak_col = col
+                self.glob[ch, :, col + 4 * j + 2 * mm] = pu[:, mm] ** 2 * own
+                self.glob[ch, :, col + 4 * j + 2 * mm + 1] = 1j * pu[:, mm] ** 2 * own
+            col += 8 + 8
+            self.s_leak[ch] = u @ np.cross(px, q)
+            self.glob_leak_col = col
             for mm in range(2):
                 self.detune[ch, :, 2 * j + mm] = -1j * h * pu[:, mm] * own
         self.level_b = np.asarray(level_b, float)
@@ -128,10 +129,10 @@ class _Geometry:
         for jm in range(4):
             d[:, :, self.detune_col + 2 * jm] = self.detune[:, idx, jm]
             d[:, :, self.detune_col + 2 * jm + 1] = factor * self.detune[:, idx, jm]
-        if self.with_leak:
-            scale = LEAK_REFERENCE_NT / self.level_b[level]
+        for t in range(self.leak_terms):
+            scale = (LEAK_REFERENCE_NT / self.level_b[level]) ** LEAK_POWERS[t]
             for ch in range(c_n):
-                col = self.glob_leak_col + 2 * ch
+                col = self.glob_leak_col + 2 * (t * c_n + ch)
                 d[ch, :, col] = scale * self.s_leak[ch, idx]
                 d[ch, :, col + 1] = 1j * scale * self.s_leak[ch, idx]
         return self.linear[:, idx], d
@@ -206,9 +207,10 @@ def expected_axis_std(guess: SensorGuess, u_per_level: list[np.ndarray], levels_
     return axis_std_deg(_covariance(info), geo.n_beams)
 
 
-def _leak_term(levels: np.ndarray) -> bool:
-    """Return True when the fit would try the 1/|B| leak term (levels spanning a factor of 2 or more)."""
-    return levels.size >= 2 and levels.max() >= 2.0 * levels.min()
+def _leak_term(levels: np.ndarray) -> int:
+    """Return how many terms of the s' leak law the fit may use for these levels (as fit_physics decides)."""
+    k = levels.size
+    return sum(1 for t in range(1, len(LEAK_POWERS) + 1) if k >= t + 1 and levels.max() >= 2.0 ** t * levels.min())
 
 
 def uniform_directions(n: int, level: int) -> np.ndarray:

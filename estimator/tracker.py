@@ -49,7 +49,7 @@ from fieldvane.estimator.filter_settings import FilterSettings
 from fieldvane.estimator.flags import EstimateFlag as F
 from fieldvane.estimator.lockin_noise import (autocorrelation, correlation_factor, group_delay_s,
                                               second_difference_variance)
-from fieldvane.estimator.magnitude import fuse_magnitudes, magnitudes_from_frequencies
+from fieldvane.estimator.magnitude import disagreement, fuse_magnitudes, magnitudes_from_frequencies
 from fieldvane.estimator.response import to_real
 from fieldvane.estimator.samples import Sample, SampleBlock, channel_probe
 from fieldvane.estimator.sphere import angle_between, tangent_basis
@@ -136,6 +136,7 @@ class TrackRecord:
     noise_scale: np.ndarray | None = None      # factor on the calibrated noise std (noisiest probe)
     probes_used: np.ndarray | None = None      # bitmask of the probes fused (1 = probe 1, 2 = probe 2)
     loglik: np.ndarray | None = None           # innovation log-likelihood of each fused or gated sample
+    sigma_b_nT: np.ndarray | None = None       # 1-sigma of b_nT (calibrated magnitude model), nT
 
     def __len__(self) -> int:
         return int(self.t.shape[0])
@@ -144,6 +145,8 @@ class TrackRecord:
         """Return the extra estimate columns in their written order (name -> (N,) array)."""
         cols = {"nis": self.nis, "nis_dof": self.nis_dof, "b_a_nT": self.b_a_nT, "b_b_nT": self.b_b_nT,
                 "bound_deg": self.bound_deg}
+        if self.sigma_b_nT is not None:
+            cols["sigma_b_nT"] = self.sigma_b_nT
         if self.noise_scale is not None:
             cols["noise_scale"] = self.noise_scale
         if self.probes_used is not None:
@@ -488,7 +491,7 @@ class Tracker:
             readouts = channel_readouts(self.calibrated_z(block.z, block.channels), self.channels)
         else:
             readouts = {}
-        return self._record(np.asarray(block.t, float), fout, iout, b_out, per_out, readouts)
+        return self._record(np.asarray(block.t, float), fout, iout, b_out, per_out, readouts, block.f)
 
     def run_prepared(self, inp: PreparedInput, sample_at) -> tuple[np.ndarray, np.ndarray]:
         """Return the core's raw outputs (fout (N, N_FOUT), iout (N, N_IOUT)) for prepared samples.
@@ -503,14 +506,32 @@ class Tracker:
         self._run_prepared(inp, fout, iout, sample_at)
         return fout, iout
 
-    def _record(self, t, fout, iout, b, per, readouts) -> TrackRecord:
-        """Return the TrackRecord of core outputs (degrees, NOISY from the noise factor, delay removed)."""
+    def _record(self, t, fout, iout, b, per, readouts, f_hz) -> TrackRecord:
+        """Return the TrackRecord of core outputs (degrees, delay removed) with |B| from the magnitude model."""
         with np.errstate(invalid="ignore"):
             bound_deg = np.degrees(np.sqrt(fout[:, core.O_BOUND2]))
-        return TrackRecord(t - self.delay_s, fout[:, core.O_UX:core.O_UZ + 1].copy(), b,
-                           fout[:, core.O_SIGMA].copy(), iout[:, core.J_FLAGS].copy(), fout[:, core.O_NIS].copy(),
-                           iout[:, core.J_DOF].copy(), per[:, 0].copy(), per[:, 1].copy(), bound_deg, readouts,
-                           fout[:, core.O_NOISE].copy(), iout[:, core.J_PROBES].copy(), fout[:, core.O_LOGLIK].copy())
+        u = fout[:, core.O_UX:core.O_UZ + 1].copy()
+        sigma = fout[:, core.O_SIGMA].copy()
+        flags = iout[:, core.J_FLAGS].copy()
+        b, per, sigma_b, flags = self._magnitude(np.atleast_2d(np.asarray(f_hz, float)), u, sigma, b, per, flags)
+        return TrackRecord(t - self.delay_s, u, b, sigma, flags, fout[:, core.O_NIS].copy(), iout[:, core.J_DOF].copy(),
+                           per[:, 0].copy(), per[:, 1].copy(), bound_deg, readouts, fout[:, core.O_NOISE].copy(),
+                           iout[:, core.J_PROBES].copy(), fout[:, core.O_LOGLIK].copy(), sigma_b)
+
+    def _magnitude(self, f_hz, u, sigma_deg, b, per, flags):
+        """Return (|B| nT, per isotope (N, 2) nT, sigma_b_nT, flags): corrected by the calibration's magnitude
+        model (exchange pull, light shift, heading error) at the tracked direction, with MAGNITUDE_DISAGREE judged
+        against the corrected isotopes' own uncertainty; without a model, f / gamma and no sigma."""
+        mm = getattr(self.calibration, "magnitude_model", None)
+        if mm is None or len(b) == 0:
+            return b, per, np.full(len(b), np.nan), flags
+        est = mm.estimate(f_hz, u, np.radians(sigma_deg))
+        good = np.isfinite(est.b_nT)
+        b = np.where(good, est.b_nT, b)
+        per = np.where(np.isfinite(est.b_per_isotope), est.b_per_isotope, per)
+        disagree = disagreement(est.b_per_isotope, est.sigma_difference_nT, self.settings.magnitude_tolerance)
+        flags = np.where(good, (flags & ~_DISAGREE) | np.where(disagree, _DISAGREE, 0), flags)
+        return b, per, np.where(good, est.sigma_b_nT, np.nan), flags
 
     def _run_prepared(self, inp: PreparedInput, fout: np.ndarray, iout: np.ndarray, sample_at) -> None:
         """Run the core over prepared samples, asking the initiator whenever the core stops for a (re)start."""
@@ -590,7 +611,7 @@ class Tracker:
         iout = np.zeros((n, core.N_IOUT), np.int64)
         self._run_prepared(inp, fout, iout, lambda k: samples[k])
         readouts = channel_readouts(inp.z, self.channels) if self.report_channels else {}
-        return self._record(t, fout, iout, inp.b_nT, inp.per_isotope_nT, readouts)
+        return self._record(t, fout, iout, inp.b_nT, inp.per_isotope_nT, readouts, f)
 
     _first_times: list
 

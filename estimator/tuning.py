@@ -1,175 +1,149 @@
-"""Tuning math: measurement noise from best-fit residuals, process noise by innovation likelihood.
+"""Tuning: which drift states the filter carries and how much noise it expects, chosen from a recording.
 
-Measurement noise. At one sample's best-fit direction (the snapshot inverse) the whitened residual
-is r = (I - H) e to first order, e the whitened noise and H = J J^+ the hat matrix of the fitted
-parameters (two tangent angles, plus one log-gain per probe when the solver is gain-free). With a_j
-the ratio of true to calibrated noise std of real measurement j, E[r_k^2] = sum_j (I - H)_kj^2 a_j^2:
-the field's motion does not enter, only the noise. The ratios (one per channel, the same for X and
-Y) are found in windows of consecutive samples: each window's mean square against its expectation,
-then the median over windows, corrected to the mean by the chi-square median, so that outliers and
-noise bursts, which spoil a minority of windows, do not pull the answer.
+Measurement noise and the lock-in's correlation (estimator/noise_correlation.py): each channel's
+noise level from second differences of the lock-in values, which cancel anything constant or linear
+over a few samples, so a slow gain or phase drift cannot pass for white noise; the lock-in's RC
+filter (time constant, order) fitted from how those differences grow with the lag, unless the
+recording or the settings state it. The per-channel levels go into channel_noise_scale (with
+measurement_noise_scale = 1), the filter into lockin_time_constant_s / lockin_filter_order.
 
-FilterSettings carries one measurement_noise_scale (a factor on every channel's calibrated noise),
-not one per channel. The per-channel ratios are reported; the scale set is their root mean square,
-the maximum-likelihood common factor for them.
+Process noise, per state set. Three sets of states are compared: 'none' (direction and rate only),
+'gain' (plus a log-gain per probe) and 'gain+phase' (plus a phase offset per channel). Each set's
+process noise (the motion knobs plus that set's drift rates) maximizes the innovation log-likelihood
+(estimator/innovation.py, the tracker's own compiled filter): a coarse grid in log10, then a compass
+search (each knob one step up and one down, all scored together; move to the best, else halve the
+step) down to an eighth of a decade. Of the candidates within TIE_LOGLIK of a set's best, the most
+cautious (largest process noise) is kept.
 
-Process noise. The innovation log-likelihood of the recording (fieldvane.estimator.innovation, all
-candidates' filters advanced together) is maximized over a grid in log10 of angle random walk and
-rate random walk (and the gain and phase drift rates when enabled), refined a few rounds: each
-round centers a grid on the best so far, one previous grid step (at most half the previous span)
-either side. Of the candidates statistically indistinguishable from the best (TIE_LOGLIK), the
-most cautious is kept.
+Decimation. The search runs on every k-th sample. The settings are continuous-time (per sqrt(s)),
+so they hold at any rate, and k is at least the lag at which the lock-in's correlation has fallen
+below DECORRELATED: the filter's likelihood treats samples as independent (correlated noise enters
+only through the bandwidth factor kappa), which it then nearly is.
+
+Choice of set: the Bayesian information criterion, BIC = -2 logL + p ln T, with p the set's tuned
+settings and T the samples scored; the smallest wins. The innovation likelihood is prequential:
+every sample is predicted before the filter has seen it, so the extra states (and their initial
+uncertainty) are already scored out of sample and pay for themselves in it; only the tuned rates are
+fitted to the same data, and BIC charges ln T for each. A held-out split would need the drift to show
+in both halves (a bench drift often happens once), so it is not used.
 
 Accuracy floor. A calibration error is a direction bias that innovations cannot reveal, so for a
 still or smoothly turning field the likelihood keeps falling toward zero process noise and the
-filter would claim far more accuracy than the calibration supports. The angle random walk is
-therefore kept at or above the value whose steady state matches the calibration's statistical
-accuracy (calibration_error_ratio, angle_random_walk_for_floor).
+filter would claim more accuracy than the calibration supports. The angle random walk is kept at or
+above the value whose steady state matches the calibration's statistical accuracy
+(calibration_error_ratio, angle_random_walk_for_floor), counting the correlated rows of a scan taken
+through a lock-in (the calibration's covariance inflation) and the stream's own correlation (kappa).
 """
 
 from __future__ import annotations
 
+import itertools
 import math
-from dataclasses import dataclass
+from dataclasses import dataclass, field
 from typing import Callable, Sequence
 
 import numpy as np
-from scipy.stats import chi2
 
 from fieldvane.estimator.calibration import Calibration
 from fieldvane.estimator.filter_settings import FilterSettings
-from fieldvane.estimator.fisher import probe_groups, tangent_jacobian
-from fieldvane.estimator.flags import EstimateFlag
+from fieldvane.estimator.fisher import crlb_deg
 from fieldvane.estimator.innovation import InnovationScores, innovation_loglik
-from fieldvane.estimator.response import to_real
+from fieldvane.estimator.lockin_noise import autocorrelation, correlation_factor
+from fieldvane.estimator.noise_correlation import NoiseFit, fit_noise, sample_step_s
 from fieldvane.estimator.samples import SampleBlock
+from fieldvane.estimator.tracker import Tracker
 
 # progress(done, total, stage): called before and after each piece of work (units of `stage`).
 Progress = Callable[[int, int, str], None]
 
-# Snapshot rows whose residual does not measure noise: no fit, or maybe the wrong branch.
-_UNUSABLE = int(EstimateFlag.BAD_INPUT | EstimateFlag.AMBIGUOUS | EstimateFlag.LOW_SIGNAL)
-_MIN_WINDOWS = 5
-_CHUNK = 8192          # samples per vectorized residual pass (bounds memory)
-OUTLIER_ALPHA = 1e-4   # a sample is an outlier when its residual is this unlikely (costs ~0.1% of variance)
-
 
 @dataclass(frozen=True)
 class Knob:
-    """One tuned setting: its log10 search range for the first round and hard log10 limits."""
+    """One tuned setting: its unit, its coarse-grid values (log10) and hard log10 limits."""
 
     name: str
     unit: str
-    first_round: tuple[float, float]
+    coarse: tuple[float, ...]
     limits: tuple[float, float]
 
 
 KNOBS = {
-    "angle_random_walk_deg_rt_s": Knob("angle_random_walk_deg_rt_s", "deg/sqrt(s)", (-4.0, 0.0), (-7.0, 1.5)),
-    "rate_random_walk_deg_s_rt_s": Knob("rate_random_walk_deg_s_rt_s", "(deg/s)/sqrt(s)", (-3.0, 2.0), (-6.0, 4.0)),
-    "gain_drift_per_rt_s": Knob("gain_drift_per_rt_s", "1/sqrt(s)", (-6.0, -2.0), (-9.0, 0.0)),
-    "phase_drift_deg_rt_s": Knob("phase_drift_deg_rt_s", "deg/sqrt(s)", (-4.0, 0.0), (-7.0, 1.5)),
+    "angle_random_walk_deg_rt_s": Knob("angle_random_walk_deg_rt_s", "deg/sqrt(s)", (-4.0, -3.0, -2.0, -1.0, 0.0),
+                                       (-7.0, 1.5)),
+    "rate_random_walk_deg_s_rt_s": Knob("rate_random_walk_deg_s_rt_s", "(deg/s)/sqrt(s)",
+                                        (-3.0, -2.0, -1.0, 0.0, 1.0, 2.0), (-6.0, 4.0)),
+    "gain_drift_per_rt_s": Knob("gain_drift_per_rt_s", "1/sqrt(s)", (-6.0, -5.0, -4.0, -3.0, -2.0), (-9.0, 0.0)),
+    "phase_drift_deg_rt_s": Knob("phase_drift_deg_rt_s", "deg/sqrt(s)", (-4.0, -3.0, -2.0, -1.0, 0.0), (-7.0, 1.5)),
 }
+MOTION_KNOBS = ("angle_random_walk_deg_rt_s", "rate_random_walk_deg_s_rt_s")
+# State set -> (switches, tuned settings). Searched in this order: 'gain' first (its motion grid seeds the others).
+STATE_SETS = {
+    "gain": ({"gain_drift": True, "phase_drift": False}, MOTION_KNOBS + ("gain_drift_per_rt_s",)),
+    "none": ({"gain_drift": False, "phase_drift": False}, MOTION_KNOBS),
+    "gain+phase": ({"gain_drift": True, "phase_drift": True},
+                   MOTION_KNOBS + ("gain_drift_per_rt_s", "phase_drift_deg_rt_s")),
+}
+SET_ORDER = ("none", "gain", "gain+phase")     # display order
+LADDER = SET_ORDER                             # simplest first: a richer set must earn its place
 # Candidates within this much log-likelihood of the best are statistically indistinguishable from it
 # (2 delta logL < 1: the 68% profile-likelihood interval of one parameter); the one with the most
 # process noise is taken, so a flat likelihood (a still or smoothly turning field) leaves the filter
 # cautious rather than at whatever tiny value rounding favoured. Common practice in model selection
 # (the one-standard-error rule), here leaning toward the more cautious filter.
 TIE_LOGLIK = 0.5
-MOTION_KNOBS = ("angle_random_walk_deg_rt_s", "rate_random_walk_deg_s_rt_s")
-# drift name -> (switch setting, rate setting)
-DRIFTS = {"gain": ("gain_drift", "gain_drift_per_rt_s"), "phase": ("phase_drift", "phase_drift_deg_rt_s")}
+COMPASS_START = 0.5        # first compass step, decades
+COMPASS_END = 0.125        # the search stops below this step, decades
+COMPASS_MAX_STEPS = 12     # compass iterations per set at most
+CAUTIOUS_STEP = 0.25       # the cautious ladder's step (decades) ...
+CAUTIOUS_STEPS = 3         # ... and its length
+OUTCLASSED_PER_SAMPLE = 1.0  # a set this much log-likelihood per sample behind another stops early
+DECORRELATED = 0.1         # search samples at least this decorrelated (lock-in autocorrelation at the step)
+MIN_SEARCH_RATE_HZ = 10.0  # ... but never decimated below this rate
+MIN_SEARCH_SAMPLES = 1000  # ... nor to fewer samples than this
+DEFAULT_MAX_SAMPLES = 2500
+BOUND_POINTS = 500         # track points behind the median single-sample bound
+
+
+# ----------------------------------------------------------------------------- decimation
+
+def decimation_step(n_samples: int, rate_hz: float, tau_s: float, order: int,
+                    max_samples: int | None = DEFAULT_MAX_SAMPLES) -> int:
+    """Return the search's step k (>= 1): at most max_samples samples, and neighbours decorrelated by the lock-in.
+
+    The lock-in's part: the smallest k with autocorrelation(k / rate_hz) <= DECORRELATED, limited so that the
+    decimated rate stays >= MIN_SEARCH_RATE_HZ and at least MIN_SEARCH_SAMPLES samples remain.
+    """
+    k_size = 1 if not max_samples else max(1, -(-int(n_samples) // int(max_samples)))
+    k_corr = 1
+    if tau_s > 0 and rate_hz > 0:
+        lags = np.arange(1, int(math.ceil(rate_hz * (order + 6.0) * tau_s * 2)) + 2)
+        below = np.flatnonzero(autocorrelation(lags / rate_hz, tau_s, order) <= DECORRELATED)
+        k_corr = int(lags[below[0]]) if below.size else int(lags[-1])
+        k_corr = min(k_corr, max(1, int(rate_hz / MIN_SEARCH_RATE_HZ)), max(1, n_samples // MIN_SEARCH_SAMPLES))
+    return max(k_size, k_corr)
+
+
+def decimate(block: SampleBlock, step: int) -> SampleBlock:
+    """Return every step-th sample of block (truth and metadata kept)."""
+    if step < 1:
+        raise ValueError(f"the decimation step must be at least 1 (got {step})")
+    if step == 1:
+        return block
+    sl = slice(None, None, int(step))
+    return SampleBlock(t=block.t[sl], f=block.f[sl], z=block.z[sl], channels=block.channels,
+                       applied_b_nT=None if block.applied_b_nT is None else block.applied_b_nT[sl],
+                       truth={key: v[sl] for key, v in block.truth.items()}, metadata=dict(block.metadata),
+                       skipped_rows=block.skipped_rows)
 
 
 # ----------------------------------------------------------------------------- measurement noise
 
-@dataclass(frozen=True)
-class NoiseEstimate:
-    """Per-channel noise from best-fit residuals: std of X and of Y (V), ratio to calibrated, common scale."""
+def stream_noise(calibration: Calibration, block: SampleBlock, settings: FilterSettings,
+                 fit_lockin: bool = True) -> NoiseFit:
+    """Return the stream's per-channel noise (calibration channel order) and its lock-in filter.
 
-    channels: tuple[str, ...]
-    calibrated_std_V: np.ndarray    # (C,) the calibration's noise_std
-    std_V: np.ndarray               # (C,) estimated
-    ratio: np.ndarray               # (C,) std_V / calibrated_std_V
-    scale: float                    # RMS of ratio: the measurement_noise_scale to use
-    samples: int                    # samples whose residuals were used
-    windows: int                    # windows of `window` samples behind the medians
-    window: int
-    outliers: int = 0               # samples dropped as outliers
-    single_sample_deg: float = math.nan  # median single-sample bound (CRLB) at the calibrated noise, deg
-
-
-def decimate(block: SampleBlock, max_samples: int | None) -> tuple[SampleBlock, int]:
-    """Return (every k-th sample of block, k) with k the smallest step leaving at most max_samples rows."""
-    n = len(block)
-    if max_samples is None or n <= max_samples:
-        return block, 1
-    if max_samples < 1:
-        raise ValueError(f"max_samples must be at least 1 (got {max_samples})")
-    k = -(-n // int(max_samples))
-    sl = slice(None, None, k)
-    out = SampleBlock(t=block.t[sl], f=block.f[sl], z=block.z[sl], channels=block.channels,
-                      applied_b_nT=None if block.applied_b_nT is None else block.applied_b_nT[sl],
-                      truth={key: v[sl] for key, v in block.truth.items()}, metadata=dict(block.metadata),
-                      skipped_rows=block.skipped_rows)
-    return out, k
-
-
-def residual_statistics(model, z: np.ndarray, u: np.ndarray, b_nT: np.ndarray,
-                        gains: np.ndarray | None = None) -> tuple[np.ndarray, np.ndarray]:
-    """Return (whitened residual squares per channel (N, C), M (N, C, C)) at best-fit directions u (N, 3).
-
-    z (N, C) complex V in the model's channel order; gains (N, P) per probe when fitted, else None.
-    M[n, c, d] sums (I - H)_kj^2 over k in channel c's X/Y and j in channel d's X/Y, so that
-    E[residual square of c] = sum_d M[c, d] a_d^2 for noise std ratios a (H: hat matrix of the fit).
-    """
-    sigma = model.noise_std
-    zm, jac, _, _ = tangent_jacobian(model, u, b_nT)                     # (N, C), (N, C, 2)
-    if gains is not None:
-        _, member = probe_groups(model.channels)
-        g = gains @ member.T                                             # (N, C)
-        zm, jac = zm * g, jac * g[:, :, None]
-        # d Z / d(log gain of probe p) = Z on that probe's channels.
-        jac = np.concatenate([jac, zm[:, :, None] * member[None, :, :]], axis=2)
-    resid = to_real((z - zm) / sigma)                                    # (N, 2C)
-    cols = [to_real(jac[:, :, k] / sigma) for k in range(jac.shape[2])]
-    j = np.stack(cols, axis=2)                                           # (N, 2C, p)
-    # Hat matrix from the SVD: H = U U^T over the columns that carry information.
-    uu, s, _ = np.linalg.svd(j, full_matrices=False)
-    keep = s > 1e-9 * s[:, :1]
-    uu = uu * keep[:, None, :]
-    hat = uu @ np.swapaxes(uu, 1, 2)
-    m = (np.eye(j.shape[1]) - hat) ** 2                                  # (N, 2C, 2C)
-    n, c = z.shape
-    per_channel = m.reshape(n, c, 2, c, 2).sum(axis=(2, 4))
-    return (resid ** 2).reshape(n, c, 2).sum(axis=2), per_channel
-
-
-def noise_ratios_from_windows(q: np.ndarray, m: np.ndarray, dof: np.ndarray,
-                              iterations: int = 100, tol: float = 1e-10) -> np.ndarray:
-    """Return noise std ratios a (C,) with median over windows of q / (m @ a^2) equal to the chi-square median.
-
-    q (W, C): window sums of residual squares; m (W, C, C): their expectation per unit a_d^2;
-    dof (C,): typical degrees of freedom of one window's sum (sets the median-to-mean factor).
-    """
-    kappa = chi2.median(dof) / dof                   # median of chi2_k / k, a little below 1
-    a2 = np.ones(q.shape[1])
-    for _ in range(iterations):
-        expected = m @ a2                            # (W, C)
-        factor = np.median(q / expected, axis=0) / kappa
-        a2_new = a2 * factor
-        done = np.max(np.abs(a2_new / a2 - 1.0)) < tol
-        a2 = a2_new
-        if done:
-            break
-    return np.sqrt(a2)
-
-
-def measurement_noise(calibration: Calibration, solver, block: SampleBlock, window: int | None = None) -> NoiseEstimate:
-    """Return the per-channel noise of `block` (V, X and Y alike) from the snapshot solver's best fits.
-
-    solver: a SnapshotSolver for this calibration (gain-free solvers also fit one log-gain per probe).
-    window: samples per window (default: N/16 clipped to 8..64).
+    With settings.lockin_time_constant_s > 0 (or fit_lockin False) the filter is taken from the settings;
+    otherwise it is fitted from the data (noise_correlation.fit_noise).
     """
     model = calibration.model
     names = tuple(block.channels)
@@ -177,97 +151,110 @@ def measurement_noise(calibration: Calibration, solver, block: SampleBlock, wind
     if missing:
         raise ValueError(f"samples lack calibrated channel(s) {', '.join(missing)}")
     z = np.asarray(block.z, complex)[:, [names.index(c) for c in model.channels]]
-    res = solver.solve(z, block.f, block.t, model.channels)
-    ok = ((res.flags & _UNUSABLE) == 0) & np.isfinite(res.chi2) & np.all(np.isfinite(res.u), axis=1)
-    rows = np.flatnonzero(ok)
-    n = rows.size
-    if window is None:
-        window = int(np.clip(n // 16, 8, 64))
-    n_windows = n // window
-    if n_windows < _MIN_WINDOWS:
-        raise ValueError(f"too few usable samples for a noise estimate: {n} (need {_MIN_WINDOWS * window})")
-    parts = []
-    for start in range(0, n, _CHUNK):
-        sel = rows[start:start + _CHUNK]
-        parts.append(residual_statistics(model, z[sel], res.u[sel], res.b_nT[sel],
-                                         res.gains[sel] if solver.gain_free else None))
-    q, m = (np.concatenate(x) for x in zip(*parts))
-    # Degrees of freedom of one sample's residual: trace(I - H) = sum of m (I - H is a projection).
-    dof_sample = m.sum(axis=(1, 2))
-    keep = np.ones(n, bool)
-    for _ in range(5):
-        ratio, n_windows = _window_ratios(q[keep], m[keep], window)
-        # Single-sample outliers spoil many windows at once: drop samples whose residual is beyond the
-        # 1 - OUTLIER_ALPHA quantile of its (scaled) chi-square, then estimate again on the rest.
-        expected = np.einsum("ncd,d->n", m, ratio ** 2)
-        stat = q.sum(axis=1) * dof_sample / expected
-        new_keep = stat <= chi2.ppf(1.0 - OUTLIER_ALPHA, dof_sample)
-        if np.array_equal(new_keep, keep) or new_keep.sum() < _MIN_WINDOWS * window:
-            break
-        keep = new_keep
-    else:
-        ratio, n_windows = _window_ratios(q[keep], m[keep], window)
-    used = int(keep.sum())
-    cal_std = np.asarray(model.noise_std, float).copy()
-    return NoiseEstimate(tuple(model.channels), cal_std, ratio * cal_std, ratio,
-                         float(np.sqrt(np.mean(ratio ** 2))), used, int(n_windows), int(window), n - used,
-                         float(np.median(res.sigma_deg[rows][keep])))
+    given = settings.lockin_time_constant_s > 0 or not fit_lockin
+    tau = settings.lockin_time_constant_s if given else None
+    order = settings.lockin_filter_order if given else None
+    return fit_noise(block.t, z, model.channels, tau, order)
 
 
-def _window_ratios(q: np.ndarray, m: np.ndarray, window: int) -> tuple[np.ndarray, int]:
-    """Return (noise std ratios (C,), windows used) from per-sample q (N, C) and m (N, C, C)."""
-    n_windows = q.shape[0] // window
-    c = q.shape[1]
-    rows = n_windows * window
-    q_w = q[:rows].reshape(n_windows, window, c).sum(axis=1)
-    m_w = m[:rows].reshape(n_windows, window, c, c).sum(axis=1)
-    # Degrees of freedom of a window's sum: its expectation at equal noise (the trace of I - H per channel).
-    dof = np.maximum(np.median(m_w.sum(axis=2), axis=0), 1.0)
-    return noise_ratios_from_windows(q_w, m_w, dof), n_windows
+def noise_settings(settings: FilterSettings, noise: NoiseFit, calibrated_std_V: np.ndarray) -> FilterSettings:
+    """Return settings with the measured per-channel noise (channel_noise_scale, common scale 1) and lock-in filter."""
+    ratio = noise.ratio(calibrated_std_V)
+    if not np.all(np.isfinite(ratio) & (ratio > 0)):
+        bad = [c for c, r in zip(noise.channels, ratio) if not (np.isfinite(r) and r > 0)]
+        raise ValueError(f"no noise level could be measured on channel(s) {', '.join(bad)}")
+    changes = {"measurement_noise_scale": 1.0,
+               "channel_noise_scale": tuple((c, float(round(r, 4))) for c, r in zip(noise.channels, ratio))}
+    if noise.source == "data":
+        changes["lockin_time_constant_s"] = float(f"{noise.tau_s:.4g}") if noise.tau_s > 0 else 0.0
+        if noise.tau_s > 0:
+            changes["lockin_filter_order"] = int(noise.order)
+    return settings.replace(**changes)
 
 
 # ----------------------------------------------------------------------------- accuracy floor
 
 def calibration_error_ratio(calibration: Calibration) -> float:
-    """Return sqrt(parameters per channel / scan rows): the calibrated model's statistical error per channel
-    as a fraction of the noise std (a least-squares fit's average prediction variance is sigma^2 p / n);
-    0 when the scan's row count is unknown."""
+    """Return sqrt(parameters per channel x inflation / scan rows): the calibrated model's statistical error per
+    channel as a fraction of the noise std (a least-squares fit's average prediction variance is sigma^2 p / n,
+    with n the effective rows: rows over the calibration's covariance inflation for correlated rows); 0 when the
+    scan's row count is unknown."""
     _, knots, harmonics_per_knot = calibration.model.coef.shape
     rows = int(getattr(calibration, "n_rows", 0) or 0)
-    return math.sqrt(knots * harmonics_per_knot / rows) if rows > 0 else 0.0
+    info = getattr(calibration, "fit_info", None) or {}
+    inflation = float(info.get("covariance_inflation", 1.0) or 1.0)
+    if not (math.isfinite(inflation) and inflation >= 1.0):
+        inflation = 1.0
+    return math.sqrt(knots * harmonics_per_knot * inflation / rows) if rows > 0 else 0.0
 
 
-def angle_random_walk_for_floor(floor_deg: float, single_sample_deg: float, dt_s: float) -> float:
+def angle_random_walk_for_floor(floor_deg: float, single_sample_deg: float, dt_s: float, kappa: float = 1.0) -> float:
     """Return the angle random walk (deg/sqrt(s)) at which a still field's filter settles at sigma = sqrt(2) floor_deg.
 
     A calibration error of total std floor_deg (floor^2 / 2 per axis) is a bias that innovations
     cannot see. A filter with white angle noise q and gain K << 1 holds P = K R per axis while its
     own averaging error is only K R / 2, so P = floor^2 per axis (trace 2 floor^2) matches averaging
-    error plus bias. With R = bound^2 / 2 per axis and the steady state P^2 = q dt R,
-    sqrt(q) = sqrt(2) floor^2 / (bound sqrt(dt)).
+    error plus bias. With R = kappa bound^2 / 2 per axis (kappa: the lock-in's bandwidth factor, the
+    filter's inflation for correlated samples) and the steady state P^2 = q dt R,
+    sqrt(q) = sqrt(2) floor^2 / (bound sqrt(kappa dt)).
     """
     if not (floor_deg > 0 and single_sample_deg > 0 and dt_s > 0) or not math.isfinite(single_sample_deg):
         return 0.0
     f, b = math.radians(floor_deg), math.radians(single_sample_deg)
-    return math.degrees(math.sqrt(2.0) * f * f / (b * math.sqrt(dt_s)))
+    return math.degrees(math.sqrt(2.0) * f * f / (b * math.sqrt(max(kappa, 1.0) * dt_s)))
 
 
-def median_step_s(t: np.ndarray) -> float:
-    """Return the median positive time step of t (s), nan when there is none."""
-    d = np.diff(np.asarray(t, float))
-    d = d[np.isfinite(d) & (d > 0)]
-    return float(np.median(d)) if d.size else math.nan
+def median_bounds_deg(calibration: Calibration, block: SampleBlock, settings: FilterSettings, initiator,
+                      noise_std_V: np.ndarray) -> tuple[float, float]:
+    """Return the median single-sample bound (deg) along the stream's track at (calibrated noise, the stream's noise).
+
+    The track: one run of the filter with `settings` over block; the bound: the Cramer-Rao bound of
+    one sample at each estimated direction and |B| (estimator/fisher.py).
+    """
+    rec = Tracker(calibration, settings, initiator).run_arrays(block)
+    ok = np.flatnonzero(np.all(np.isfinite(rec.u), axis=1) & np.isfinite(rec.b_nT))
+    if not ok.size:
+        return math.nan, math.nan
+    ok = ok[::max(1, ok.size // BOUND_POINTS)]
+    u, b = rec.u[ok], rec.b_nT[ok]
+    model = calibration.model
+    at_cal = float(np.median(crlb_deg(model, u, b)))
+    at_stream = float(np.median(crlb_deg(model, u, b, noise_std=np.asarray(noise_std_V, float))))
+    return at_cal, at_stream
 
 
 # ----------------------------------------------------------------------------- process noise
 
+class MemoInitiator:
+    """An initiator that remembers its answers: the same sample (time, frequencies, values, channels, |B|) gets
+    the same acquisition without solving again. Exact (the inverse is deterministic); it saves the tuner's
+    candidates that lose the track at the same samples from repeating the single-sample solve."""
+
+    def __init__(self, initiator, max_entries: int = 100_000):
+        self.initiator = initiator
+        self.max_entries = int(max_entries)
+        self.cache: dict[tuple, object] = {}
+        self.hits = 0
+
+    def __call__(self, sample, b_nT: float):
+        z = np.asarray(sample.z, complex)
+        key = (float(sample.t), float(sample.f_a), float(sample.f_b), z.tobytes(), tuple(sample.channels),
+               bool(getattr(sample, "restarted", False)), float(b_nT))
+        if key in self.cache:
+            self.hits += 1
+            return self.cache[key]
+        result = self.initiator(sample, b_nT)
+        if len(self.cache) < self.max_entries:
+            self.cache[key] = result
+        return result
+
+
 @dataclass
 class ScoreTable:
-    """Every evaluated candidate: tuned values (linear units, KNOBS), round (0: the reference) and scores."""
+    """Every evaluated candidate of one state set: tuned values (linear units, KNOBS) and scores."""
 
     names: tuple[str, ...]
     values: np.ndarray            # (N, d)
-    round: np.ndarray             # (N,)
     loglik: np.ndarray            # (N,) innovation log-likelihood (larger is better)
     mean_nis: np.ndarray          # (N,) mean NIS of fused samples (2C expected)
     fraction_gated: np.ndarray    # (N,)
@@ -277,9 +264,9 @@ class ScoreTable:
         return int(self.loglik.shape[0])
 
     def best(self, tolerance: float = 0.0) -> int:
-        """Return the row of the largest log-likelihood among searched rows (round > 0); with tolerance > 0,
-        the row with the most process noise (largest product of tuned values) within tolerance of it."""
-        ll = np.where(np.isfinite(self.loglik) & (self.round > 0), self.loglik, -np.inf)
+        """Return the row of the largest log-likelihood; with tolerance > 0, the row with the most process noise
+        (largest product of tuned values) within tolerance of it."""
+        ll = np.where(np.isfinite(self.loglik), self.loglik, -np.inf)
         top = int(np.argmax(ll))
         if tolerance <= 0 or not np.isfinite(ll[top]):
             return top
@@ -287,195 +274,382 @@ class ScoreTable:
         size = np.log10(self.values[close]).sum(axis=1)
         return int(close[np.argmax(size)])
 
-    def rows(self) -> list[dict]:
-        """Return the table as dicts (setting values, round, loglik, mean_nis, fraction_gated, reacquisitions)."""
-        out = []
-        for i in range(len(self)):
-            row = {name: float(self.values[i, k]) for k, name in enumerate(self.names)}
-            row.update(round=int(self.round[i]), loglik=float(self.loglik[i]), mean_nis=float(self.mean_nis[i]),
-                       fraction_gated=float(self.fraction_gated[i]), reacquisitions=int(self.reacquisitions[i]))
-            out.append(row)
-        return out
-
 
 @dataclass
-class SearchResult:
-    """Outcome of the process-noise search: the best settings, the score table and how it was searched."""
+class SetResult:
+    """One state set after its search: best settings, scores, BIC and every candidate scored."""
 
+    name: str
     settings: FilterSettings
     table: ScoreTable
     best_index: int
-    points_per_axis: int
-    rounds: int
-    lower_limits: dict[str, float]          # linear units; a best value on its limit means the limit binds
-    reference_index: int | None = None
+    parameters: int               # tuned settings (BIC's p)
+    samples: int                  # samples scored (BIC's T)
+    at_floor: bool                # the angle random walk rests on the accuracy floor
+    outclassed: bool = False      # its search stopped early: far behind another set
 
-    def at_limit(self) -> list[str]:
-        """Return the tuned names whose best value sits on a lower limit set by the caller."""
-        out = []
-        for k, name in enumerate(self.table.names):
-            lim = self.lower_limits.get(name)
-            if lim is not None and self.table.values[self.best_index, k] <= lim * (1 + 1e-9):
-                out.append(name)
-        return out
+    @property
+    def loglik(self) -> float:
+        """Return the innovation log-likelihood of the best candidate."""
+        return float(self.table.loglik[self.best_index])
+
+    @property
+    def penalty(self) -> float:
+        """Return BIC's penalty p ln T."""
+        return self.parameters * math.log(max(self.samples, 2))
+
+    @property
+    def score(self) -> float:
+        """Return BIC = -2 logL + p ln T (smaller is better)."""
+        return -2.0 * self.loglik + self.penalty
+
+    def values(self) -> dict[str, float]:
+        """Return the tuned settings of the best candidate (name -> value, linear units)."""
+        return {n: float(self.table.values[self.best_index, k]) for k, n in enumerate(self.table.names)}
 
 
 @dataclass
 class TuneResult:
-    """Tuned filter settings with the noise estimate, the search behind them and the accuracy floor used."""
+    """Tuned filter settings: the chosen state set, all sets compared, the noise fit and the accuracy floor."""
 
     settings: FilterSettings
-    noise: NoiseEstimate
-    search: SearchResult
-    decimation: int               # every k-th sample was used
+    chosen: str
+    sets: dict[str, SetResult]
+    noise: NoiseFit
+    decimation: int               # every k-th sample was searched
     samples_used: int
     floor_deg: float              # calibration accuracy floor (deg, 1-sigma total); 0: none
     floor_arw_deg_rt_s: float     # the angle random walk it implies (lower limit of the search)
+    bound_calibrated_deg: float   # median single-sample bound along the track at the calibrated noise
+    bound_stream_deg: float       # ... at the stream's noise
+    reference: InnovationScores | None = None   # the settings before tuning, scored on the same samples
+    candidates: int = 0
+    allowance: float = 0.0        # model-error allowance (log-likelihood) a richer state set had to beat
+    calibrated_std_V: np.ndarray | None = None  # (C,) the calibration's noise std per channel
+    error_ratio: float = 0.0      # calibration_error_ratio: the floor over the bound at the calibrated noise
+    notes: list[str] = field(default_factory=list)
 
 
-def tuned_names(drifts: Sequence[str] = ()) -> tuple[str, ...]:
-    """Return the names of the settings searched: the motion knobs plus the enabled drift rates."""
-    unknown = [d for d in drifts if d not in DRIFTS]
-    if unknown:
-        raise ValueError(f"unknown drift(s) {', '.join(unknown)}; known: {', '.join(DRIFTS)}")
-    return MOTION_KNOBS + tuple(DRIFTS[d][1] for d in DRIFTS if d in drifts)
+class _Search:
+    """One state set's candidates: log10 values of its tuned knobs, scores once scored, and the search's steps.
 
-
-def points_per_axis(candidates: int | None, dims: int) -> int:
-    """Return grid points per axis so that points**dims is at most `candidates` (at least 3).
-
-    None: 6 points for one or two tuned settings, 4 for three, 3 for four (36, 64, 81 candidates).
+    `steps()` is a generator: it yields lists of rows (log10 values) to score and resumes once they are
+    scored (`record`), so several sets' candidates can share one scoring call.
     """
-    if candidates is None:
-        return {1: 6, 2: 6, 3: 4}.get(dims, 3)
-    return max(3, int(math.floor(candidates ** (1.0 / dims) + 1e-9)))
+
+    def __init__(self, base: FilterSettings, name: str, start: dict[str, float], lower: dict[str, float]):
+        switches, names = STATE_SETS[name]
+        self.name, self.names = name, names
+        self.base = base.replace(**switches)
+        self.limits = _limits(names, lower)
+        self.lower = lower
+        self.start = dict(start)
+        self.logs: list[np.ndarray] = []
+        self.scores: list[tuple] = []
+        self.seen: dict[tuple, int] = {}
+        self.coarse_done = False
+        self.outclassed = False
+        self.chosen = None
+
+    def _key(self, row) -> tuple:
+        return tuple(np.round(np.clip(np.asarray(row, float), self.limits[:, 0], self.limits[:, 1]), 6))
+
+    def fresh(self, rows: Sequence[np.ndarray]) -> list[np.ndarray]:
+        """Return the rows (clipped to the limits) not scored yet, without repeats."""
+        out, keys = [], set()
+        for row in rows:
+            key = self._key(row)
+            if key not in self.seen and key not in keys:
+                keys.add(key)
+                out.append(np.array(key, float))
+        return out
+
+    def settings_at(self, logs: np.ndarray) -> FilterSettings:
+        """Return the base settings with the tuned knobs at 10**logs."""
+        return self.base.replace(**{n: float(f"{10.0 ** v:.4g}") for n, v in zip(self.names, logs)})
+
+    def record(self, rows: Sequence[np.ndarray], scores: Sequence[tuple]) -> None:
+        """Remember the scores (loglik, mean NIS, fraction gated, reacquisitions) of rows."""
+        for row, sc in zip(rows, scores):
+            self.seen[self._key(row)] = len(self.logs)
+            self.logs.append(np.asarray(row, float))
+            self.scores.append(tuple(float(v) for v in sc))
+
+    def loglik_of(self, row: np.ndarray) -> float:
+        """Return the log-likelihood of a scored row (clipped to the limits), -inf if it was not scored."""
+        i = self.seen.get(self._key(row))
+        return -math.inf if i is None or not math.isfinite(self.scores[i][0]) else self.scores[i][0]
+
+    def best_row(self) -> np.ndarray:
+        """Return the log values of the largest log-likelihood so far."""
+        ll = np.array([sc[0] if math.isfinite(sc[0]) else -np.inf for sc in self.scores])
+        return self.logs[int(np.argmax(ll))].copy()
+
+    def best_loglik(self) -> float:
+        """Return the largest log-likelihood so far."""
+        return max((sc[0] for sc in self.scores if math.isfinite(sc[0])), default=-math.inf)
+
+    def best_values(self) -> dict[str, float]:
+        """Return the tuned values (linear) of the best candidate so far."""
+        return {n: float(10.0 ** v) for n, v in zip(self.names, self.best_row())}
+
+    def table(self) -> ScoreTable:
+        """Return every scored candidate as a ScoreTable."""
+        arr = np.array(self.scores, float).reshape(-1, 4)
+        return ScoreTable(tuple(self.names), 10.0 ** np.array(self.logs, float).reshape(-1, len(self.names)),
+                          arr[:, 0], arr[:, 1], arr[:, 2], arr[:, 3].astype(int))
+
+    def steps(self, tie: float):
+        """Yield batches of rows to score: coarse grids, compass refinement, the cautious ladder; set self.chosen."""
+        names = self.names
+        center = np.array([math.log10(self.start[n]) if n in self.start else float(np.median(KNOBS[n].coarse))
+                           for n in names])
+        center = np.clip(center, self.limits[:, 0], self.limits[:, 1])
+        gridded = [k for k, n in enumerate(names) if n not in self.start]
+        motion = [k for k in gridded if names[k] in MOTION_KNOBS]
+        if motion:
+            rows = []
+            for combo in itertools.product(*[KNOBS[names[k]].coarse for k in motion]):
+                row = center.copy()
+                row[motion] = combo
+                rows.append(row)
+            yield rows
+            center = self.best_row()
+        for k in [k for k in gridded if names[k] not in MOTION_KNOBS]:
+            rows = []
+            for v in KNOBS[names[k]].coarse:
+                row = center.copy()
+                row[k] = v
+                rows.append(row)
+            yield rows
+            center = self.best_row()
+        if not self.scores:
+            yield [center]
+        self.coarse_done = True
+        # Compass: each knob a step and half a step either side of the best, all scored together; move to the
+        # best (halving the step when it was a half step), else quarter the step.
+        step, eye = COMPASS_START, np.eye(len(names))
+        for _ in range(COMPASS_MAX_STEPS):
+            if step < COMPASS_END - 1e-12:
+                break
+            center, top = self.best_row(), self.best_loglik()
+            yield [center + sign * f * step * eye[k] for k in range(len(names)) for sign in (1.0, -1.0)
+                   for f in (1.0, 0.5)]
+            if self.best_loglik() <= top + 1e-6:
+                step /= 4.0
+            elif np.max(np.abs(self.best_row() - center)) < 0.75 * step:
+                step /= 2.0
+        # Cautious ladder: each knob raised from the best as far as the likelihood stays within tie.
+        best, top = self.best_row(), self.best_loglik()
+        self.chosen = best
+        if not (math.isfinite(top) and tie > 0):
+            return
+        ladders = [[best + j * CAUTIOUS_STEP * eye[k] for j in range(1, CAUTIOUS_STEPS + 1)]
+                   for k in range(len(names))]
+        yield [row for ladder in ladders for row in ladder]
+        raised = best.copy()
+        for k, ladder in enumerate(ladders):
+            for row in ladder:
+                if self.loglik_of(row) < top - tie:
+                    break
+                raised[k] = np.clip(row, self.limits[:, 0], self.limits[:, 1])[k]
+        if np.array_equal(raised, best):
+            return
+        yield [raised]
+        if self.loglik_of(raised) >= top - tie * len(names):
+            self.chosen = raised
+        else:
+            table = self.table()
+            self.chosen = np.log10(table.values[table.best(tie)])
+
+    def result(self, samples: int) -> SetResult:
+        """Return the SetResult of the finished search."""
+        table = self.table()
+        best = self.seen[self._key(self.chosen)]
+        arw_floor = self.lower.get("angle_random_walk_deg_rt_s", 0.0)
+        at_floor = arw_floor > 0 and table.values[best, 0] <= arw_floor * (1 + 1e-6)
+        return SetResult(self.name, self.settings_at(self.logs[best]), table, best, len(self.names), samples,
+                         bool(at_floor), self.outclassed)
 
 
-def log_grid(center: np.ndarray, half_span: np.ndarray, points: int, limits: np.ndarray) -> np.ndarray:
-    """Return the (<= points**d, d) grid of log10 values center +- half_span per axis, clipped to limits (d, 2)."""
-    axes = [np.unique(np.clip(np.linspace(c - h, c + h, points), lo, hi))
-            for c, h, (lo, hi) in zip(center, half_span, limits)]
-    mesh = np.meshgrid(*axes, indexing="ij")
-    return np.stack([g.ravel() for g in mesh], axis=1)
+def _limits(names: Sequence[str], lower: dict[str, float]) -> np.ndarray:
+    """Return (d, 2) log10 limits of the knobs, raised to the lower limits given (linear units)."""
+    lim = np.array([KNOBS[n].limits for n in names], float)
+    for k, n in enumerate(names):
+        if lower.get(n, 0) > 0:
+            lim[k, 0] = min(max(lim[k, 0], math.log10(lower[n])), lim[k, 1])
+    return lim
 
 
-def settings_grid(base: FilterSettings, names: Sequence[str], log_values: np.ndarray) -> list[FilterSettings]:
-    """Return copies of base with settings `names` set to 10**log_values (N, d)."""
-    return [base.replace(**{name: float(10.0 ** v) for name, v in zip(names, row)}) for row in log_values]
+def _drop_outclassed(searches: dict, running: dict, batches: dict, results: dict, samples: int,
+                     allowance: float) -> None:
+    """Stop refining a set whose best log-likelihood trails another set's by more than OUTCLASSED_PER_SAMPLE per
+    sample (and 10 allowances): no refinement closes such a gap, and its candidates, which lose the track
+    again and again, are the slowest to score."""
+    best = {n: s.best_loglik() for n, s in searches.items()}
+    top = max(best.values(), default=-math.inf)
+    gap = max(OUTCLASSED_PER_SAMPLE * samples, 10.0 * allowance)
+    for name in list(running):
+        if name in results or not searches[name].scores or not math.isfinite(top) or best[name] >= top - gap:
+            continue
+        s = searches[name]
+        s.chosen, s.outclassed = s.best_row(), True
+        del running[name]
+        batches.pop(name, None)
+        results[name] = s.result(samples)
 
 
-def score_settings(calibration: Calibration, block: SampleBlock, candidates: Sequence[FilterSettings], initiator,
-                   batch_size: int | None = None, progress: Progress | None = None,
-                   stage: str = "candidates") -> InnovationScores:
-    """Return the innovation scores of every candidate; each batch (default: all) runs its filters together."""
-    candidates = list(candidates)
-    n = len(candidates)
-    if n == 0:
-        raise ValueError("no candidates to score")
-    size = n if not batch_size else max(1, int(batch_size))
-    parts = []
-    if progress is not None:
-        progress(0, n, stage)
-    for start in range(0, n, size):
-        parts.append(innovation_loglik(calibration, block, candidates[start:start + size], initiator))
+def search_state_sets(calibration: Calibration, block: SampleBlock, base: FilterSettings, initiator,
+                      state_sets: Sequence[str] = SET_ORDER, lower_limits: dict[str, float] | None = None,
+                      progress: Progress | None = None, tie_loglik: float = TIE_LOGLIK,
+                      reference: FilterSettings | None = None,
+                      allowance: float = 0.0) -> tuple[dict[str, SetResult], InnovationScores | None]:
+    """Return each state set's settings maximizing the innovation log-likelihood of block (then the most cautious
+    within tie_loglik, knob by knob).
+
+    The 'gain' set starts with a coarse grid of the motion knobs; 'none' starts from the best motion of that
+    grid and 'gain+phase' from the 'gain' set's result (each with its own coarse grid when 'gain' is not
+    searched). The sets' candidates are scored together, one innovation_loglik call per step.
+    lower_limits: name -> least value allowed (linear), e.g. the accuracy floor's angle random walk.
+    reference: settings scored with the first candidates (e.g. those before tuning); its scores are returned.
+    allowance: the model-error allowance (log-likelihood); a set trailing another by far more stops early.
+    """
+    lower = {k: float(v) for k, v in (lower_limits or {}).items() if v and v > 0}
+    wanted = [n for n in STATE_SETS if n in state_sets]
+    searches: dict[str, _Search] = {}
+    running: dict[str, object] = {}
+    batches: dict[str, list] = {}
+    results: dict[str, SetResult] = {}
+
+    def begin(name: str, start: dict[str, float]) -> None:
+        searches[name] = _Search(base, name, {k: v for k, v in start.items() if k in STATE_SETS[name][1]}, lower)
+        running[name] = searches[name].steps(tie_loglik)
+        advance(name)
+
+    def advance(name: str) -> None:
+        try:
+            while True:
+                rows = searches[name].fresh(next(running[name]))
+                if rows:
+                    batches[name] = rows
+                    return
+        except StopIteration:
+            del running[name]
+            batches.pop(name, None)
+            results[name] = searches[name].result(len(block))
+
+    gain_first = "gain" in wanted
+    begin(wanted[0], {})
+    if not gain_first:
+        for name in wanted[1:]:
+            begin(name, {})
+    done = 0
+    ref_scores = None
+    while running:
+        names = [n for n in running if n in batches]
+        rows = [(n, r) for n in names for r in batches[n]]
+        extra = [reference] if (reference is not None and ref_scores is None) else []
         if progress is not None:
-            progress(min(start + size, n), n, stage)
-    return InnovationScores(*(np.concatenate([np.asarray(p[k], float) for p in parts]) for k in range(4)))
+            progress(done, done + len(rows), "search: " + ", ".join(names))
+        scores = innovation_loglik(calibration, block, [searches[n].settings_at(r) for n, r in rows] + extra,
+                                   initiator)
+        if extra:
+            ref_scores = InnovationScores(*(np.asarray(v)[-1:] for v in scores))
+        done += len(rows)
+        for k, (n, r) in enumerate(rows):
+            searches[n].record([r], [tuple(np.asarray(v)[k] for v in scores)])
+        for n in names:
+            advance(n)
+        _drop_outclassed(searches, running, batches, results, len(block), allowance)
+        if gain_first:
+            if "none" in wanted and "none" not in searches:
+                begin("none", {k: v for k, v in searches["gain"].best_values().items() if k in MOTION_KNOBS})
+            if "gain+phase" in wanted and "gain+phase" not in searches and searches["gain"].coarse_done:
+                begin("gain+phase", searches["gain"].best_values())
+    if progress is not None:
+        progress(done, done, "search")
+    return {n: results[n] for n in SET_ORDER if n in results}, ref_scores
 
 
-def search_process_noise(calibration: Calibration, block: SampleBlock, base: FilterSettings, initiator,
-                         drifts: Sequence[str] = (), candidates: int | None = None, rounds: int = 4,
-                         lower_limits: dict[str, float] | None = None, batch_size: int | None = None,
-                         progress: Progress | None = None, reference: FilterSettings | None = None,
-                         tie_loglik: float = TIE_LOGLIK) -> SearchResult:
-    """Return the settings maximizing the innovation log-likelihood over coarse-to-fine log10 grids.
+def model_error_allowance(calibration: Calibration, samples: int, noise_ratio: np.ndarray | None = None) -> float:
+    """Return the log-likelihood that absorbing the calibration's model error could add over `samples` samples.
 
-    base supplies every setting not searched (measurement_noise_scale included); drifts ('gain',
-    'phase') switch those drift states on and add their rates to the search. candidates: grid size
-    per round (rounded down to points**d, at least 3 points per axis; None: see points_per_axis). lower_limits: name -> least
-    value allowed (linear units), e.g. the accuracy floor's angle random walk. reference: one more
-    candidate scored with the first round (round 0 in the table), e.g. the settings before tuning.
-    Grids refine around the largest likelihood; the result is the most cautious candidate (largest
-    process noise) within tie_loglik of it (0: the maximum itself).
+    The calibrated model errs by about calibration_error_ratio r times the calibration's noise std on every
+    real measurement, slowly with direction; on a stream whose noise std is noise_ratio (C,) times the
+    calibration's, that is r / noise_ratio of the stream's. Unmodelled, it adds (r / ratio)^2 per real
+    measurement to the expected NIS, i.e. costs 0.5 sum (r / ratio)^2 log-likelihood per sample. Drift states
+    can absorb it, as if the sensor drifted.
     """
-    if rounds < 1:
-        raise ValueError(f"rounds must be at least 1 (got {rounds})")
-    names = tuned_names(drifts)
-    base = base.replace(**{DRIFTS[d][0]: True for d in drifts})
-    lower_limits = {k: float(v) for k, v in (lower_limits or {}).items() if v and v > 0}
-    d = len(names)
-    p = points_per_axis(candidates, d)
-    limits = np.array([KNOBS[k].limits for k in names], float)
-    for k, name in enumerate(names):
-        if name in lower_limits:
-            limits[k, 0] = min(max(limits[k, 0], math.log10(lower_limits[name])), limits[k, 1])
-    first = np.clip(np.array([KNOBS[k].first_round for k in names], float), limits[:, :1], limits[:, 1:])
-    center, half = first.mean(axis=1), 0.5 * (first[:, 1] - first[:, 0])
-    half = np.maximum(half, 0.5)   # a range squeezed by a limit still spans a decade
-    seen: set[tuple] = set()
-    logs: list[np.ndarray] = []
-    round_of: list[int] = []
-    scores: list[tuple] = []
-    reference_index = None
-    for r in range(1, rounds + 1):
-        grid = log_grid(center, half, p, limits)
-        fresh = [row for row in grid if tuple(np.round(row, 9)) not in seen]
-        extra = [reference] if (r == 1 and reference is not None) else []
-        if fresh or extra:
-            batch = settings_grid(base, names, np.array(fresh)) if fresh else []
-            s = score_settings(calibration, block, batch + extra, initiator, batch_size, progress,
-                               stage=f"round {r}/{rounds}")
-            columns = [np.asarray(v, float) for v in s]
-            for k, row in enumerate(fresh):
-                seen.add(tuple(np.round(row, 9)))
-                logs.append(row)
-                round_of.append(r)
-                scores.append(tuple(c[k] for c in columns))
-            if extra:
-                reference_index = len(logs)
-                logs.append(np.log10([getattr(reference, k) for k in names]))
-                round_of.append(0)
-                scores.append(tuple(c[-1] for c in columns))
-        ll = np.array([sc[0] for sc in scores], float)
-        ll = np.where(np.isfinite(ll) & (np.array(round_of) > 0), ll, -np.inf)
-        # Next round: one grid step of this round either side of the best so far, and at most half
-        # this round's span (with 3 points a step is the whole half-span).
-        center, half = np.asarray(logs[int(np.argmax(ll))], float), min(2.0 / (p - 1), 0.5) * half
-    arr = np.array(scores, float)
-    table = ScoreTable(names, 10.0 ** np.array(logs, float), np.array(round_of), arr[:, 0], arr[:, 1],
-                       arr[:, 2], arr[:, 3])
-    best = table.best(tie_loglik)
-    settings = base.replace(**{name: float(table.values[best, k]) for k, name in enumerate(names)})
-    return SearchResult(settings, table, best, p, rounds, lower_limits, reference_index)
+    r = calibration_error_ratio(calibration)
+    ratio = np.ones(calibration.model.n_channels) if noise_ratio is None else np.asarray(noise_ratio, float)
+    return 0.5 * samples * float(np.sum(2.0 * (r / ratio) ** 2))
 
 
-def tune(calibration: Calibration, block: SampleBlock, solver, base: FilterSettings | None = None,
-         drifts: Sequence[str] = (), candidates: int | None = None, rounds: int = 4, max_samples: int | None = 20_000,
-         floor_deg: float | None = None, noise_solver=None, batch_size: int | None = None,
-         progress: Progress | None = None) -> TuneResult:
-    """Return tuned FilterSettings: noise scale from residuals, process noise by innovation likelihood.
+def choose_state_set(results: dict[str, SetResult], allowance: float = 0.0) -> str:
+    """Return the name of the chosen state set: up the ladder none -> gain -> gain+phase, a richer set replaces the
+    current choice when its BIC is lower by more than 2 x allowance (what absorbing model error could explain)."""
+    if not results:
+        raise ValueError("no state set was searched")
+    ladder = [n for n in LADDER if n in results]
+    chosen = ladder[0]
+    for name in ladder[1:]:
+        if results[name].score < results[chosen].score - 2.0 * allowance:
+            chosen = name
+    return chosen
 
-    solver: the SnapshotSolver of this calibration (its `initiate` acquires every candidate's track);
-    noise_solver: the one whose best fits give the noise residuals (default: solver; pass a gain-free
-    solver when gains drift). max_samples: longer blocks are decimated to every k-th sample for the
-    noise estimate and the search. floor_deg: the calibration accuracy floor (deg, 1-sigma total;
-    None: from the calibration's size, calibration_error_ratio times the median single-sample
-    bound; 0: none); its angle random walk is the search's lower limit. The table's reference row
-    is `base` as given (defaults when None).
+
+def state_set_of(settings: FilterSettings) -> str:
+    """Return the name of the state set that settings switch on ('none', 'gain', 'gain+phase' or 'phase')."""
+    if settings.gain_drift and settings.phase_drift:
+        return "gain+phase"
+    if settings.gain_drift:
+        return "gain"
+    return "phase" if settings.phase_drift else "none"
+
+
+def tune(calibration: Calibration, block: SampleBlock, initiator, base: FilterSettings | None = None,
+         state_sets: Sequence[str] = SET_ORDER, max_samples: int | None = DEFAULT_MAX_SAMPLES,
+         floor_deg: float | None = None, fit_lockin: bool = True, progress: Progress | None = None) -> TuneResult:
+    """Return tuned FilterSettings: noise from second differences, state set and process noise by likelihood.
+
+    base: the settings to start from, completed with the stream's lock-in when it is known (its
+    lockin_time_constant_s > 0); otherwise (and fit_lockin) the lock-in is fitted from the data.
+    initiator: acquires every candidate's track (the snapshot solver's `initiate`). state_sets: the sets
+    compared ('none', 'gain', 'gain+phase'). max_samples: the search's samples at most (decimated).
+    floor_deg: the calibration accuracy floor (deg, 1-sigma total; None: calibration_error_ratio times
+    the median single-sample bound at the calibrated noise; 0: none).
     """
     base = base if base is not None else FilterSettings()
-    used, k = decimate(block, max_samples)
+    unknown = [s for s in state_sets if s not in STATE_SETS]
+    if unknown or not state_sets:
+        raise ValueError(f"unknown state set(s) {', '.join(unknown) or '(none given)'}; known: {', '.join(SET_ORDER)}")
+    if len(block) < 2:
+        raise ValueError("too few samples to tune")
+    initiator = initiator if isinstance(initiator, MemoInitiator) else MemoInitiator(initiator)
+    model = calibration.model
     if progress is not None:
         progress(0, 1, "noise")
-    noise = measurement_noise(calibration, noise_solver if noise_solver is not None else solver, used)
+    noise = stream_noise(calibration, block, base, fit_lockin)
     if progress is not None:
         progress(1, 1, "noise")
+    start = noise_settings(base, noise, model.noise_std)
+    rate = noise.sample_rate_hz
+    k = decimation_step(len(block), rate, start.lockin_time_constant_s, start.lockin_filter_order, max_samples)
+    used = decimate(block, k)
+    bound_cal, bound_stream = median_bounds_deg(calibration, used, start, initiator,
+                                                noise.std_V if np.all(np.isfinite(noise.std_V)) else None)
     if floor_deg is None:
-        floor_deg = calibration_error_ratio(calibration) * noise.single_sample_deg
+        floor_deg = calibration_error_ratio(calibration) * bound_cal
     floor_deg = float(floor_deg) if math.isfinite(floor_deg) else 0.0
-    # The floor holds for the filter run on every sample, so it uses the full-rate step.
-    floor_arw = angle_random_walk_for_floor(floor_deg, noise.scale * noise.single_sample_deg, median_step_s(block.t))
-    start = base.replace(measurement_noise_scale=noise.scale)
-    search = search_process_noise(calibration, used, start, solver.initiate, drifts, candidates, rounds,
-                                  {"angle_random_walk_deg_rt_s": floor_arw}, batch_size, progress, reference=base)
-    return TuneResult(search.settings, noise, search, k, len(used), floor_deg, floor_arw)
+    kappa = correlation_factor(rate, start.lockin_time_constant_s, start.lockin_filter_order)
+    floor_arw = angle_random_walk_for_floor(floor_deg, bound_stream, 1.0 / rate, kappa)
+    lower = {"angle_random_walk_deg_rt_s": floor_arw}
+
+    allowance = model_error_allowance(calibration, len(used), noise.ratio(model.noise_std))
+    results, reference = search_state_sets(calibration, used, start, initiator, state_sets, lower, progress,
+                                           reference=base, allowance=allowance)
+    chosen = choose_state_set(results, allowance)
+    return TuneResult(results[chosen].settings, chosen, {n: results[n] for n in SET_ORDER if n in results}, noise,
+                      k, len(used), floor_deg, floor_arw, bound_cal, bound_stream, reference,
+                      sum(len(r.table) for r in results.values()), allowance,
+                      np.asarray(model.noise_std, float).copy(), calibration_error_ratio(calibration))

@@ -17,7 +17,7 @@ from fieldvane.estimator.calibration import Calibration, ChannelReport, Rejected
 from fieldvane.estimator.constants import CELL_PAIRS
 from fieldvane.estimator.harmonics import n_harmonics
 from fieldvane.estimator.magnitude_error import MagnitudeCheck, check_magnitudes
-from fieldvane.estimator.physics import PhysicsParameters
+from fieldvane.estimator.physics import LEAK_POWERS, PhysicsParameters
 from fieldvane.estimator.physics_fit import N_LINEAR_TERMS
 from fieldvane.estimator.response import ResponseModel
 from fieldvane.estimator.samples import CHANNELS_ONE_PROBE, CHANNELS_TWO_PROBES
@@ -50,8 +50,12 @@ def _table_arrays(cal: Calibration) -> dict[str, np.ndarray]:
     for name in ("gains", "quadrature", "leak", "offset", "leak_quadrature"):
         v = np.asarray(getattr(ph, name), complex)
         out[f"{name}_real"], out[f"{name}_imag"] = v.real, v.imag
-    out["efficiency"] = np.asarray(ph.efficiency, float)
+    eff = np.asarray(ph.efficiency, complex)
+    out["efficiency_real"], out["efficiency_imag"] = eff.real, eff.imag
     out["detuning"] = np.asarray(ph.detuning, float)
+    out["detuning_law"] = np.asarray(ph.detuning_law, float)
+    out["detuning_shape"] = np.asarray(ph.detuning_shape, float)
+    out["detuning_width_shape"] = np.asarray(ph.detuning_width_shape, float)
     return out
 
 
@@ -77,11 +81,13 @@ def calibration_document(cal: Calibration, tables_name: str, tables_sha: str, so
     for j, pid in enumerate("ab"):
         entry = dict(beam(pid, ph.pump_axes[j], cal.nominal_pump_axes, "pump_names", j, std[j]),
                      isotope=cal.pump_isotopes[j], gamma_hz_per_nT=round(float(cal.gammas_hz_per_nt[j]), 9))
-        entry["efficiency"] = {"own": round(float(ph.efficiency[j, j]), 6),
-                               "other": round(float(ph.efficiency[j, 1 - j]), 6)}
+        entry["efficiency"] = {"own": _vec([ph.efficiency[j, j].real, ph.efficiency[j, j].imag], 6),
+                               "other": _vec([ph.efficiency[j, 1 - j].real, ph.efficiency[j, 1 - j].imag], 6)}
         if eff_std is not None:
-            entry["efficiency"]["own_std"] = round(float(eff_std[j][j]), 6)
-            entry["efficiency"]["other_std"] = round(float(eff_std[j][1 - j]), 6)
+            entry["efficiency"]["own_std"] = _vec(eff_std[j][j], 6)
+            entry["efficiency"]["other_std"] = _vec(eff_std[j][1 - j], 6)
+        entry["heading_detuning_at_50uT"] = {"own": round(float(ph.detuning_law[j, j, 1]), 6),
+                                             "other": round(float(ph.detuning_law[j, 1 - j, 1]), 6)}
         pumps.append(entry)
     probes = [beam(str(i + 1), ph.probe_axes[i], cal.nominal_probe_axes, "probe_names", i, std[2 + i])
               for i in range(ph.probe_axes.shape[0])]
@@ -97,6 +103,7 @@ def calibration_document(cal: Calibration, tables_name: str, tables_sha: str, so
             "quadrature_ratio_pct": _vec(100 * (np.abs(ph.quadrature[k] / safe) - 1), 5),
             "leak_pct": _vec(100 * np.abs(ph.leak[k] / safe), 5),
             "leak_phase_deg": _vec(np.degrees(np.angle(ph.leak[k] / safe)), 4),
+            "quadrature_leak_V": [_vec([m.real, m.imag], 9) for m in ph.leak_quadrature[k]],
             "noise_V": float(m.noise_std[k]),
             "correction_rms_V": float(corr[k]),
             "heldout_phase_deg": round(rep.heldout_phase_deg, 5),
@@ -361,17 +368,24 @@ def _build(rd: _Reader, path: Path, doc: dict, version: int) -> Calibration:
     gains = _complex(arrays, "gains", (c_n, k_n), npz_path)
     extras = {name: _complex(arrays, name, (c_n, k_n), npz_path, required=version >= 2)
               for name in ("quadrature", "leak", "offset")}
-    leak_q = _complex(arrays, "leak_quadrature", (c_n,), npz_path, required=version >= 2)
-    efficiency = arrays.get("efficiency")
-    detuning = arrays.get("detuning")
-    if efficiency is not None and efficiency.shape != (2, 2):
-        raise InputError(f"array efficiency has shape {efficiency.shape}, expected (2, 2)", str(npz_path))
-    if detuning is not None and detuning.shape != (2, 2, k_n):
-        raise InputError(f"array detuning has shape {detuning.shape}, expected (2, 2, {k_n})", str(npz_path))
+    leak_q = _complex(arrays, "leak_quadrature", (c_n, len(LEAK_POWERS)), npz_path, required=version >= 2)
+    efficiency = _complex(arrays, "efficiency", (2, 2), npz_path, required=version >= 2)
+    shapes = {"detuning": (2, 2, k_n), "detuning_law": (2, 2, 2), "detuning_shape": (2, 2),
+              "detuning_width_shape": (2, 2)}
+    extra_real = {}
+    for name, shape in shapes.items():
+        v = arrays.get(name)
+        if v is None and version >= 2:
+            raise InputError(f"array {name} missing", str(npz_path))
+        if v is not None and v.shape != shape:
+            raise InputError(f"array {name} has shape {v.shape}, expected {shape}", str(npz_path))
+        extra_real[name] = None if v is None else v.astype(float)
 
     model = ResponseModel(channels, degree, knots, coef, noise)
     phys = PhysicsParameters(pump_axes, probe_axes, gains, hand, channels, extras["quadrature"], extras["leak"],
-                             extras["offset"], efficiency, detuning, leak_q, knots)
+                             extras["offset"], efficiency, extra_real["detuning"], leak_q, knots,
+                             extra_real["detuning_law"], extra_real["detuning_shape"],
+                             extra_real["detuning_width_shape"])
     reports = [ChannelReport(c, float(noise[i]),
                              rd.number(cd.get("heldout_phase_deg", 0.0), f"channels[{i}].heldout_phase_deg"),
                              rd.number(cd.get("heldout_amplitude_pct", 0.0), f"channels[{i}].heldout_amplitude_pct"))

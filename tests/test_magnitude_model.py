@@ -306,6 +306,9 @@ def test_unknown_direction_uses_the_sphere_mean_and_spread(realistic_model):
         assert np.max(np.abs(est_all.b_nT - expected)) < 0.02 * fused_delta.std() + 1e-6
         # Its error over the sphere is the fused correction's spread (numpy over a near-uniform grid).
         assert np.median(est_all.sigma_b_nT) == pytest.approx(fused_delta.std(), rel=0.05)
+        # A direction whose uncertainty is unknown (nan sigma) is treated the same way.
+        lost = model.estimate(f[:50], grid[:50], np.full(50, np.nan))
+        assert np.array_equal(lost.b_nT, est_all.b_nT[:50]) and np.array_equal(lost.sigma_b_nT, est_all.sigma_b_nT[:50])
 
 
 def test_missing_isotope_uses_the_other_one(realistic_model):

@@ -50,7 +50,7 @@ def test_replay_writes_estimates_close_to_truth(calibrated, mode, capsys):
     np.testing.assert_allclose(est["bx_nT"], est["b_nT"] * est["ux"], rtol=1e-12)
     # Refuses to overwrite without --force.
     assert main(["replay", str(d / "rot.csv"), "-c", str(d / "cal.json"), "-o", str(out)]) == 2
-    assert "output exists" in capsys.readouterr().err
+    assert "output file exists" in capsys.readouterr().err
 
 
 def test_replay_readouts_add_phase_columns(calibrated):
@@ -58,7 +58,7 @@ def test_replay_readouts_add_phase_columns(calibrated):
     out = d / "est_readouts.csv"
     assert main(["replay", str(d / "rot.csv"), "-c", str(d / "cal.json"), "-o", str(out), "--readouts"]) == 0
     est = read_estimates(out)
-    assert "phase_1a" in est and np.all(np.abs(est["phase_1a"]) <= 180)
+    assert "phase_1a_deg" in est and np.all(np.abs(est["phase_1a_deg"]) <= 180)
 
 
 def _wait_lines(path, n, timeout):

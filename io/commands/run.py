@@ -137,6 +137,7 @@ def run(args) -> int:
     from fieldvane.io.errors import EXIT_CAPTURE_LOST, EXIT_FAILURE, EXIT_LINK
     from fieldvane.io.filterfile import read_filter_settings
     from fieldvane.io.live import run_live
+    from fieldvane.io.estimation import counters_table, noise_line
     from fieldvane.io.table_cache import cache_dir_for, load_or_build_table
 
     columns, specs = check_options(args)
@@ -154,6 +155,9 @@ def run(args) -> int:
     def estimate(sample):
         return tracker.step(sample).row()
 
+    def estimate_batch(samples):
+        return [est.row() for est in tracker.step_record(samples).estimates()]
+
     def watch_link(loop):
         def check():
             if not loop.wait_for(lambda lp: lp.link.counters().get("opens", 0) > 0, args.link_timeout):
@@ -167,9 +171,10 @@ def run(args) -> int:
     summary = run_live(args.port, args.input, estimate, specs, args.capture, columns=columns,
                        baudrate=args.baud, log_interval_s=args.log_interval,
                        max_capture_file_bytes=int(args.capture_file_mib * 2**20),
-                       capture_buffer_bytes=int(args.capture_buffer_mib * 2**20), on_ready=watch_link)
-    c = tracker.counters
-    print(f"fieldvane run: tracker {c}", file=sys.stderr)
+                       capture_buffer_bytes=int(args.capture_buffer_mib * 2**20), on_ready=watch_link,
+                       estimate_batch=estimate_batch)
+    print(noise_line(tracker), file=sys.stderr)
+    print(counters_table(tracker.counters.as_dict(), "fieldvane run: tracker:"), file=sys.stderr)
     if link_failed.is_set():
         _remove_empty_outputs(specs, summary)
         print(f"fieldvane run: failed: {args.port} never opened within {args.link_timeout:g} s", file=sys.stderr)
