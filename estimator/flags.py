@@ -21,7 +21,8 @@ class EstimateFlag(enum.IntFlag):
     BAD_INPUT = 1 << 10          # non-finite or missing values in the sample; not used
     COVARIANCE_FAULT = 1 << 11   # covariance lost symmetry or positive definiteness; filter reset
     NO_ESTIMATE = 1 << 12        # nothing to report yet (before acquisition)
-    NOISY = 1 << 13              # lock-in noise above its calibrated level: measurement noise inflated
+    NOISY = 1 << 13              # lock-in noise above this stream's normal level: measurement noise inflated
+    INTERPOLATED = 1 << 14       # |B| where the calibration's model is interpolated beyond its verified accuracy
 
 
 def describe(value: int) -> str:

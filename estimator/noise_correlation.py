@@ -39,7 +39,7 @@ from fieldvane.estimator.lockin_noise import autocorrelation, correlation_factor
 MAX_LAG_S = 0.5          # longest lag fitted (s): covers 4 stages of up to ~25 ms
 N_LAGS = 40              # lags spread geometrically from 1 sample to the longest
 MIN_PAIRS = 50           # fewest second differences behind one lag's median
-MAX_ROWS = 60_000        # second differences per lag used for the median (evenly spread); bounds the work
+MAX_ROWS = 20_000        # second differences per lag used for the median (evenly spread); bounds the work
 ORDERS = tuple(range(1, 9))
 INDEPENDENT_KAPPA = 1.1  # below this bandwidth factor the samples count as independent (std within 5%)
 BURST_WINDOW_S = 0.5     # windows compared to find noise bursts (s)

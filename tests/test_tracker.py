@@ -7,6 +7,7 @@ Cramer-Rao bound sqrt(trace J^-1), J = H^T R^-1 H with H the tangent Jacobian of
 response by central differences and R its true noise (computed here, independent of the tracker).
 """
 
+import dataclasses
 import math
 
 import numpy as np
@@ -745,3 +746,83 @@ def test_snapshot_solver_as_initiator(two_probe):
     err = errors_deg(rec, u)
     k = tracker.settings.lost_after_gated
     assert tracker.counters.acquisitions == 2 and err[:600].max() < 0.5 and err[600 + k:].max() < 0.5
+
+
+# ------------------------------------------------------------------------------------------- time faults
+def _two_runs(sensor, sigma):
+    """Two recordings joined end to end: each starts at t = 0, the second at another direction."""
+    t1, u1 = rotating(1000, 3.0, [0.2, 0.1, 1.0], normalize(np.array([0.8, 0.3, 0.5])))
+    t2, u2 = rotating(1000, -2.0, [1.0, 0.3, 0.1], normalize(np.array([-0.2, 0.7, 0.6])))
+    a, b = make_stream(sensor, t1, u1, B0, sigma, seed=3), make_stream(sensor, t2, u2, B0, sigma, seed=4)
+    return SampleBlock(np.r_[a.t, b.t], np.r_[a.f, b.f], np.r_[a.z, b.z], a.channels), np.r_[u1, u2]
+
+
+def test_time_going_backwards_restarts_the_track(two_probe):
+    """Two recordings joined end to end (time jumps back to 0): the tracker restarts at the join with the reason
+    'time_backwards' instead of freezing; every later estimate tracks the second run's field."""
+    sensor, cal, sigma = two_probe
+    blk, u = _two_runs(sensor, sigma)
+    tracker = Tracker(cal, FilterSettings(), GridInitiator(cal.model))
+    rec = tracker.run_arrays(blk)
+    err = errors_deg(rec, u)
+    assert rec.flags[1000] & F.REACQUIRED and tracker.resets[-1].reason == "time_backwards"
+    assert tracker.counters.time_backwards == 1 and tracker.counters.acquisitions == 2
+    assert err[1001:].max() < 0.3 and np.all(rec.flags[1001:] & F.TRACKING)
+
+
+@pytest.mark.parametrize("glitch", [1e300, math.nan, -5.0])
+def test_one_corrupt_timestamp_is_not_a_frozen_track(two_probe, glitch):
+    """One corrupt time (far future, not a number, far past): at most a restart or two, no estimate frozen, the
+    error against truth stays small before and after."""
+    sensor, cal, sigma = two_probe
+    t, u = rotating(1200, 4.0, [0.2, 0.1, 1.0], normalize(np.array([0.8, 0.3, 0.5])))
+    blk = make_stream(sensor, t, u, B0, sigma)
+    blk.t[600] = glitch
+    tracker = Tracker(cal, FilterSettings(), GridInitiator(cal.model))
+    rec = tracker.run_arrays(blk)
+    err = errors_deg(rec, u)
+    assert tracker.counters.acquisitions <= 3
+    assert err[50:600].max() < 0.3 and err[602:].max() < 0.3
+    assert np.all(rec.flags[602:] & F.TRACKING)
+    if not math.isfinite(glitch):
+        assert rec.flags[600] & F.BAD_INPUT and tracker.counters.bad_times == 1
+
+
+def test_a_source_restart_restarts_the_track(two_probe):
+    """A sample marked `restarted` (the sensor's sequence number went back) starts the track afresh there."""
+    sensor, cal, sigma = two_probe
+    blk, _ = _short_block(sensor, sigma, n=300)
+    samples = [blk.sample(i) for i in range(300)]
+    samples[150] = dataclasses.replace(samples[150], restarted=True)
+    tracker = Tracker(cal, FilterSettings(), GridInitiator(cal.model))
+    out = [tracker.step(s) for s in samples]
+    assert out[150].flags & F.REACQUIRED and tracker.resets[-1].reason == "sensor_restart"
+    assert tracker.counters.restarts == 1
+
+
+def test_repeated_timestamps_are_not_fused_twice(two_probe):
+    """Every row with the same time: the first is acquired, the rest counted and not fused (sigma does not shrink
+    on re-used information)."""
+    sensor, cal, sigma = two_probe
+    blk, _ = _short_block(sensor, sigma, n=200)
+    blk.t[:] = 1.0
+    tracker = Tracker(cal, FilterSettings(), GridInitiator(cal.model))
+    rec = tracker.run_arrays(blk)
+    assert tracker.counters.duplicate_times == 199 and tracker.counters.fused == 0
+    assert np.allclose(rec.sigma_deg[1:], rec.sigma_deg[0])
+
+
+def test_between_magnitude_levels_sigma_stays_honest_and_is_flagged(ramp_two_probe):
+    """Calibrated at 1, 2.5, 7 and 20 uT (the synthetic sensor's phase changes at low field), tracked at 12 uT and at
+    a scanned level: between levels the calibration's model error (Calibration.model_error_ratio, leave-one-level-
+    out; here about 0.4 of the noise variance at 12 uT) widens sigma, so >= 93 % of errors stay within 2 sigma, and
+    INTERPOLATED says so; on a level neither happens."""
+    sensor, cal, sigma = ramp_two_probe
+    t, u = rotating(3000, 3.0, [0.3, 1.0, 0.2], normalize(np.array([1.0, 0.5, 0.7])))
+    assert cal.model_error_ratio(np.array([12000.0])).max() > FilterSettings().model_error_flag_ratio
+    for b, between in ((12000.0, True), (7000.0, False)):
+        rec = Tracker(cal, FilterSettings(), GridInitiator(cal.model)).run_arrays(make_stream(sensor, t, u, b, sigma))
+        err, sig = errors_deg(rec, u)[400:], rec.sigma_deg[400:]
+        assert np.mean(err < 2 * sig) >= 0.93
+        flagged = np.mean(rec.flags[400:] & F.INTERPOLATED > 0)
+        assert flagged > 0.9 if between else flagged == 0.0

@@ -40,7 +40,6 @@ examples:
 """
 
 MIN_SAMPLES = 200          # fewer cannot support a noise estimate and a likelihood search
-REPLAY_CHUNK = 8192        # samples per tracker call in the before/after replays (progress steps)
 BEFORE_MAX_REACQUISITIONS = 20   # 'before' that lost the track more often on the search samples is not replayed
 KAPPA_MISMATCH = 0.25      # stated and measured lock-in bandwidth factors differing by more: a note
 
@@ -116,14 +115,17 @@ def run(args) -> int:
     seconds = time.perf_counter() - start
     notes = _lockin_check(cal, block, before, result) if lockin_source != "fitted from the data" else []
     after = result.settings
-    summaries = {"after": _replay_summary(cal, block, after, solver.initiate, bar, "after", rate)}
     ref = result.reference
+    replay = {"after": after}
     if ref is not None and int(ref.reacquisitions[0]) > BEFORE_MAX_REACQUISITIONS:
         notes.append(f"the settings before lost the track {int(ref.reacquisitions[0])} times on the search samples: "
                      f"not replayed in full")
-        summaries["before"] = {}
     else:
-        summaries["before"] = _replay_summary(cal, block, before, solver.initiate, bar, "before", rate)
+        replay["before"] = before
+    bar(0, len(replay), "replays")
+    summaries = _replays(cal, block, replay, solver.initiate, rate)
+    summaries.setdefault("before", {})
+    bar(len(replay), len(replay), "replays")
     bar.close()
     verdict = _verdict(summaries["after"])
 
@@ -246,29 +248,35 @@ def _lockin_check(cal, block, stated, result) -> list[str]:
 
 # ----------------------------------------------------------------------------------------- replays
 
-def _replay_summary(cal, block, settings, initiator, bar, name: str, rate_hz) -> dict:
+def _replays(cal, block, settings: dict, initiator, rate_hz) -> dict:
+    """Return {name: summary} of the tracker run over the whole block with each of settings (name -> settings);
+    the runs go in parallel threads (the compiled filter releases the interpreter lock)."""
+    from concurrent.futures import ThreadPoolExecutor
+
+    from fieldvane.estimator.tracker import Tracker, TrackerModel
+
+    model = TrackerModel(cal.model, 1.0)
+    names = list(settings)
+    Tracker(cal, settings[names[0]], initiator, model=model)   # fills the model's shared caches before threads
+    with ThreadPoolExecutor(max_workers=len(names)) as pool:
+        done = list(pool.map(lambda n: _replay_summary(cal, block, settings[n], initiator, rate_hz, model), names))
+    return dict(zip(names, done))
+
+
+def _replay_summary(cal, block, settings, initiator, rate_hz, model=None) -> dict:
     """Return io.report.summarize numbers (plus NIS statistics and the bound) of the tracker over the whole block."""
     import numpy as np
 
     from fieldvane.estimator.flags import EstimateFlag
     from fieldvane.estimator.honesty import nis_statistics
-    from fieldvane.estimator.samples import SampleBlock
     from fieldvane.estimator.tracker import Tracker
     from fieldvane.io.report import summarize, truth_of
 
-    tracker = Tracker(cal, settings, initiator, sample_rate_hz=rate_hz)
-    n = len(block)
-    parts = []
-    bar(0, n, f"replay {name}")
-    for s in range(0, n, REPLAY_CHUNK):
-        sl = slice(s, min(s + REPLAY_CHUNK, n))
-        # The tracker keeps its state between calls: consecutive chunks are one run.
-        parts.append(tracker.run_arrays(SampleBlock(block.t[sl], block.f[sl], block.z[sl], block.channels)))
-        bar(sl.stop, n, f"replay {name}")
-    u = np.concatenate([p.u for p in parts])
-    est = {"t": np.concatenate([p.t for p in parts]), "ux": u[:, 0], "uy": u[:, 1], "uz": u[:, 2]}
+    tracker = Tracker(cal, settings, initiator, sample_rate_hz=rate_hz, model=model)
+    rec = tracker.run_arrays(block)
+    est = {"t": rec.t, "ux": rec.u[:, 0], "uy": rec.u[:, 1], "uz": rec.u[:, 2]}
     for key in ("b_nT", "sigma_deg", "flags", "nis", "nis_dof", "b_a_nT", "b_b_nT", "bound_deg"):
-        est[key] = np.concatenate([getattr(p, key) for p in parts])
+        est[key] = getattr(rec, key)
     summary = summarize(est, truth_of(block))
     flags = est["flags"]
     summary["gated_fraction"] = float(np.mean((flags & int(EstimateFlag.GATED)) != 0))

@@ -1,0 +1,6 @@
+"""Shared test settings: one BLAS thread (the matrices here are small; threads only fight over the cores)."""
+
+import os
+
+for _name in ("OPENBLAS_NUM_THREADS", "OMP_NUM_THREADS", "MKL_NUM_THREADS"):
+    os.environ.setdefault(_name, "1")
