@@ -426,7 +426,7 @@ def fit_calibration(u: np.ndarray, b_nT: np.ndarray, z: np.ndarray, f: np.ndarra
         uk, bk, zk, sk = u[keep], b_nT[keep], z[keep], s_all[keep]
         result = _fit_inliers(uk, bk, zk, sk, knots, basis, nearest_all[keep], channels, noise0,
                               nominal_pumps, nominal_probes, max_correction_degree, folds, ridge, seed,
-                              fit_efficiency, fit_detuning, warnings if attempt == 0 else [])
+                              fit_efficiency, fit_detuning, [])
         stat, worst = row_statistic(result["heldout"], np.maximum(robust_scale(result["heldout"]), 1e-300))
         limit = row_threshold(len(channels), row_alpha)
         late = stat > limit
@@ -444,12 +444,6 @@ def fit_calibration(u: np.ndarray, b_nT: np.ndarray, z: np.ndarray, f: np.ndarra
         noise0 = result["noise"]
 
     rejected.sort(key=lambda r: r.index)
-    if rejected:
-        kinds = {}
-        for r in rejected:
-            kinds[r.reason] = kinds.get(r.reason, 0) + 1
-        warnings.append(f"{len(rejected)} row(s) left out of the fit ("
-                        + ", ".join(f"{v} {k}" for k, v in sorted(kinds.items())) + ")")
     cal = result["calibration"]
     cal.pump_isotopes = tuple(isotopes)
     cal.rejected_rows = rejected

@@ -272,7 +272,7 @@ def _move(fs, a1, a2):
 
 
 # ============================================================================== model
-@njit(cache=True, nogil=True)
+@njit(cache=True, nogil=True, fastmath=True)      # finite inputs only; lets the sums vectorize
 def _model_rows(fs, istate, icfg, w_table, exps, weff, seg, segt, rows, pw):
     """Write rows (4, 2C): whitened h(u, |B|) and its ambient gradient d/d(x, y, z) at the current u."""
     nmono = icfg[I_NMONO]
@@ -298,15 +298,14 @@ def _model_rows(fs, istate, icfg, w_table, exps, weff, seg, segt, rows, pw):
     for e in range(1, deg + 1):
         for a in range(3):
             pw[a, e] = pw[a, e - 1] * fs[S_U + a]
-    nrow, m = rows.shape[0], rows.shape[1]
-    for r in range(nrow):
-        for k in range(m):
-            rows[r, k] = 0.0
+    flat = rows.ravel()
+    for c in range(ncol):
+        flat[c] = 0.0
     for mm in range(nmono):
         v = pw[0, exps[mm, 0]] * pw[1, exps[mm, 1]] * pw[2, exps[mm, 2]]
-        for r in range(nrow):
-            for k in range(m):
-                rows[r, k] += v * weff[mm, r * m + k]
+        wrow = weff[mm]
+        for c in range(ncol):
+            flat[c] += v * wrow[c]
 
 
 @njit(cache=True, nogil=True)
@@ -320,26 +319,30 @@ def _measurement(fs, x, icfg, comp_probe, chan_probe, rows, h, ht):
     for r in range(no):
         for k in range(2 * n_ch):
             ht[r, k] = 0.0
+    last_probe = -1
+    scale = 1.0
     for c in range(n_ch):
-        g = x[2 + chan_probe[c]] if n_gain else 0.0
-        phi = x[2 + n_gain + c] if n_phase else 0.0
-        scale = math.exp(g)
-        ca, sa = scale * math.cos(phi), scale * math.sin(phi)
+        if n_gain and chan_probe[c] != last_probe:
+            last_probe = chan_probe[c]
+            scale = math.exp(x[2 + last_probe])
+        if n_phase:
+            phi = x[2 + n_gain + c]
+            ca, sa = scale * math.cos(phi), scale * math.sin(phi)
+        else:
+            ca, sa = scale, 0.0
         kx, ky = 2 * c, 2 * c + 1
         # value row and gradient rows, rotated and scaled by the drift
-        hx = ca * rows[0, kx] - sa * rows[0, ky]
-        hy = sa * rows[0, kx] + ca * rows[0, ky]
+        r0x, r0y = rows[0, kx], rows[0, ky]
+        hx = ca * r0x - sa * r0y
+        hy = sa * r0x + ca * r0y
         h[kx], h[ky] = hx, hy
-        d1x = d1y = d2x = d2y = 0.0
-        for j in range(3):
-            gx = ca * rows[1 + j, kx] - sa * rows[1 + j, ky]
-            gy = sa * rows[1 + j, kx] + ca * rows[1 + j, ky]
-            ej1 = ax if j == 0 else (ay if j == 1 else az)
-            ej2 = bx if j == 0 else (by if j == 1 else bz)
-            d1x += ej1 * gx
-            d1y += ej1 * gy
-            d2x += ej2 * gx
-            d2y += ej2 * gy
+        # tangent projections of the gradient rows (d/dx, d/dy, d/dz), then the same rotation
+        p1x = ax * rows[1, kx] + ay * rows[2, kx] + az * rows[3, kx]
+        p1y = ax * rows[1, ky] + ay * rows[2, ky] + az * rows[3, ky]
+        p2x = bx * rows[1, kx] + by * rows[2, kx] + bz * rows[3, kx]
+        p2y = bx * rows[1, ky] + by * rows[2, ky] + bz * rows[3, ky]
+        d1x, d1y = ca * p1x - sa * p1y, sa * p1x + ca * p1y
+        d2x, d2y = ca * p2x - sa * p2y, sa * p2x + ca * p2y
         ht[0, kx], ht[0, ky], ht[1, kx], ht[1, ky] = d1x, d1y, d2x, d2y
         if n_gain:
             r = 2 + chan_probe[c]

@@ -13,10 +13,9 @@ from __future__ import annotations
 import math
 from dataclasses import dataclass, field
 
-from scipy.special import chdtri
-
 import numpy as np
 
+from fieldvane.estimator.chi_square import chi2_quantile
 from fieldvane.estimator.blind import BLIND_FACTOR, blind_mask, check_factor, median_bound_deg
 from fieldvane.estimator.estimate import Estimate
 from fieldvane.estimator.fisher import channel_selection, invert_2x2, probe_groups, sigma_deg_from_covariance
@@ -341,8 +340,7 @@ class SnapshotSolver:
         has_alt = np.isfinite(alt_d)
 
         flags = np.zeros(n, dtype=np.int64)
-        # chi-square quantile with 2 dof: chdtri inverts the upper tail (scipy.special: lighter than scipy.stats)
-        flags[has_alt & (alt_d < chdtri(2.0, s.ambiguity_alpha))] |= int(F.AMBIGUOUS)
+        flags[has_alt & (alt_d < chi2_quantile(1.0 - s.ambiguity_alpha, 2.0))] |= int(F.AMBIGUOUS)
         flags[blind_mask(sigma, self.median_bound_deg, s.blind_factor)] |= int(F.BLIND)
         flags[np.all(np.abs(zw) < s.low_signal_snr, axis=1)] |= int(F.LOW_SIGNAL)
 

@@ -37,13 +37,12 @@ from __future__ import annotations
 import math
 from collections import deque
 from dataclasses import dataclass, field, fields
-from typing import Protocol
+from typing import TYPE_CHECKING, Protocol
 
 import numpy as np
 
-from fieldvane.estimator import filter_core as core
+from fieldvane.estimator import chi_square, filter_core as core
 from fieldvane.estimator.blind import median_bound_deg
-from fieldvane.estimator.calibration import Calibration
 from fieldvane.estimator.estimate import Estimate
 from fieldvane.estimator.filter_settings import FilterSettings
 from fieldvane.estimator.flags import EstimateFlag as F
@@ -54,6 +53,9 @@ from fieldvane.estimator.response import to_real
 from fieldvane.estimator.samples import Sample, SampleBlock, channel_probe
 from fieldvane.estimator.sphere import angle_between, tangent_basis
 from fieldvane.estimator.tracker_model import StateLayout, TrackerModel
+
+if TYPE_CHECKING:                                   # (importing it would load the fitting code at start-up)
+    from fieldvane.estimator.calibration import Calibration
 
 _DISAGREE, _OUTSIDE, _BAD, _LOW = int(F.MAGNITUDE_DISAGREE), int(F.OUTSIDE_CALIBRATION), int(F.BAD_INPUT), int(
     F.LOW_SIGNAL)
@@ -222,9 +224,7 @@ def initial_covariance_diagonal(settings: FilterSettings, layout: StateLayout) -
 
 def chi2_quantile(probability: float, dof) -> np.ndarray:
     """Return chi-square quantiles (dimensionless) at `probability` for degrees of freedom dof (array)."""
-    from scipy.special import chdtri    # lighter than scipy.stats; chdtri(k, q) inverts the upper tail
-
-    return chdtri(np.asarray(dof, float), 1.0 - probability)
+    return np.array([chi_square.chi2_quantile(probability, float(k)) for k in np.atleast_1d(dof)])
 
 
 def gate_thresholds(settings: FilterSettings, n_meas: int) -> np.ndarray:
@@ -366,7 +366,7 @@ class Tracker:
         # A noise value is |z_k - 2 z_(k-1) + z_(k-2)|^2 over a probe's m components: each component's variance
         # is (6 - 8 rho1 + 2 rho2) sigma^2, so the sum over its median is median-unbiased for the variance ratio.
         second = second_difference_variance(rho1, rho2)
-        a.normalizers[:] = [1.0 / (second * float(chi2_quantile(0.5, m))) for m in self._group_sizes]
+        a.normalizers[:] = [1.0 / (second * chi_square.chi2_quantile(0.5, m)) for m in self._group_sizes]
 
     # ----------------------------------------------------------------------------------- state views
     @property

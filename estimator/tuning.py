@@ -4,8 +4,9 @@ Measurement noise and the lock-in's correlation (estimator/noise_correlation.py)
 noise level from second differences of the lock-in values, which cancel anything constant or linear
 over a few samples, so a slow gain or phase drift cannot pass for white noise; the lock-in's RC
 filter (time constant, order) fitted from how those differences grow with the lag, unless the
-recording or the settings state it. The per-channel levels go into channel_noise_scale (with
-measurement_noise_scale = 1), the filter into lockin_time_constant_s / lockin_filter_order.
+recording or the settings state it. The channels' relative levels go into channel_noise_scale (with
+measurement_noise_scale = 1; the tracker learns the common level from the stream), the filter into
+lockin_time_constant_s / lockin_filter_order.
 
 Process noise, per state set. Three sets of states are compared: 'none' (direction and rate only),
 'gain' (plus a log-gain per probe) and 'gain+phase' (plus a phase offset per channel). Each set's
@@ -165,13 +166,23 @@ def stream_noise(calibration: Calibration, block: SampleBlock, settings: FilterS
 
 
 def noise_settings(settings: FilterSettings, noise: NoiseFit, calibrated_std_V: np.ndarray) -> FilterSettings:
-    """Return settings with the measured per-channel noise (channel_noise_scale, common scale 1) and lock-in filter."""
+    """Return settings with the measured per-channel noise and the lock-in filter.
+
+    channel_noise_scale gets each channel's noise ratio (stream over calibration) relative to their root
+    mean square, and measurement_noise_scale 1: the tracker learns the common level from the stream
+    (noise_baseline_ratio 0), and its BLIND rule compares bounds at the calibrated noise times that learned
+    level, so the factors must not carry the level too. A fixed noise_baseline_ratio in `settings` is
+    replaced by the measured one (the mean variance ratio).
+    """
     ratio = noise.ratio(calibrated_std_V)
     if not np.all(np.isfinite(ratio) & (ratio > 0)):
         bad = [c for c, r in zip(noise.channels, ratio) if not (np.isfinite(r) and r > 0)]
         raise ValueError(f"no noise level could be measured on channel(s) {', '.join(bad)}")
+    level = float(np.sqrt(np.mean(ratio ** 2)))
     changes = {"measurement_noise_scale": 1.0,
-               "channel_noise_scale": tuple((c, float(round(r, 4))) for c, r in zip(noise.channels, ratio))}
+               "channel_noise_scale": tuple((c, float(round(r / level, 4))) for c, r in zip(noise.channels, ratio))}
+    if settings.noise_baseline_ratio > 0:
+        changes["noise_baseline_ratio"] = float(f"{level ** 2:.4g}")
     if noise.source == "data":
         changes["lockin_time_constant_s"] = float(f"{noise.tau_s:.4g}") if noise.tau_s > 0 else 0.0
         if noise.tau_s > 0:

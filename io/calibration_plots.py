@@ -76,7 +76,7 @@ def plot_residual_sphere(path, cal, u, ratio, rejected) -> Path:
     keep = np.all(np.isfinite(u), axis=1)
     image = None
     for c, ch in enumerate(channels):
-        for h, (label, frame) in enumerate(HEMISPHERES):
+        for h, (_, frame) in enumerate(HEMISPHERES):
             ax = axes[c, h]
             upper = u[:, 2] >= 0 if h == 0 else u[:, 2] < 0
             sel = np.flatnonzero(keep & upper & ~rejected)
@@ -93,7 +93,8 @@ def plot_residual_sphere(path, cal, u, ratio, rejected) -> Path:
             for name, v in (("+x", [1.0, 0, 0]), ("+y", [0, 1.0, 0])):
                 x, y = 1.12 * disk_xy(np.array(v), frame)
                 ax.text(x, y, name, ha="center", va="center", fontsize=8)
-            ax.set_title(f"channel {ch}: {label}", fontsize=8)
+            ax.set_title(f"channel {ch}, {'upper (uz >= 0), from +z' if h == 0 else 'lower (uz < 0), from -z'}",
+                         fontsize=8)
             ax.set_xlim(-1.25, 1.25)
             ax.set_ylim(-1.25, 1.25)
             ax.set_aspect("equal")
@@ -157,6 +158,7 @@ def plot_model_error(path, cal) -> Path:
     ax.axhline(1.0, color="black", linewidth=0.7, linestyle="--")
     ax.set_xscale("log")
     ax.set_yscale("symlog", linthresh=0.1)
+    ax.set_ylim(0.0, None)
     ax.set_xlabel("|B| (nT); grey lines: scanned levels")
     ax.set_ylabel("expected model error / noise (std)")
     plain_ticks(ax.xaxis, log=True)

@@ -149,10 +149,10 @@ def summary_text(cal, scan_name, rows, skipped, sensor=None) -> str:
         extra = ""
         if cal.nominal_pump_axes is not None:
             extra = f"  {axis_angle_deg(ph.pump_axes[j], cal.nominal_pump_axes[j]):.2f} deg from nominal"
-        eff = ph.efficiency[j, j]
+        eff = float(np.real(ph.efficiency[j, j]))
         lines.append(f"  {pid}  {cal.pump_isotopes[j]:5s} {cal.gammas_hz_per_nt[j]:.4f} Hz/nT  "
                      f"axis {_axis(ph.pump_axes[j])}{sigma(j)}{extra}  "
-                     f"efficiency {100 * eff / (2 + eff):+.1f} % about its mean over the pump-field angle")
+                     f"efficiency {100 * eff / (2 + eff):+.1f} % with the pump-field angle (+: higher along the pump)")
     lines.append(f"  angle between pumps: {axis_angle_deg(ph.pump_axes[0], ph.pump_axes[1]):.3f} deg")
     lines.append("probes:")
     for i in range(ph.probe_axes.shape[0]):
