@@ -82,6 +82,7 @@ class MagnitudeCheck:
         below, above = np.maximum(xs[0] - x, 0.0), np.maximum(x - xs[-1], 0.0)
         clamp = below[:, None] ** 2 * self.end_slope_ratio[0] + above[:, None] ** 2 * self.end_slope_ratio[1]
         r = np.maximum(r, clamp)
+        r[np.min(np.abs(x[:, None] - xs[None, :]), axis=1) < 1e-9] = 0.0   # at a level: verified (no round-off)
         if not self.stepped:
             lo, hi = np.log(self.levels_nT.min()), np.log(self.levels_nT.max())
             r[(x >= lo) & (x <= hi)] = 0.0        # a continuous scan verified every magnitude in its range

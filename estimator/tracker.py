@@ -523,15 +523,37 @@ class Tracker:
         model (exchange pull, light shift, heading error) at the tracked direction, with MAGNITUDE_DISAGREE judged
         against the corrected isotopes' own uncertainty; without a model, f / gamma and no sigma."""
         mm = getattr(self.calibration, "magnitude_model", None)
-        if mm is None or len(b) == 0:
-            return b, per, np.full(len(b), np.nan), flags
-        est = mm.estimate(f_hz, u, np.radians(sigma_deg))
-        good = np.isfinite(est.b_nT)
-        b = np.where(good, est.b_nT, b)
-        per = np.where(np.isfinite(est.b_per_isotope), est.b_per_isotope, per)
-        disagree = disagreement(est.b_per_isotope, est.sigma_difference_nT, self.settings.magnitude_tolerance)
+        n = len(b)
+        if mm is None or n == 0:
+            return b, per, np.full(n, np.nan), flags
+        # The corrections (exchange pull, light shift, heading error) change with the slowly moving direction and
+        # |B| only: evaluated every MAGNITUDE_STRIDE samples and interpolated, the per-sample |B| keeps its own
+        # frequency; a stride changes a correction by far less than the frequency noise at tracking rates.
+        if n <= 4 * MAGNITUDE_STRIDE:
+            rows = np.arange(n)
+        else:
+            rows = np.unique(np.r_[np.arange(0, n, MAGNITUDE_STRIDE), n - 1])
+        est = mm.estimate(f_hz[rows], u[rows], np.radians(sigma_deg[rows]))
+        with np.errstate(invalid="ignore", divide="ignore"):
+            m = f_hz / np.asarray(self._gammas)[None, :]
+        if rows.size < n:
+            idx = np.arange(n)
+            delta = m[rows] - est.b_per_isotope           # the correction each isotope received (nT)
+            per_c = np.column_stack([m[:, k] - _interp_finite(idx, rows, delta[:, k]) for k in range(2)])
+            w = np.column_stack([_interp_finite(idx, rows, est.weights[:, k]) for k in range(2)])
+            sigma_b = _interp_finite(idx, rows, est.sigma_b_nT)
+            sigma_diff = _interp_finite(idx, rows, est.sigma_difference_nT)
+            both = np.isfinite(per_c).all(axis=1)
+            fused = np.where(both, (w * np.where(np.isfinite(per_c), per_c, 0.0)).sum(axis=1),
+                             np.where(np.isfinite(per_c[:, 0]), per_c[:, 0], per_c[:, 1]))
+        else:
+            per_c, fused, sigma_b, sigma_diff = est.b_per_isotope, est.b_nT, est.sigma_b_nT, est.sigma_difference_nT
+        good = np.isfinite(fused)
+        b = np.where(good, fused, b)
+        per = np.where(np.isfinite(per_c), per_c, per)
+        disagree = disagreement(per_c, sigma_diff, self.settings.magnitude_tolerance)
         flags = np.where(good, (flags & ~_DISAGREE) | np.where(disagree, _DISAGREE, 0), flags)
-        return b, per, np.where(good, est.sigma_b_nT, np.nan), flags
+        return b, per, np.where(good, sigma_b, np.nan), flags
 
     def _run_prepared(self, inp: PreparedInput, fout: np.ndarray, iout: np.ndarray, sample_at) -> None:
         """Run the core over prepared samples, asking the initiator whenever the core stops for a (re)start."""
@@ -629,6 +651,17 @@ class Tracker:
     def run(self, block: SampleBlock) -> list[Estimate]:
         """Return one Estimate per sample of the block (see run_arrays for the array form)."""
         return self.run_arrays(block).estimates()
+
+
+MAGNITUDE_STRIDE = 16     # samples between evaluations of the calibrated magnitude corrections
+
+
+def _interp_finite(x: np.ndarray, xp: np.ndarray, fp: np.ndarray) -> np.ndarray:
+    """Return fp (at positions xp) linearly interpolated at x, over its finite values only (nan if none)."""
+    ok = np.isfinite(fp)
+    if not ok.any():
+        return np.full(x.shape, np.nan)
+    return np.interp(x, xp[ok], fp[ok])
 
 
 def _rate_from_times(t: np.ndarray) -> float | None:

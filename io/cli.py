@@ -10,6 +10,7 @@ import warnings
 
 from fieldvane import __version__
 from fieldvane.io.errors import EXIT_BAD_INPUT, EXIT_FAILURE, EXIT_INTERRUPTED, InputError, JobError
+from fieldvane.io.options import Parser
 
 # name -> (module, one-line help). Modules are imported only when their command runs, so the
 # live loop (`run`) never pays for plotting or fitting imports.
@@ -24,16 +25,18 @@ COMMANDS = {
     "run": ("run", "live: read a serial port, estimate, stream to loggers, capture raw bytes"),
     "tune": ("tune", "fit filter noise settings to a recording by innovation likelihood"),
     "report": ("report", "plots and a summary of an estimates CSV"),
+    "examples": ("examples", "copy the example scenarios (and a sensor file) into a folder"),
+    "docs": ("docs", "show where the documentation is, or print one document"),
 }
 
 
 def build_parser() -> argparse.ArgumentParser:
     """Return the top-level argument parser with every subcommand registered."""
-    parser = argparse.ArgumentParser(
+    parser = Parser(
         prog="fieldvane",
         description="Field direction and magnitude from the lock-in outputs of a two-isotope "
                     "all-optical vector atomic magnetometer. Not a safety or navigation "
-                    "instrument by itself.",
+                    "instrument by itself. `fieldvane docs` shows where the documentation is.",
     )
     parser.add_argument("--version", action="version", version=f"fieldvane {__version__}")
     sub = parser.add_subparsers(dest="command", metavar="COMMAND")

@@ -1,0 +1,52 @@
+"""`fieldvane examples`: list the example scenarios, or copy them into a folder to edit."""
+
+from __future__ import annotations
+
+DESCRIPTION = """List the example scenarios shipped with fieldvane (simulated sensors, motions and
+faults; docs/scenarios.md), or copy them into a folder to read and edit with -o DIR.
+
+Every command that takes a scenario also takes an example's name (and the demo's built-in
+scenarios demo_scan and demo_track), so the examples work without copying them:
+
+examples:
+  fieldvane examples
+  fieldvane examples -o my_scenarios/
+  fieldvane simulate calibration_scan -o scan.csv
+"""
+
+
+def add_arguments(parser) -> None:
+    """Register examples's options."""
+    from fieldvane.io.options import add_force, add_output_dir
+
+    add_output_dir(parser, "the copies of the example scenarios", required=False)
+    add_force(parser)
+
+
+def run(args) -> int:
+    """List or copy the example scenarios; returns the exit code."""
+    import shutil
+    from pathlib import Path
+
+    from fieldvane.io.errors import JobError
+    from fieldvane.io.outputs import atomic_folder, check_folder_outputs, check_output
+    from fieldvane.io.resources import example_scenarios, first_line_matching, shipped_dir
+
+    scenarios = example_scenarios()
+    if not scenarios:
+        raise JobError("this installation has no example scenarios (reinstall fieldvane)")
+    if args.output is None:
+        print(f"example scenarios in {shipped_dir('examples')}/ (use a name wherever a scenario file is asked for):")
+        width = max(len(n) for n in scenarios)
+        for name, path in scenarios.items():
+            print(f"  {name:<{width}}  {first_line_matching(path, r'description\s*=\s*\"(.*)\"')}")
+        print("copy them with `fieldvane examples -o DIR`")
+        return 0
+    check_output(args.output, folder=True, force=True, option="--output")     # a file there: refused
+    with atomic_folder(args.output) as tmp:
+        for path in scenarios.values():
+            shutil.copyfile(path, Path(tmp) / path.name)
+        check_folder_outputs(tmp, args.output, inputs=list(scenarios.values()), force=args.force,
+                             option="--output")
+    print(f"copied {len(scenarios)} example scenarios to {args.output}/")
+    return 0
