@@ -26,6 +26,7 @@ from fieldvane.estimator.physics import PhysicsParameters
 from fieldvane.estimator.physics_fit import N_LINEAR_TERMS, PhysicsFitError, fit_physics
 from fieldvane.estimator.response import ResponseModel
 from fieldvane.estimator.sphere import axis_angle_deg, fibonacci_sphere, normalize, unit_to_spherical
+from fieldvane.estimator.tall import gram, rows_times
 
 PHYSICS_DEGREE = 2          # the ideal channel is exactly a degree-2 polynomial in u
 MIN_ROWS_PER_PARAMETER = 3  # common practice: a few data per fitted parameter before trusting a fit
@@ -263,14 +264,14 @@ def _cross_validate(design_for, degrees, resid, fold_of, folds, ridge):
     heldout, solutions = {}, {}
     for degree in degrees:
         design = design_for(degree)
-        gram_total = design.T @ design
-        rhs_total = design.T @ resid
+        gram_total = gram(design)
+        rhs_total = gram(design, resid)
         pred = np.empty_like(resid)
         for f in range(folds):
             test = fold_of == f
             dt = design[test]
-            sol = _solve_gram(gram_total - dt.T @ dt, rhs_total - dt.T @ resid[test], ridge)
-            pred[test] = dt @ sol
+            sol = _solve_gram(gram_total - gram(dt), rhs_total - gram(dt, resid[test]), ridge)
+            pred[test] = rows_times(dt, sol)
         heldout[degree] = resid - pred
         solutions[degree] = _solve_gram(gram_total, rhs_total, ridge)
     return heldout, solutions
@@ -520,8 +521,8 @@ def _fit_inliers(u, b_nT, z, s_basis, knots, basis, nearest_knot, channels, nois
                 "physics_residual_V": [float(x) for x in pfit.noise_std],
                 "physics_table_degree": phys_degree,
                 "covariance_std_deg": [round(float(x), 6) for x in pfit.covariance_std_deg()],
-                "jackknife_std_deg": (None if pfit.jackknife_std_deg() is None
-                                      else [round(float(x), 6) for x in pfit.jackknife_std_deg()]),
+                "level_dispersion": (None if pfit.dispersion is None
+                                     else [round(float(x), 4) for x in pfit.dispersion]),
                 "misfit_beams": [bool(x) for x in pfit.misfit_beams()]}
     col = 2 * n_beams
     if fit_efficiency:
@@ -532,6 +533,13 @@ def _fit_inliers(u, b_nT, z, s_basis, knots, basis, nearest_knot, channels, nois
         fit_info["detuning_shape_std"] = std[col + 8:col + 12].reshape(2, 2).tolist()
     params_per_knot = N_LINEAR_TERMS + np.array([n_harmonics(d) if d >= 0 else 0 for d in per_level])
     check = check_magnitudes(coef, knots, noise, b_nT, params_per_knot)
+    names = ["pump a", "pump b"] + [f"probe {i + 1}" for i in range(phys.probe_axes.shape[0])]
+    for name, misfit, disp in zip(names, pfit.misfit_beams(),
+                                  pfit.dispersion if pfit.dispersion is not None else []):
+        if misfit:
+            warnings.append(f"{name}: its axis moves with the scanned magnitudes more than the noise explains "
+                            f"(dispersion {disp:.1f}): the physics model misses an effect that changes with |B|; "
+                            f"its sigma is widened by {np.sqrt(disp):.1f}x")
     cal = Calibration(model, phys, ("", ""), chosen, reports, scores, coverage, sparse, n, warnings,
                       direction_std_deg=pfit.direction_std_deg(), correction_rms_V=correction_rms,
                       magnitude_check=check, fit_info=fit_info)

@@ -9,6 +9,7 @@ import numpy as np
 from fieldvane.estimator.monomials import exponents as monomial_exponents
 from fieldvane.estimator.monomials import monomials, monomials_and_gradient
 from fieldvane.estimator.sphere import fibonacci_sphere, unit_to_spherical
+from fieldvane.estimator.tall import rows_times
 
 
 def n_harmonics(degree: int) -> int:
@@ -59,7 +60,7 @@ def monomial_coefficients(degree: int) -> tuple[np.ndarray, np.ndarray]:
 def harmonics(degree: int, u: np.ndarray) -> np.ndarray:
     """Return real spherical harmonics Y (N, (L+1)^2) at unit vectors u (N, 3), sensor frame."""
     exps, coef = monomial_coefficients(degree)
-    return monomials(np.atleast_2d(u), exps) @ coef
+    return rows_times(monomials(np.atleast_2d(u), exps), coef)
 
 
 def harmonics_and_gradient(degree: int, u: np.ndarray) -> tuple[np.ndarray, np.ndarray]:

@@ -35,17 +35,19 @@ class InnovationScores(NamedTuple):
 
 
 def innovation_loglik(calibration: Calibration, block: SampleBlock, settings_list: Sequence[FilterSettings],
-                      initiator: Initiator, workers: int | None = None) -> InnovationScores:
+                      initiator: Initiator, workers: int | None = None,
+                      model: TrackerModel | None = None) -> InnovationScores:
     """Return per-candidate innovation scores of `block` under each of `settings_list`.
 
     loglik sums, over samples after acquisition, -0.5 (min(NIS, gate) + log det(2 pi S)) with S in
     volts^2 (R inflated by the noise level of the moment): a gated sample costs its gate, so a
     candidate cannot gain by rejecting data. workers: threads (default: the machine's cores, at most 8).
+    model: a TrackerModel of this calibration to reuse across calls (its sphere medians are cached on it).
     """
     settings_list = list(settings_list)
     if not settings_list:
         raise ValueError("settings_list is empty")
-    model = TrackerModel(calibration.model, 1.0)
+    model = model if model is not None else TrackerModel(calibration.model, 1.0)
     prepared: dict[tuple, object] = {}
 
     def score(s: FilterSettings) -> tuple[float, float, float, int]:

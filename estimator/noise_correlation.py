@@ -32,7 +32,6 @@ from dataclasses import dataclass
 
 import numpy as np
 from scipy.optimize import minimize_scalar, nnls
-from scipy.stats import chi2
 
 from fieldvane.estimator.lockin_noise import autocorrelation, correlation_factor
 
@@ -45,7 +44,7 @@ INDEPENDENT_KAPPA = 1.1  # below this bandwidth factor the samples count as inde
 BURST_WINDOW_S = 0.5     # windows compared to find noise bursts (s)
 BURST_THRESHOLD = 2.5    # a window whose second-difference level exceeds the usual by this is a burst (the
                          # tracker's adaptive_noise_threshold default: common practice)
-_CHI2_MEDIAN_2 = float(chi2.median(2))
+_CHI2_MEDIAN_2 = 2.0 * math.log(2.0)   # median of chi-square with 2 degrees of freedom (exponential)
 
 
 @dataclass(frozen=True)

@@ -18,6 +18,7 @@ import numpy as np
 from scipy.stats import chi2
 
 from fieldvane.estimator.harmonics import harmonics
+from fieldvane.estimator.tall import gram, rows_times
 
 MAD_TO_STD = 1.4826         # consistency factor of the MAD for a Gaussian (common practice)
 HUBER_QUANTILE = 0.95       # rows beyond this chi-square quantile are down-weighted (common practice)
@@ -63,9 +64,11 @@ def screen_rows(u: np.ndarray, s_basis: np.ndarray, z: np.ndarray, degree: int, 
     scale = np.ones(c_n)
     resid = z
     for _ in range(max_iterations):
-        sw = np.sqrt(w)[:, None]
-        coef, *_ = np.linalg.lstsq(design * sw, target * sw, rcond=None)
-        r = target - design @ coef
+        weighted = design * w[:, None]
+        normal = gram(weighted, design)
+        normal[np.diag_indices_from(normal)] += 1e-12 * (np.trace(normal) / normal.shape[0] + 1e-300)
+        coef = np.linalg.solve(normal, gram(weighted, target))
+        r = target - rows_times(design, coef)
         resid = r[:, :c_n] + 1j * r[:, c_n:]
         scale = np.maximum(robust_scale(resid), 1e-300)
         stat, _ = row_statistic(resid, scale)

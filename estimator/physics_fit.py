@@ -19,11 +19,12 @@ from scipy.stats import chi2
 from fieldvane.estimator.physics import (DETUNING_REFERENCE_NT, LEAK_POWERS, PhysicsParameters, channel_indices,
                                          detuning_from_law, leak_law)
 from fieldvane.estimator.sphere import exp_map, tangent_basis
+from fieldvane.estimator.tall import gram, rows_times
 
 N_LINEAR_TERMS = 4        # a (c), b (s), l (c'), o (1) per channel and knot; plus one m (s') per channel
 LEAK_TEST_ALPHA = 1e-3    # significance level for keeping the s' leak term
 JACKKNIFE_MIN_LEVELS = 3  # fewer levels give too few leave-one-out fits for a spread
-JACKKNIFE_ALPHA = 0.05    # the jackknife replaces the covariance when it is larger at this level (chi-square)
+JACKKNIFE_ALPHA = 0.01    # the level dispersion widens the covariance when significant at this level (chi-square)
 DEBUG = False
 PRIOR_STD = 1.0           # weak prior on efficiency and detuning parameters (dimensionless)
 COST_TOLERANCE = 1e-3     # LM stops when the whitened chi-square falls by less than this
@@ -47,7 +48,7 @@ class PhysicsFit:
     noise_std: np.ndarray         # (C,) per-component residual std used for whitening, V
     iterations: int
     inflation: float              # covariance factor for correlated residuals (AR(1), >= 1)
-    jackknife: np.ndarray | None = None   # (n_beams, 2, 2) delete-one-level covariance, rad^2
+    dispersion: np.ndarray | None = None  # (n_beams,) leave-one-level-out dispersion, about 1 if the model holds
 
     def covariance_std_deg(self) -> np.ndarray:
         """Return each beam's 1-sigma angle from the fit's covariance alone, degrees (pumps, probes)."""
@@ -55,23 +56,16 @@ class PhysicsFit:
         return np.array([np.degrees(np.sqrt(max(np.trace(self.beam_covariance(b)), 0.0)))
                          for b in range(n_beams)])
 
-    def jackknife_std_deg(self) -> np.ndarray | None:
-        """Return each beam's 1-sigma angle from the delete-one-level jackknife, degrees, or None."""
-        if self.jackknife is None:
-            return None
-        return np.degrees(np.sqrt(np.maximum(np.trace(self.jackknife, axis1=1, axis2=2), 0.0)))
-
     def misfit_beams(self) -> np.ndarray:
-        """Return True per beam where the jackknife spread exceeds the covariance (chi-square test at JACKKNIFE_ALPHA).
+        """Return True per beam whose leave-one-level-out dispersion is significant (chi-square at JACKKNIFE_ALPHA).
 
-        Under a correct model the jackknife trace is about the covariance trace times a chi-square
-        with 2(K-1) degrees of freedom over 2(K-1) (scipy.stats.chi2 gives the limit).
+        Under a correct model 2 K times the dispersion is about chi-square with 2K degrees of
+        freedom (scipy.stats.chi2 gives the limit; the levels' shifts are treated as independent).
         """
-        jack = self.jackknife_std_deg()
-        if jack is None:
+        if self.dispersion is None:
             return np.zeros(2 + self.params.probe_axes.shape[0], bool)
-        dof = 2 * (self.params.n_knots - 1)
-        return jack ** 2 > self.covariance_std_deg() ** 2 * chi2.isf(JACKKNIFE_ALPHA, dof) / dof
+        dof = 2 * self.params.n_knots
+        return self.dispersion > chi2.isf(JACKKNIFE_ALPHA, dof) / dof
 
     def beam_covariance(self, beam: int) -> np.ndarray:
         """Return the 2x2 covariance (rad^2) of beam `beam` (pumps a, b, then probes) on beam_frames[beam]."""
@@ -80,12 +74,14 @@ class PhysicsFit:
     def direction_std_deg(self) -> np.ndarray:
         """Return each beam's 1-sigma axis angle sqrt(trace of its 2x2 covariance), degrees (pumps, probes).
 
-        The covariance is the fit's, or the delete-one-level jackknife's where that is significantly
-        larger (misfit_beams): the axis then moves with the scanned magnitudes more than noise explains.
+        The covariance is the fit's, widened by the leave-one-level-out dispersion where that is
+        significant (misfit_beams): the axis then moves with the scanned magnitudes more than the
+        noise explains, a sign the physics model misses something that changes with |B|.
         """
         std = self.covariance_std_deg()
-        jack = self.jackknife_std_deg()
-        return std if jack is None else np.where(self.misfit_beams(), jack, std)
+        if self.dispersion is None:
+            return std
+        return np.where(self.misfit_beams(), std * np.sqrt(np.maximum(self.dispersion, 1.0)), std)
 
     def parameter_std(self) -> np.ndarray:
         """Return the 1-sigma of every nonlinear parameter (n_theta,), in their own units."""
@@ -103,11 +99,11 @@ class _DenseLinear:
         self.r = r
 
     def coefficients(self, y: np.ndarray) -> np.ndarray:
-        return np.linalg.solve(self.r, self.q.conj().T @ y)
+        return np.linalg.solve(self.r, gram(self.q, y))
 
     def project(self, d: np.ndarray) -> np.ndarray:
         """Return d (N,) or (N, p) minus its least-squares fit: the part orthogonal to the design."""
-        return d - self.q @ (self.q.conj().T @ d)
+        return d - rows_times(self.q, gram(self.q, d))
 
 
 class _BlockLinear:
@@ -140,7 +136,7 @@ class _BlockLinear:
     def _project_blocks(self, d: np.ndarray) -> np.ndarray:
         out = np.array(d, dtype=complex, copy=True)
         for idx, (q, _) in zip(self.blocks, self.factors):
-            out[idx] -= q @ (q.conj().T @ out[idx])
+            out[idx] -= rows_times(q, gram(q, out[idx]))
         return out
 
     def coefficients(self, y: np.ndarray) -> np.ndarray:
@@ -149,17 +145,17 @@ class _BlockLinear:
         out = np.zeros(4 * k + n_g, complex)
         rest = y
         if n_g:
-            x_g = np.linalg.solve(self.r_g, self.q_g.conj().T @ y)
+            x_g = np.linalg.solve(self.r_g, gram(self.q_g, y))
             out[4 * k:] = x_g
             rest = y - self.columns @ x_g
         for i, (idx, (q, r)) in enumerate(zip(self.blocks, self.factors)):
-            out[i:4 * k:k] = np.linalg.solve(r, q.conj().T @ rest[idx])[:4]
+            out[i:4 * k:k] = np.linalg.solve(r, gram(q, rest[idx]))[:4]
         return out
 
     def project(self, d: np.ndarray) -> np.ndarray:
         out = self._project_blocks(d)
         if self.columns is not None:
-            out -= self.q_g @ (self.q_g.conj().T @ out)
+            out -= rows_times(self.q_g, gram(self.q_g, out))
         return out
 
 
@@ -461,35 +457,39 @@ def fit_physics(u: np.ndarray, s_basis: np.ndarray, knots_nT: np.ndarray, z: np.
     terms, qs, resid = prob.solve(phys)
     frames = prob.frames(phys)
     jac = prob.jacobian(phys, terms, qs, frames)
-    cov = _inverse_psd(jac.T @ jac + np.diag(prob.prior ** 2))
+    cov = _inverse_psd(gram(jac) + np.diag(prob.prior ** 2))
     inflation = _lag1_inflation(resid * prob.w)
     jack = _level_jackknife(prob, jac, resid) if prob.blocks is not None and k >= JACKKNIFE_MIN_LEVELS else None
     return PhysicsFit(phys, cov * inflation, frames, resid, 1.0 / prob.w, iterations, inflation, jack)
 
 
 def _level_jackknife(prob: _Problem, jac: np.ndarray, resid: np.ndarray) -> np.ndarray | None:
-    """Return the delete-one-level jackknife covariance of the beam angles (n_beams, 2, 2), rad^2.
+    """Return per beam the dispersion of its leave-one-level-out shifts (n_beams,): about 1 when the model holds.
 
     Each magnitude level is left out in turn: the fit without it is one Gauss-Newton step from
-    the full solution, (A - A_k)^-1 J_k^T r_k, with A = J^T J and A_k, J_k that level's rows (the
-    one-step jackknife; for a stepped scan the level's own linear terms leave with it). The spread,
-    (K-1)/K sum (d_k - mean)(d_k - mean)^T (Efron and Stein, Ann. Stat. 9, 1981; delete-a-group
-    form), shows how much the axes depend on which magnitudes were scanned: no more than the
-    covariance when the physics model holds, more when it misses an effect that changes with |B|.
+    the full solution, d_k = -(A - A_k)^-1 J_k^T r_k, with A = J^T J (prior included) and A_k, J_k
+    that level's rows (the one-step jackknife; for a stepped scan the level's own linear terms
+    leave with it). Under a correct model d_k has covariance (A - A_k)^-1 - A^-1, so for each beam
+    d_k^T [that covariance]^-1 d_k is chi-square with 2 degrees of freedom; their mean over the
+    levels, halved, is the dispersion. Levels of any size count alike (the cross-validation view
+    of the delete-a-group jackknife: Efron and Stein, Ann. Stat. 9, 1981).
     """
     k_n, n, c_n = prob.k, prob.u.shape[0], len(prob.channels)
     rows = jac.reshape(2, n, c_n, -1)
     r = prob.residual_vector(resid).reshape(2, n, c_n)
-    total = jac.T @ jac + np.diag(prob.prior ** 2)
-    steps = np.zeros((k_n, prob.n_theta))
+    total = gram(jac) + np.diag(prob.prior ** 2)
+    cov = _inverse_psd(total)
+    stats = np.zeros((k_n, prob.n_beams))
     for k, idx in enumerate(prob.blocks):
         j_k = rows[:, idx].reshape(-1, prob.n_theta)
-        a_k = j_k.T @ j_k
-        g_k = j_k.T @ r[:, idx].reshape(-1)
-        steps[k] = -_inverse_psd(total - a_k) @ g_k
-    shifts = steps[:, :2 * prob.n_beams].reshape(k_n, prob.n_beams, 2)
-    centred = shifts - shifts.mean(axis=0)
-    return (k_n - 1) / k_n * np.einsum("kbi,kbj->bij", centred, centred)
+        a_k = gram(j_k)
+        sub = _inverse_psd(total - a_k)
+        d = -sub @ gram(j_k, r[:, idx].reshape(-1))
+        spread = sub - cov
+        for b in range(prob.n_beams):
+            sl = slice(2 * b, 2 * b + 2)
+            stats[k, b] = d[sl] @ np.linalg.pinv(spread[sl, sl], rcond=1e-10, hermitian=True) @ d[sl]
+    return stats.mean(axis=0) / 2.0
 
 
 def _same(phys: PhysicsParameters, prob: _Problem) -> PhysicsParameters:
@@ -531,8 +531,8 @@ def _levenberg_marquardt(prob: _Problem, phys: PhysicsParameters, max_iterations
         frames = prob.frames(phys)
         jac = prob.full_jacobian(phys, terms, qs, frames)
         r = prob.residual_vector(resid, phys)
-        a = jac.T @ jac
-        g = jac.T @ r
+        a = gram(jac)
+        g = gram(jac, r)
         diag = np.maximum(np.diag(a), 1e-12 * max(np.max(np.diag(a)), 1e-300))
         improved = False
         for _ in range(12):

@@ -270,10 +270,13 @@ class Tracker:
         lo, hi = calibration.magnitude_range_nT
         _, median_amp = model.sphere_medians(math.sqrt(lo * hi))
         # BLIND: the one rule of estimator/blind.py (the map and the snapshot inverse use it too).
+        # The median at the noise the filter whitens with (calibrated noise times the settings' factors), so
+        # BLIND stays relative whatever those factors are; the learned level of the moment scales it in the core.
+        noise_std = calibration.model.noise_std * self._channel_scales()
         cache = model.__dict__.setdefault("_blind_median_deg", {})     # shared by trackers of one model
-        key = math.sqrt(lo * hi)
+        key = (math.sqrt(lo * hi), tuple(np.round(noise_std, 15)))
         if key not in cache:
-            cache[key] = median_bound_deg(calibration.model, key)
+            cache[key] = median_bound_deg(calibration.model, key[0], noise_std=noise_std)
         self.median_bound_deg = cache[key]
         median_bound = math.radians(self.median_bound_deg)
         self._low_amp = s.low_signal_fraction * median_amp

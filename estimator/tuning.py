@@ -23,7 +23,7 @@ below DECORRELATED: the filter's likelihood treats samples as independent (corre
 only through the bandwidth factor kappa), which they then nearly are.
 
 Choice of set: the Bayesian information criterion, BIC = -2 logL + p ln T, with p the set's tuned
-settings and T the samples scored. The innovation likelihood is prequential: every sample is
+settings and T the search's samples. The innovation likelihood is prequential: every sample is
 predicted before the filter has seen it, so the extra states (and their initial uncertainty) are
 scored out of sample and pay for themselves in it; only the tuned rates are fitted to the same data,
 and BIC charges ln T for each. A held-out split is not used: a bench drift often happens once, in
@@ -46,7 +46,7 @@ from __future__ import annotations
 
 import itertools
 import math
-from dataclasses import dataclass, field
+from dataclasses import dataclass
 from typing import Callable, Sequence
 
 import numpy as np
@@ -54,9 +54,10 @@ import numpy as np
 from fieldvane.estimator.calibration import Calibration
 from fieldvane.estimator.filter_settings import FilterSettings
 from fieldvane.estimator.fisher import crlb_deg
+from fieldvane.estimator.tracker_model import TrackerModel
 from fieldvane.estimator.innovation import InnovationScores, innovation_loglik
 from fieldvane.estimator.lockin_noise import autocorrelation, correlation_factor
-from fieldvane.estimator.noise_correlation import NoiseFit, fit_noise, sample_step_s
+from fieldvane.estimator.noise_correlation import NoiseFit, fit_noise
 from fieldvane.estimator.samples import SampleBlock
 from fieldvane.estimator.tracker import Tracker
 
@@ -93,10 +94,10 @@ STATE_SETS = {
 SET_ORDER = ("none", "gain", "gain+phase")     # display order
 LADDER = SET_ORDER                             # simplest first: a richer set must earn its place
 # Candidates within this much log-likelihood of the best are statistically indistinguishable from it
-# (2 delta logL < 1: the 68% profile-likelihood interval of one parameter); the one with the most
-# process noise is taken, so a flat likelihood (a still or smoothly turning field) leaves the filter
-# cautious rather than at whatever tiny value rounding favoured. Common practice in model selection
-# (the one-standard-error rule), here leaning toward the more cautious filter.
+# (2 delta logL < 1: the 68% profile-likelihood interval of one parameter); each knob is raised as far
+# as the likelihood stays within it, so a flat likelihood (a still or smoothly turning field) leaves the
+# filter cautious rather than at whatever tiny value rounding favoured. Common practice in model
+# selection (the one-standard-error rule), here leaning toward the more cautious filter.
 TIE_LOGLIK = 0.5
 COMPASS_START = 0.5        # first compass step, decades
 COMPASS_END = 0.125        # the search stops below this step, decades
@@ -108,7 +109,7 @@ OUTCLASSED_PER_SAMPLE = 1.0  # a set this much log-likelihood per sample behind 
 DECORRELATED = 0.1         # search samples at least this decorrelated (lock-in autocorrelation at the step)
 MIN_SEARCH_RATE_HZ = 10.0  # ... but never decimated below this rate
 MIN_SEARCH_SAMPLES = 1000  # ... nor to fewer samples than this
-DEFAULT_MAX_SAMPLES = 2500
+DEFAULT_MAX_SAMPLES = 2000
 BOUND_POINTS = 500         # track points behind the median single-sample bound
 
 
@@ -345,7 +346,6 @@ class TuneResult:
     allowance: float = 0.0        # model-error allowance (log-likelihood) a richer state set had to beat
     calibrated_std_V: np.ndarray | None = None  # (C,) the calibration's noise std per channel
     error_ratio: float = 0.0      # calibration_error_ratio: the floor over the bound at the calibrated noise
-    notes: list[str] = field(default_factory=list)
 
 
 class _Search:
@@ -555,6 +555,7 @@ def search_state_sets(calibration: Calibration, block: SampleBlock, base: Filter
             batches.pop(name, None)
             results[name] = searches[name].result(len(block))
 
+    shared_model = TrackerModel(calibration.model, 1.0)       # its sphere medians are computed once
     gain_first = "gain" in wanted
     begin(wanted[0], {})
     if not gain_first:
@@ -569,7 +570,7 @@ def search_state_sets(calibration: Calibration, block: SampleBlock, base: Filter
         if progress is not None:
             progress(done, done + len(rows), "search: " + ", ".join(names))
         scores = innovation_loglik(calibration, block, [searches[n].settings_at(r) for n, r in rows] + extra,
-                                   initiator)
+                                   initiator, model=shared_model)
         if extra:
             ref_scores = InnovationScores(*(np.asarray(v)[-1:] for v in scores))
         done += len(rows)

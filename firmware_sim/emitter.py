@@ -149,6 +149,10 @@ class Sink:
     def finish(self, stop: threading.Event, timeout_s: float = 5.0) -> None:
         """Let the receiver take what was sent (bounded by timeout_s) before closing."""
 
+    def wait_for_reader(self, stop: threading.Event) -> bool:
+        """Block until a receiver is there (a file always is); returns False if stop was set first."""
+        return not stop.is_set()
+
     def close(self) -> None:
         """Release the sink's files, descriptors or sockets."""
 
@@ -236,6 +240,25 @@ class PtySink(Sink):
         """Write data to the master side; without wait, drop it when the pty buffer is full."""
         return _write_fd(self.master_fd, data, wait, stop)
 
+    def wait_for_reader(self, stop: threading.Event) -> bool:
+        """Block until some process opens the slave side; returns False if stop was set first.
+
+        Our own hold on the slave is let go meanwhile: while no process holds the slave, polling
+        the master reports a hang-up (Linux, macOS), which ends when a reader opens it. The pty
+        keeps its raw settings while the master is open.
+        """
+        os.close(self.slave_fd)
+        poller = select.poll()
+        poller.register(self.master_fd, select.POLLHUP)
+        try:
+            while not stop.is_set():
+                if not any(ev & select.POLLHUP for _fd, ev in poller.poll(0)):
+                    return True
+                stop.wait(_POLL_S)
+            return False
+        finally:
+            self.slave_fd = os.open(self.path, os.O_RDWR | os.O_NOCTTY)
+
     def unread_bytes(self) -> int:
         """Return the number of bytes sent but not yet read on the slave side."""
         buf = fcntl.ioctl(self.slave_fd, termios.FIONREAD, struct.pack("i", 0))
@@ -290,6 +313,13 @@ class TcpSink(Sink):
     def begin(self, preamble_bytes: bytes) -> None:
         """Remember the preamble sent to each new client."""
         self._preamble = preamble_bytes
+
+    def wait_for_reader(self, stop: threading.Event) -> bool:
+        """Block until a client connects (it is accepted on the first send); False if stop was set first."""
+        while not stop.is_set():
+            if self._client is not None or select.select([self._server], [], [], _POLL_S)[0]:
+                return True
+        return False
 
     def _accept(self, wait: bool, stop: threading.Event) -> bool:
         while self._client is None:

@@ -22,11 +22,12 @@ def settings_for_stream(settings: FilterSettings | None, metadata: Mapping[str, 
                         source: str = "<recording>") -> FilterSettings:
     """Return filter settings completed by a recording's `# key: value` metadata (the lock-in's filter).
 
-    The filter file wins where it sets the lock-in (a time constant above 0); metadata fill it in otherwise.
+    The recording's own metadata describe how it was taken, so they win over a filter file's lock-in settings
+    (a file tuned on another recording); the file's settings serve streams without them (live runs).
     """
     s = settings if settings is not None else FilterSettings()
     meta = metadata or {}
-    if s.lockin_time_constant_s == 0 and LOCKIN_TAU_KEY in meta:
+    if LOCKIN_TAU_KEY in meta:
         tau = _number(meta, LOCKIN_TAU_KEY, source)
         order = int(_number(meta, LOCKIN_ORDER_KEY, source)) if LOCKIN_ORDER_KEY in meta else s.lockin_filter_order
         try:

@@ -150,8 +150,16 @@ class LiveLoop:
                  sink_close_timeout_s: float = 0.7, max_logged_errors: int = 10,
                  drain_timeout_s: float = 0.5, capture_close_timeout_s: float = 30.0,
                  capture_buffer_bytes: int = DEFAULT_CAPTURE_BUFFER_BYTES,
-                 estimate_batch: EstimateBatch | None = None):
+                 estimate_batch: EstimateBatch | None = None,
+                 status: Callable[["LiveLoop"], None] | None = None, status_interval_s: float = 0.25,
+                 counters_report: Callable[["LiveLoop", bool], None] | None = None):
         self.link, self.decoder, self.estimate = link, decoder, estimate
+        # status(loop) is called every status_interval_s from this loop's thread (it reads last_record and
+        # counters()); it replaces the periodic counter line. counters_report(loop, final) shows the counters
+        # on SIGUSR1 (final=False) and at the end (final=True, instead of the one-line final summary).
+        self.status, self.status_interval_s, self.counters_report = status, status_interval_s, counters_report
+        self.last_record: Mapping | None = None
+        self._counters_asked = self._counters_shown = 0   # SIGUSR1 requests (the handler only counts)
         # estimate_batch(samples) -> records, one per sample (None: no record): the whole chunk in one call
         # (the compiled filter core's way); `estimate` then serves only as the fallback for a failing batch.
         self.estimate_batch = estimate_batch
@@ -225,7 +233,7 @@ class LiveLoop:
         """Process chunks until stop(); then shut down within ~1.5 s and return the summary."""
         interrupted = False
         next_log = self._clock() + self.log_interval_s
-        next_check = 0.0
+        next_check = next_status = 0.0
         if self.capture is not None:
             self.capture.start()
         if not self.link.started:
@@ -241,9 +249,19 @@ class LiveLoop:
                     next_check = now + 0.1
                     with self._progress:
                         self._progress.notify_all()
-                if now >= next_log:
+                if self.status is not None:
+                    if now >= next_status:
+                        self.status(self)
+                        next_status = now + self.status_interval_s
+                elif now >= next_log:
                     self.log("fieldvane live: " + format_counters(self.counters()))
                     next_log = now + self.log_interval_s
+                if self._counters_asked != self._counters_shown:
+                    self._counters_shown = self._counters_asked
+                    if self.counters_report is not None:
+                        self.counters_report(self, False)
+                    else:
+                        self.log("fieldvane live: " + format_counters(self.counters()))
         except KeyboardInterrupt:
             interrupted = True
             self._forced = self._signals > 1
@@ -287,6 +305,7 @@ class LiveLoop:
             if record is None:
                 continue
             self.records += 1
+            self.last_record = record
             for sink in self.sinks:
                 sink.emit(record)
 
@@ -314,6 +333,7 @@ class LiveLoop:
                 if record is None:
                     continue
                 self.records += 1
+                self.last_record = record
                 for sink in self.sinks:
                     sink.emit(record)
 
@@ -395,7 +415,10 @@ class LiveLoop:
         failed = [s.name for s in self.sinks if s.failed]
         summary = LiveSummary(self.counters(), interrupted or self._signals > 0, closed, files,
                               lost, unconfirmed, failed, self._forced)
-        self.log(summary.text())
+        if self.counters_report is not None:
+            self.counters_report(self, True)
+        else:
+            self.log(summary.text())
         if self.not_estimated_bytes or self.not_estimated_samples:
             self.log(f"fieldvane live: stopped with {self.not_estimated_samples} samples and "
                      f"{self.not_estimated_bytes} bytes not estimated live; they are in the capture "
@@ -467,6 +490,10 @@ class LiveLoop:
 
         for sig in (signal.SIGINT, signal.SIGTERM):
             old[sig] = signal.signal(sig, _handler)
+        if hasattr(signal, "SIGUSR1"):                   # `kill -USR1 PID`: the counters now (POSIX only)
+            def _asked(signum, frame):
+                self._counters_asked += 1
+            old[signal.SIGUSR1] = signal.signal(signal.SIGUSR1, _asked)
 
         def _restore():
             for sig, h in old.items():
@@ -491,7 +518,9 @@ def run_live(url: str, input_format: str, estimate: Estimate, outputs: Iterable,
              capture_buffer_bytes: int = DEFAULT_CAPTURE_BUFFER_BYTES,
              handle_signals: bool = True,
              on_ready: Callable[[LiveLoop], None] | None = None,
-             estimate_batch: "EstimateBatch | None" = None) -> LiveSummary:
+             estimate_batch: "EstimateBatch | None" = None,
+             status: Callable[[LiveLoop], None] | None = None,
+             counters_report: Callable[[LiveLoop, bool], None] | None = None) -> LiveSummary:
     """Run the live loop on a port URL until SIGINT/SIGTERM (or loop.stop()); return the summary.
 
     outputs are Sinks, `--out` strings or SinkSpecs (opened here, after the capture). The capture folder is created and its first file written before the port is opened, so a
@@ -520,7 +549,7 @@ def run_live(url: str, input_format: str, estimate: Estimate, outputs: Iterable,
     link = SerialLink(url, baudrate=baudrate)
     loop = LiveLoop(link, decoder, estimate, sinks, capture, log=log,
                     log_interval_s=log_interval_s, capture_buffer_bytes=capture_buffer_bytes,
-                    estimate_batch=estimate_batch)
+                    estimate_batch=estimate_batch, status=status, counters_report=counters_report)
     restore = loop.install_signal_handlers() if handle_signals else (lambda: None)
     try:
         if on_ready is not None:

@@ -65,11 +65,12 @@ def add_output_file(parser, metavar: str, what: str, required: bool = True) -> N
     parser.add_argument("-o", "--output", required=required, metavar=metavar, help=f"file to write: {what}")
 
 
-def add_output_dir(parser, what: str, required: bool = True, default: str | None = None) -> None:
-    """Register -o/--output DIR for a folder where the command writes several files."""
-    tail = f" (default {default})" if default is not None else " (created if missing)"
+def add_output_dir(parser, what: str, required: bool = True, default: str | None = None,
+                   default_text: str | None = None) -> None:
+    """Register -o/--output DIR for a folder where the command writes several files (created if missing)."""
+    tail = f"; default {default_text or default}" if default is not None else ""
     parser.add_argument("-o", "--output", required=required and default is None, default=default,
-                        metavar="DIR", help=f"folder for {what}{tail}")
+                        metavar="DIR", help=f"folder for {what} (created if missing{tail})")
 
 
 def add_calibration(parser, required: bool = True) -> None:

@@ -215,7 +215,7 @@ ROWS = [
     ("run-link-timeout-zero", ["run", "--port", "{d}/no-port", "-c", "{d}/cal.json", "--link-timeout", "0"],
      2, r"option '--link-timeout'", None),
     ("run-columns-with-binary", ["run", "--port", "{d}/no-port", "-c", "{d}/cal.json", "--columns", "t,f_a"],
-     2, r"option '--columns': only for --input csv", None),
+     2, r"option '--columns': only for --input-format csv", None),
     ("run-columns-incomplete", ["run", "--port", "{d}/no-port", "-c", "{d}/cal.json", "--input", "csv",
                                 "--columns", "t,f_a,f_b,x_1a"],
      2, r"--columns: column 'y_1a'", None),

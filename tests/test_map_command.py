@@ -178,4 +178,4 @@ def test_cli_map_without_matplotlib_says_what_to_do(cal1, tmp_path, capsys, monk
     monkeypatch.setitem(sys.modules, "matplotlib", None)       # import matplotlib -> ImportError
     assert main(["map", "-c", str(path), "-o", str(tmp_path)]) == 1
     err = capsys.readouterr().err
-    assert "matplotlib" in err and "--no-png" in err
+    assert "matplotlib" in err and "--no-plots" in err

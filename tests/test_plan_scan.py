@@ -45,7 +45,7 @@ def test_expected_accuracy_is_what_the_calibration_reports(bench):
     cal = simulate_and_calibrate(cfg, field, seed=4)
     # The Fisher information of the planner and the fit's covariance describe the same parameters:
     # agreement within 20 % (the planner evaluates it at the nominal, not the fitted, sensor).
-    np.testing.assert_allclose(expected, cal.direction_std_deg, rtol=0.2)
+    np.testing.assert_allclose(expected, cal.fit_info["covariance_std_deg"], rtol=0.2)
 
 
 def test_plan_reaches_its_target_with_fewer_rows_than_a_uniform_scan(bench):
@@ -61,7 +61,7 @@ def test_plan_reaches_its_target_with_fewer_rows_than_a_uniform_scan(bench):
     # The simulator confirms: calibrating the planned scan gives that accuracy (within 25 %) and
     # axes within a few of it.
     cal = simulate_and_calibrate(cfg, plan.field_nT, seed=8)
-    np.testing.assert_allclose(cal.direction_std_deg, plan.expected_std_deg, rtol=0.25)
+    np.testing.assert_allclose(cal.fit_info["covariance_std_deg"], plan.expected_std_deg, rtol=0.25)
     err = np.concatenate([axis_errors_deg(cal.physics.pump_axes, cfg.pump_array()),
                           axis_errors_deg(cal.physics.probe_axes, cfg.probe_array())])
     assert np.all(err < 4 * plan.expected_std_deg), (err, plan.expected_std_deg)

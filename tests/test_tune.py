@@ -154,6 +154,7 @@ def test_too_few_samples_is_a_clear_value_error():
 def test_decimation_leaves_neighbours_decorrelated():
     # Independent samples: only the sample budget decimates.
     assert decimation_step(12_000, 200.0, 0.0, 4, 2500) == 5
+    assert decimation_step(12_000, 200.0, 0.0, 4, 2000) == 6
     assert decimation_step(1_000, 200.0, 0.0, 4, 2500) == 1
     # 4 x 5 ms at 200 Hz: the smallest step whose lock-in autocorrelation is <= DECORRELATED.
     k = decimation_step(12_000, 200.0, 0.005, 4, 100_000)
@@ -196,7 +197,8 @@ def _set(name: str, loglik: float, params: int, samples: int = 1000) -> SetResul
 
 
 def test_a_richer_state_set_must_beat_the_model_error_allowance():
-    sets = {"none": _set("none", 1000.0, 2), "gain": _set("gain", 1100.0, 3), "gain+phase": _set("gain+phase", 1130.0, 4)}
+    sets = {"none": _set("none", 1000.0, 2), "gain": _set("gain", 1100.0, 3),
+            "gain+phase": _set("gain+phase", 1130.0, 4)}
     # BIC = -2 logL + p ln T: gain+phase is lowest, and without an allowance it wins.
     assert min(sets, key=lambda n: sets[n].score) == "gain+phase"
     assert choose_state_set(sets, 0.0) == "gain+phase"

@@ -25,16 +25,21 @@ MAX_FOLDS = 50
 
 def add_arguments(parser) -> None:
     """Register calibrate's options."""
-    parser.add_argument("scan", help="calibration scan recording CSV (with bx_nT, by_nT, bz_nT)")
-    parser.add_argument("-o", "--output", required=True, help="calibration JSON to write (CAL.npz is written beside it)")
-    parser.add_argument("--sensor", help="sensor TOML: names, nominal axes, mounting rotation")
+    from fieldvane.io.options import add_force, add_output_file
+
+    parser.add_argument("scan", metavar="SCAN.csv",
+                        help="calibration scan recording CSV with the applied field bx_nT, by_nT, bz_nT "
+                             "(docs/recording_format.md)")
+    add_output_file(parser, "CAL.json", "the calibration JSON (CAL.npz is written beside it)")
+    parser.add_argument("--sensor", metavar="SENSOR.toml",
+                        help="sensor TOML: names, nominal axes, mounting rotation (docs/config_files.md)")
     parser.add_argument("--cell", default=None, help="alkali of the cell (default Rb: 87Rb and 85Rb)")
     parser.add_argument("--max-degree", type=int, default=6,
                         help="highest spherical-harmonic degree tried for the corrections, -1..10 (default 6)")
     parser.add_argument("--folds", type=int, default=5,
                         help=f"folds for the held-out residual, 2..{MAX_FOLDS} (default 5)")
-    parser.add_argument("--plots", metavar="DIR", help="write calibration quality figures into this folder")
-    parser.add_argument("--force", action="store_true", help="replace existing output files")
+    parser.add_argument("--plots", metavar="DIR", help="folder for calibration quality figures (created if missing)")
+    add_force(parser)
 
 
 def check_options(args) -> None:

@@ -12,6 +12,9 @@ examples:
 """
 
 
+TITLE_LINE = r"#\s+(.*)"
+
+
 def add_arguments(parser) -> None:
     """Register docs's options."""
     parser.add_argument("name", nargs="?", metavar="NAME",
@@ -30,12 +33,12 @@ def run(args) -> int:
         print(f"documentation: {shipped_dir('docs')}/")
         width = max(len(n) for n in docs)
         for name, path in docs.items():
-            print(f"  {name:<{width}}  {first_line_matching(path, r'#\s+(.*)')}")
+            print(f"  {name:<{width}}  {first_line_matching(path, TITLE_LINE)}")
         print("print one with `fieldvane docs NAME`")
         return 0
     name = args.name[:-3] if args.name.endswith(".md") else args.name
     name = name.rsplit("/", 1)[-1]
     if name not in docs:
-        raise InputError(f"no document '{args.name}'; known: {', '.join(docs)}", column="NAME")
+        raise InputError(f"no such document (known: {', '.join(docs)})", args.name)
     print(docs[name].read_text(encoding="utf-8"), end="")
     return 0

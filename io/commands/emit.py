@@ -5,39 +5,45 @@ from __future__ import annotations
 import sys
 
 DESCRIPTION = """Play the simulated sensor electronics: stream a scenario as binary wire frames
-(docs/wire_format.md) or recording-CSV lines to a pseudo-terminal, a TCP client or a file.
+(docs/wire_format.md) or recording-CSV lines (docs/recording_format.md) to a pseudo-terminal, a
+TCP client or a file.
 
 --to pty         opens a pseudo-terminal pair and prints the path to read from (e.g. /dev/pts/5)
 --to tcp:PORT    serves one client at a time on 127.0.0.1:PORT (0 picks a free port)
---to file:PATH   writes the byte stream to a file
+--to file:PATH   writes the byte stream to a file (refused if it exists, unless --force)
 
-Real time (the default for pty and tcp) paces samples by the sample rate and drops what nobody
+A pty or TCP stream waits for its first reader before the scenario starts (--no-wait starts at
+once), then keeps running in real time: it paces samples by the sample rate and drops what nobody
 reads, like a sensor would; --fast (the default for files) sends as fast as the reader takes.
-Faults for testing receivers: --flip-every, --garbage-every, --pause.
+Faults for testing receivers: --flip-every, --garbage-every, --pause. Run the reader (e.g.
+`fieldvane run --port /dev/pts/5 ...`) in a second terminal: emit keeps this one until Ctrl-C.
 
-example:
-  fieldvane emit examples/turntable.toml --to pty
-  fieldvane emit demo_track --to tcp:50020 --format csv --repeat
+examples:
+  fieldvane emit rotation_blind_planes --to pty
+  fieldvane emit demo_track --to tcp:50020 --output-format csv --repeat
   fieldvane emit examples/static.toml --to file:static.bin --fast --flip-every 100
 """
 
 
 def add_arguments(parser) -> None:
     """Register emit's options."""
-    parser.add_argument("scenario", help="scenario TOML file (or a built-in name: demo_scan, demo_track)")
-    parser.add_argument("--to", required=True, metavar="DEST", help="pty, tcp:PORT or file:PATH")
-    parser.add_argument("--force", action="store_true",
-                        help="file:PATH only: replace an existing file (never the scenario itself)")
-    parser.add_argument("--format", choices=("binary", "csv"), default="binary",
-                        help="binary wire frames (default) or CSV lines (text input mode)")
+    from fieldvane.io.commands.simulate import add_scenario, add_seed_duration
+    from fieldvane.io.options import INPUT_FORMATS, add_force, add_renamed
+
+    add_scenario(parser)
+    parser.add_argument("--to", required=True, metavar="DEST", help="where the stream goes: pty, tcp:PORT or file:PATH")
+    add_force(parser)
+    parser.add_argument("--output-format", choices=INPUT_FORMATS, default="binary",
+                        help="binary wire frames (default) or recording-CSV lines: what `run --input-format` reads")
+    add_renamed(parser, "--format", "--output-format", "output_format", choices=INPUT_FORMATS)
+    parser.add_argument("--no-wait", action="store_true",
+                        help="pty and tcp: start at once instead of waiting for the first reader")
     pace = parser.add_mutually_exclusive_group()
     pace.add_argument("--realtime", dest="realtime", action="store_true", default=None,
                       help="pace samples by the sample rate (default for pty and tcp)")
     pace.add_argument("--fast", dest="realtime", action="store_false",
                       help="send as fast as the reader takes them (default for files)")
-    parser.add_argument("--seed", type=int, default=None, help="noise seed (overrides [run] seed)")
-    parser.add_argument("--duration", type=float, default=None, metavar="S",
-                        help="run length in seconds (overrides [run] duration_s)")
+    add_seed_duration(parser)
     parser.add_argument("--repeat", action="store_true",
                         help="start over at the end (sequence numbers and time go on) until Ctrl-C")
     parser.add_argument("--with-truth", action="store_true",
@@ -103,9 +109,9 @@ def _emit(args, dest: str, shown: str | None = None) -> int:
     from fieldvane.io.commands.simulate import load_or_fail
     from fieldvane.io.errors import InputError, JobError
 
-    if args.with_truth and args.format != "csv":
+    if args.with_truth and args.output_format != "csv":
         raise InputError("--with-truth: only the CSV format has room for truth columns")
-    if args.zero_before_each_frame and args.format != "binary":
+    if args.zero_before_each_frame and args.output_format != "binary":
         raise InputError("--zero-before-each-frame: only for binary frames")
     for name in ("flip_every", "garbage_every"):
         if getattr(args, name) < 0:
@@ -122,7 +128,7 @@ def _emit(args, dest: str, shown: str | None = None) -> int:
     except OSError as exc:
         raise JobError(f"cannot open {args.to}: {exc.strerror or exc}") from None
     realtime = args.realtime if args.realtime is not None else args.to.split(":")[0] != "file"
-    emitter = Emitter(sim, sink, fmt=args.format, realtime=realtime, faults=faults,
+    emitter = Emitter(sim, sink, fmt=args.output_format, realtime=realtime, faults=faults,
                       repeat=args.repeat, include_truth=args.with_truth,
                       zero_before_each=args.zero_before_each_frame)
     pacing = "real time" if realtime else "as fast as possible"
@@ -132,8 +138,15 @@ def _emit(args, dest: str, shown: str | None = None) -> int:
     elif isinstance(sink, TcpSink):
         where = f"tcp {sink.host}:{sink.port} (one client at a time)"
     print(f"emitting '{scenario.name}': {len(sim)} samples at {sim.sample_rate_hz:g} Hz as "
-          f"{args.format} to {where}, {pacing}{', repeating' if args.repeat else ''}; Ctrl-C stops",
+          f"{args.output_format} to {where}, {pacing}{', repeating' if args.repeat else ''}; Ctrl-C stops",
           flush=True)
+    if sink.holds_open and not args.no_wait:
+        reader = f"fieldvane run --port {sink.path}" if isinstance(sink, PtySink) else "a client"
+        print(f"waiting for a reader (start {reader} ... in another terminal; --no-wait starts at once)",
+              flush=True)
+        if not sink.wait_for_reader(emitter.stop_event):
+            return 0
+        print("reader connected: streaming", flush=True)
     emitter.start()
     try:
         while not emitter.wait_sent(0.2):

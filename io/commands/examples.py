@@ -15,6 +15,9 @@ examples:
 """
 
 
+DESCRIPTION_LINE = r'description\s*=\s*"(.*)"'
+
+
 def add_arguments(parser) -> None:
     """Register examples's options."""
     from fieldvane.io.options import add_force, add_output_dir
@@ -39,7 +42,7 @@ def run(args) -> int:
         print(f"example scenarios in {shipped_dir('examples')}/ (use a name wherever a scenario file is asked for):")
         width = max(len(n) for n in scenarios)
         for name, path in scenarios.items():
-            print(f"  {name:<{width}}  {first_line_matching(path, r'description\s*=\s*\"(.*)\"')}")
+            print(f"  {name:<{width}}  {first_line_matching(path, DESCRIPTION_LINE)}")
         print("copy them with `fieldvane examples -o DIR`")
         return 0
     check_output(args.output, folder=True, force=True, option="--output")     # a file there: refused

@@ -21,13 +21,15 @@ PROBE_CHOICES = ("1", "2", "both")
 
 def add_arguments(parser) -> None:
     """Register this command's options on its argparse sub-parser."""
-    parser.add_argument("-c", "--calibration", required=True, metavar="CAL.json",
-                        help="calibration file written by 'fieldvane calibrate'")
+    from fieldvane.io.options import add_calibration, add_force, add_no_plots, add_output_dir
+
+    add_calibration(parser)
     parser.add_argument("--noise", type=float, default=None, metavar="V",
                         help="lock-in noise std of X and of Y per channel, volts "
                              "(default: each channel's calibrated noise)")
-    parser.add_argument("--b-nT", dest="b_nT", type=float, default=None, metavar="B",
-                        help="field magnitude in nT (default: middle of the calibrated range)")
+    parser.add_argument("--b-nt", dest="b_nT", type=float, default=None, metavar="NT",
+                        help="field magnitude in nT (default: middle of the calibrated range; "
+                             "--b-nT works too)")
     parser.add_argument("--probes", choices=PROBE_CHOICES, default=None,
                         help="probe set to map (default: each probe alone and both together)")
     parser.add_argument("--gain-free", action="store_true",
@@ -40,11 +42,9 @@ def add_arguments(parser) -> None:
     parser.add_argument("--rate-hz", type=float, default=None, metavar="HZ",
                         help="sample rate the calibrated noise refers to, stated on the map "
                              "(default: the calibration's, when it records one)")
-    parser.add_argument("--no-png", action="store_true", help="write the CSV and summary only")
-    parser.add_argument("-o", "--output", default=".", metavar="OUTDIR",
-                        help="output folder (default: current folder)")
-    parser.add_argument("--force", action="store_true",
-                        help="replace map files that exist in OUTDIR already")
+    add_no_plots(parser)
+    add_output_dir(parser, "the map files (bound_*.csv, bound_*.png)", default=".", default_text="the current folder")
+    add_force(parser)
 
 
 def _check(args) -> None:
@@ -53,7 +53,7 @@ def _check(args) -> None:
     if args.noise is not None and not (math.isfinite(args.noise) and args.noise > 0):
         raise InputError(f"--noise must be a positive voltage, got {args.noise}")
     if args.b_nT is not None and not (math.isfinite(args.b_nT) and args.b_nT > 0):
-        raise InputError(f"--b-nT must be a positive magnitude in nT, got {args.b_nT}")
+        raise InputError(f"--b-nt must be a positive magnitude in nT, got {args.b_nT}")
     if args.points < 20:
         raise InputError(f"--points must be at least 20, got {args.points}")
     if not (math.isfinite(args.blind_factor) and args.blind_factor > 1):
@@ -74,18 +74,18 @@ def run(args) -> int:
     _check(args)
     check_output(args.output, folder=True, force=True, option="--output")   # a file there: refused
     plt = None
-    if not args.no_png:
+    if not args.no_plots:
         try:
             import matplotlib
             matplotlib.use("Agg")
             import matplotlib.pyplot as plt
         except ImportError:
             raise JobError("the PNG map needs matplotlib: install it with "
-                           "`pip install 'fieldvane[plots]'`, or pass --no-png for the CSV only") from None
+                           "`pip install 'fieldvane[plots]'`, or pass --no-plots for the CSV only") from None
     cal = load_calibration(args.calibration)
     lo, hi = cal.magnitude_range_nT
     if args.b_nT is not None and not (0.9 * lo <= args.b_nT <= 1.1 * hi):
-        print(f"fieldvane map: warning: --b-nT {args.b_nT:g} lies outside the calibrated range "
+        print(f"fieldvane map: warning: --b-nt {args.b_nT:g} lies outside the calibrated range "
               f"{lo:.0f}..{hi:.0f} nT; the model is extrapolated", file=sys.stderr)
     cal_path = Path(args.calibration)
     try:

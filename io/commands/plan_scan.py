@@ -25,19 +25,22 @@ DEFAULT_MAGNITUDES = "1000,2000,5000,10000,20000"
 
 def add_arguments(parser) -> None:
     """Register plan-scan's options."""
-    parser.add_argument("--sensor", required=True, help="sensor TOML with the nominal pump and probe axes")
-    parser.add_argument("-o", "--output", required=True, help="scan plan CSV to write (bx_nT, by_nT, bz_nT)")
+    from fieldvane.io.options import CALIBRATION_HELP, add_force, add_output_file
+
+    parser.add_argument("--sensor", required=True, metavar="SENSOR.toml",
+                        help="sensor TOML with the nominal pump and probe axes (docs/config_files.md)")
+    add_output_file(parser, "PLAN.csv", "the scan plan CSV (bx_nT, by_nT, bz_nT)")
     parser.add_argument("--target-axis-deg", type=float, default=0.01,
                         help="1-sigma accuracy every beam axis must reach, degrees (default 0.01)")
     parser.add_argument("--magnitudes", default=DEFAULT_MAGNITUDES,
                         help=f"field magnitudes of the scan levels, nT, comma-separated (default {DEFAULT_MAGNITUDES})")
     parser.add_argument("--snr", type=float, default=1000.0,
                         help="lock-in signal-to-noise: channel gain over the noise std of X and of Y (default 1000)")
-    parser.add_argument("--calibration", metavar="CAL.json",
-                        help="take axes, gains, noise and handedness from an earlier calibration instead")
+    parser.add_argument("-c", "--calibration", metavar="CAL.json",
+                        help=CALIBRATION_HELP + ": take axes, gains, noise and handedness from it instead")
     parser.add_argument("--min-rows-per-level", type=int, default=100,
                         help="near-uniform directions every level starts with (default 100; at least 27)")
-    parser.add_argument("--force", action="store_true", help="replace an existing output file")
+    add_force(parser)
 
 
 def _magnitudes(text: str):

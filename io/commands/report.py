@@ -23,7 +23,8 @@ matched to the nearest truth sample within half a truth sample period; the repor
 and 95th-percentile angle to truth, the share of samples within 1 and 2 sigma_deg (a consistent
 filter gives about 63% and 98%), and the magnitude error.
 
-The figures need matplotlib (the 'plots' extra); without it summary.md is still written.
+The figures need matplotlib (the 'plots' extra); without it, or with --no-plots, summary.md is
+still written. The estimates columns: docs/estimates_columns.md.
 The output is not a safety or navigation instrument by itself.
 
 example:
@@ -33,13 +34,14 @@ example:
 
 def add_arguments(parser) -> None:
     """Register report's options."""
-    parser.add_argument("estimates", metavar="EST.csv", help="estimates CSV to report on")
+    parser.add_argument("estimates", metavar="EST.csv", help="estimates CSV to report on (docs/estimates_columns.md)")
     parser.add_argument("--truth", metavar="REC.csv",
                         help="simulator recording with the true_* columns, to score against")
-    parser.add_argument("-o", "--output", required=True, metavar="REPORT_DIR",
-                        help="folder for summary.md and the PNG figures (created if missing)")
-    parser.add_argument("--force", action="store_true",
-                        help="replace report files that exist in REPORT_DIR already")
+    from fieldvane.io.options import add_force, add_no_plots, add_output_dir
+
+    add_output_dir(parser, "summary.md and the PNG figures")
+    add_force(parser)
+    add_no_plots(parser)
     parser.add_argument("--static", default=None, metavar="START:END",
                         help="time window (s, in the file's t column) of a static stretch for the Allan "
                              "deviation and noise spectrum (default: the longest still stretch found)")
@@ -72,7 +74,8 @@ def run(args) -> int:
             raise InputError(f"--static expects START:END in seconds with START < END, got {args.static!r}")
     # Written to a temporary folder; each file must be new (or --force), never an input.
     with atomic_folder(args.output) as tmp:
-        out = make_report(args.estimates, args.truth, tmp, channels=args.channels, static=static)
+        out = make_report(args.estimates, args.truth, tmp, channels=args.channels, static=static,
+                          figures=not args.no_plots)
         check_folder_outputs(tmp, args.output, inputs=inputs, force=args.force, option="--output")
     out.files[:] = [Path(args.output) / Path(p).relative_to(tmp) for p in out.files]
     for note in out.notes:
@@ -81,6 +84,6 @@ def run(args) -> int:
     print("wrote:")
     for path in out.files:
         print(f"  {path}")
-    if out.figures_skipped:
+    if out.figures_skipped and not args.no_plots:
         print(f"fieldvane report: figures not drawn: {out.figures_skipped}", file=sys.stderr)
     return 0

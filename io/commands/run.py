@@ -9,17 +9,24 @@ DESCRIPTION = """Read the sensor electronics on a serial port, track the field d
 the estimates to one or more loggers, keeping every received byte in a capture folder.
 
 PORT is a device (/dev/ttyUSB0, COM3), a pty path, or a pyserial URL (socket://127.0.0.1:7000,
-loop://). --input binary reads the frames of docs/wire_format.md; --input csv reads recording
-CSV lines (header first, or --columns). The link reconnects by itself when the port vanishes.
-A slow or absent logger never stalls reading or estimation: its records are dropped and counted.
+loop://). --input-format binary reads the frames of docs/wire_format.md; --input-format csv reads
+recording-CSV lines (docs/recording_format.md; header first, or --columns). The link reconnects
+by itself when the port vanishes. A slow or absent logger never stalls reading or estimation:
+its records are dropped and counted.
 
---out (repeatable; default csv:stdout):
+--out SINK (repeatable; without it no estimates are written, only the capture is kept):
   est.csv | est.jsonl | est.nmea          a new file in that format (never overwritten)
   FORMAT:stdout | FORMAT:file:PATH        FORMAT is csv, jsonl or nmea
   FORMAT:tcp:PORT | FORMAT:tcp:HOST:PORT  a TCP server for loggers (127.0.0.1 unless HOST given)
   FORMAT:udp:HOST:PORT                    datagrams
   FORMAT:serial:DEVICE:BAUD               a serial port
-  (full grammar: docs/sinks.md)
+  (full grammar: docs/sinks.md; the estimates columns: docs/estimates_columns.md)
+
+A status line on stderr shows the latest estimate (t, direction u in the sensor frame, |B|,
+sigma, flags by name) and the link (frames, CRC errors, missing frames, capture size, bytes
+lost); on a terminal it is rewritten in place, otherwise written as a plain line every
+--log-interval seconds. `kill -USR1 PID` prints the counters as a table at any time; they are
+printed at the end too.
 
 Every byte read goes to the --capture folder first, through its own buffer and writer: if the
 disk is full or too slow the run says so at once, counts exactly what was lost and ends with
@@ -30,6 +37,8 @@ printed (exit 130); samples not estimated by then are in the capture (replay it)
 Ctrl-C abandons the capture's last writes too. Exit 3 when the port never opened within
 --link-timeout; exit 4 when raw bytes were lost; exit 1 when a logger file failed.
 
+Not a safety or navigation instrument by itself: check the flags and sigma_deg.
+
 example:
   fieldvane run --port /dev/ttyUSB0 -c cal.json --out est.csv --out nmea:tcp:10110 --capture capture/
 """
@@ -37,28 +46,31 @@ example:
 
 def add_arguments(parser) -> None:
     """Register run's options."""
+    from fieldvane.io.options import add_calibration, add_force, add_input_format
+
     parser.add_argument("--port", required=True, help="serial device, pty path or pyserial URL")
     parser.add_argument("--baud", type=int, default=115200, help="baud rate (default 115200)")
-    parser.add_argument("--input", choices=("binary", "csv"), default="binary",
-                        help="binary frames (default) or recording-CSV lines")
+    add_input_format(parser, "binary", "what the port sends (default binary)")
     parser.add_argument("--columns", help="comma-separated CSV column names when the stream has no header line")
-    parser.add_argument("-c", "--calibration", required=True, help="calibration JSON")
-    parser.add_argument("--filter", help="filter settings TOML (defaults otherwise)")
+    add_calibration(parser)
+    parser.add_argument("--filter", metavar="FILTER.toml",
+                        help="filter settings TOML (docs/config_files.md); defaults otherwise")
     parser.add_argument("--out", action="append", default=[], metavar="SINK",
-                        help="logger output (repeatable; see above)")
+                        help="logger output (repeatable; see above and docs/sinks.md)")
     parser.add_argument("--capture", metavar="DIR", help="folder for the raw capture (strongly advised)")
     parser.add_argument("--capture-file-mib", type=float, default=64.0,
                         help="rotate capture files at this size (default 64 MiB, at least 1)")
     parser.add_argument("--capture-buffer-mib", type=float, default=64.0,
                         help="memory that absorbs a slow disk before raw bytes are lost (default 64 MiB)")
-    parser.add_argument("--force", action="store_true",
-                        help="replace existing --out files (never an input)")
+    add_force(parser)
     parser.add_argument("--readouts", action="store_true",
-                        help="add demodulated phases and amplitude ratios to the records")
-    parser.add_argument("--log-interval", type=float, default=60.0,
-                        help="seconds between counter lines on stderr (default 60, at least 1)")
-    parser.add_argument("--link-timeout", type=float, default=30.0,
-                        help="give up (exit 3) if the port never opens within this many seconds")
+                        help="add demodulated phases (deg) and amplitude ratios as extra columns")
+    parser.add_argument("--log-interval", type=float, default=10.0, metavar="S",
+                        help="seconds between status lines when stderr is not a terminal (default 10, at least 1)")
+    parser.add_argument("--no-status", action="store_true",
+                        help="no status line (messages and the final counters are still printed)")
+    parser.add_argument("--link-timeout", type=float, default=30.0, metavar="S",
+                        help="give up (exit 3) if the port never opens within this many seconds (default 30)")
 
 
 def _check_number(value, option: str, low: float, high: float = float("inf"), what: str = "") -> None:
@@ -85,11 +97,11 @@ def check_options(args) -> tuple[list[str] | None, list]:
     _check_number(args.link_timeout, "--link-timeout", 0.1, 1e9, "a time in seconds")
     columns = None
     if args.columns is not None:
-        if args.input != "csv":
-            raise InputError("only for --input csv", column="--columns")
+        if args.input_format != "csv":
+            raise InputError("only for --input-format csv", column="--columns")
         columns = [c.strip() for c in args.columns.split(",")]
         CsvLayout(columns, source="--columns")
-    specs = [parse_sink_spec(o) for o in (args.out or ["csv:stdout"])]
+    specs = [parse_sink_spec(o) for o in args.out]
     return columns, specs
 
 
@@ -131,19 +143,19 @@ def _remove_empty_outputs(specs, summary) -> None:
 
 def run(args) -> int:
     """Run the live loop until Ctrl-C / SIGTERM; returns the exit code (see DESCRIPTION)."""
+    import os
+
     from fieldvane.estimator.snapshot import SnapshotSolver
     from fieldvane.estimator.tracker import Tracker
     from fieldvane.io.calfile import load_calibration
     from fieldvane.io.errors import EXIT_CAPTURE_LOST, EXIT_FAILURE, EXIT_LINK
+    from fieldvane.io.estimation import counters_table, noise_line
     from fieldvane.io.filterfile import read_filter_settings
     from fieldvane.io.live import run_live
-    from fieldvane.io.estimation import counters_table, noise_line
+    from fieldvane.io.status import StatusLine
     from fieldvane.io.table_cache import cache_dir_for, load_or_build_table
 
     columns, specs = check_options(args)
-    if args.capture is None:
-        print("note: no --capture folder: raw bytes are not kept and this run cannot be replayed",
-              file=sys.stderr)
     cal = load_calibration(args.calibration)
     settings = read_filter_settings(args.filter) if args.filter else None
     _check_outputs(args, specs)
@@ -151,6 +163,7 @@ def run(args) -> int:
     solver = SnapshotSolver.from_calibration(cal, table)
     tracker = Tracker(cal, settings, solver.initiate, report_channels=args.readouts)
     link_failed = threading.Event()
+    status = StatusLine(sys.stderr, interval_s=args.log_interval)
 
     def estimate(sample):
         return tracker.step(sample).row()
@@ -166,13 +179,26 @@ def run(args) -> int:
                     loop.stop()
         threading.Thread(target=check, name="link-watch", daemon=True).start()
 
-    print("note: not a safety or navigation instrument by itself; check flags and sigma_deg",
-          file=sys.stderr)
-    summary = run_live(args.port, args.input, estimate, specs, args.capture, columns=columns,
-                       baudrate=args.baud, log_interval_s=args.log_interval,
+    def show_status(loop):
+        status.update(loop.last_record, loop.counters())
+
+    def show_counters(loop, final):
+        if final:
+            status.close()
+        status.log(counters_table(loop.counters(), "fieldvane run: " + ("final counters:" if final else
+                                                                         "counters now:")))
+        if not final:
+            status.log(counters_table(tracker.counters.as_dict(), "fieldvane run: tracker now:"))
+
+    for line in start_lines(args, specs, os.getpid()):
+        status.log(line)
+    summary = run_live(args.port, args.input_format, estimate, specs, args.capture, columns=columns,
+                       baudrate=args.baud, log=status.log, log_interval_s=args.log_interval,
                        max_capture_file_bytes=int(args.capture_file_mib * 2**20),
                        capture_buffer_bytes=int(args.capture_buffer_mib * 2**20), on_ready=watch_link,
-                       estimate_batch=estimate_batch)
+                       estimate_batch=estimate_batch, status=None if args.no_status else show_status,
+                       counters_report=show_counters)
+    status.close()
     print(noise_line(tracker), file=sys.stderr)
     print(counters_table(tracker.counters.as_dict(), "fieldvane run: tracker:"), file=sys.stderr)
     if link_failed.is_set():
@@ -187,3 +213,21 @@ def run(args) -> int:
         print(f"fieldvane run: failed: logger output(s) {', '.join(summary.failed_sinks)} could not be "
               "written", file=sys.stderr)
     return code
+
+
+def start_lines(args, specs, pid: int) -> list[str]:
+    """Return the lines run prints before reading: where estimates and raw bytes go, what is not kept."""
+    fmt = "binary frames" if args.input_format == "binary" else "CSV lines"
+    lines = [f"fieldvane run: reading {args.port} ({fmt}); stop with Ctrl-C, counters with kill -USR1 {pid}"]
+    if specs:
+        lines.append("fieldvane run: estimates to " + ", ".join(str(s) for s in specs))
+    else:
+        lines.append("fieldvane run: warning: no --out: the estimates are not written anywhere "
+                     "(add e.g. --out est.csv, or --out csv:stdout)")
+    if args.capture is None:
+        lines.append("fieldvane run: warning: no --capture folder: raw bytes are not kept and this run cannot "
+                     "be replayed")
+    else:
+        lines.append(f"fieldvane run: raw bytes to {args.capture}")
+    lines.append("fieldvane run: note: not a safety or navigation instrument by itself; check flags and sigma_deg")
+    return lines

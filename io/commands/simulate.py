@@ -11,38 +11,65 @@ field bx_nT, by_nT, bz_nT for scans, and the ground truth true_ux, true_uy, true
 With a [lockin] table the outputs go through the lock-in's RC filter (they lag a moving field and
 neighbouring samples share noise) and the recording notes its settings in '# lockin_...' lines;
 a probe whose values are missing has empty x/y fields in those rows.
-SCENARIO may also name a built-in scenario: demo_scan or demo_track.
+SCENARIO may also name an example (`fieldvane examples` lists them) or a built-in scenario
+(demo_scan, demo_track). The recording's columns: docs/recording_format.md.
 
 example:
-  fieldvane simulate examples/calibration_scan.toml -o scan.csv
+  fieldvane simulate calibration_scan -o scan.csv
   fieldvane simulate examples/turntable.toml -o turn.csv --seed 5 --duration 20
-  fieldvane simulate examples/lockin_filtered_turn.toml -o turn_lockin.csv
+  fieldvane simulate lockin_filtered_turn -o turn_lockin.csv
 """
 
 
 def add_arguments(parser) -> None:
     """Register simulate's options."""
-    parser.add_argument("scenario", help="scenario TOML file (or a built-in name: demo_scan, demo_track)")
-    parser.add_argument("-o", "--output", required=True, help="recording CSV to write")
-    parser.add_argument("--force", action="store_true",
-                        help="replace an existing output file (never the scenario itself)")
-    parser.add_argument("--seed", type=int, default=None, help="noise seed (overrides [run] seed)")
+    from fieldvane.io.options import add_force, add_output_file
+
+    add_scenario(parser)
+    add_output_file(parser, "REC.csv", "the recording CSV (docs/recording_format.md)")
+    add_force(parser)
+    add_seed_duration(parser, "scans can only be shortened")
+
+
+SCENARIO_HELP = ("scenario TOML file, or the name of an example (`fieldvane examples` lists them) or of a "
+                 "built-in scenario (demo_scan, demo_track)")
+
+
+def add_scenario(parser) -> None:
+    """Register the SCENARIO argument (a file or a shipped scenario's name)."""
+    parser.add_argument("scenario", metavar="SCENARIO", help=SCENARIO_HELP)
+
+
+def add_seed_duration(parser, note: str = "") -> None:
+    """Register --seed and --duration, which override a scenario's [run] seed and duration_s."""
+    parser.add_argument("--seed", type=int, default=None, help="noise seed (overrides the scenario's [run] seed)")
     parser.add_argument("--duration", type=float, default=None, metavar="S",
-                        help="run length in seconds (overrides [run] duration_s; scans can only be shortened)")
+                        help="run length in seconds (overrides the scenario's [run] duration_s"
+                             + (f"; {note})" if note else ")"))
 
 
 def resolve_scenario_path(name: str) -> str:
-    """Return a scenario file path: name itself if it exists, else a built-in scenario's path."""
+    """Return a scenario file path: name itself if it exists, else a built-in or example scenario's path.
+
+    A bare name (no folder, no .toml) that is neither raises InputError listing the known names.
+    """
     from pathlib import Path
 
-    if Path(name).exists() or name.endswith(".toml") or "/" in name:
+    if Path(name).exists() or name.endswith(".toml") or "/" in name or "\\" in name:
         return name
-    from fieldvane.firmware_sim.scenario import builtin_scenario_path
+    from fieldvane.firmware_sim.scenario import builtin_scenario_names, builtin_scenario_path
+    from fieldvane.io.errors import InputError
+    from fieldvane.io.resources import example_scenarios
 
     try:
         return str(builtin_scenario_path(name))
     except ValueError:
-        return name
+        pass
+    examples = example_scenarios()
+    if name in examples:
+        return str(examples[name])
+    known = ", ".join(builtin_scenario_names() + list(examples))
+    raise InputError(f"no such scenario file, built-in scenario or example (known names: {known})", name)
 
 
 def load_or_fail(name: str, seed=None, duration=None):

@@ -40,7 +40,8 @@ examples:
 """
 
 MIN_SAMPLES = 200          # fewer cannot support a noise estimate and a likelihood search
-BEFORE_MAX_REACQUISITIONS = 20   # 'before' that lost the track more often on the search samples is not replayed
+REPLAY_CHUNK = 16384       # samples per tracker call in the replays
+BEFORE_MAX_REACQUISITIONS = 50   # the replay of the settings before stops once it has lost the track more often
 KAPPA_MISMATCH = 0.25      # stated and measured lock-in bandwidth factors differing by more: a note
 
 
@@ -53,8 +54,8 @@ def add_arguments(parser) -> None:
                                          "everything not tuned is kept from it")
     parser.add_argument("--states", default="none,gain,gain+phase",
                         help="comma list of the state sets to compare: none, gain, gain+phase (default all three)")
-    parser.add_argument("--max-samples", type=int, default=2500,
-                        help="samples the search uses at most; longer inputs are decimated (default 2500)")
+    parser.add_argument("--max-samples", type=int, default=2000,
+                        help="samples the search uses at most; longer inputs are decimated (default 2000)")
     parser.add_argument("--calibration-floor-deg", default="auto",
                         help="calibration accuracy floor, deg (1-sigma): 'auto' (from the calibration's "
                              "scan size, the default), a number, or 0 for none")
@@ -115,23 +116,20 @@ def run(args) -> int:
     seconds = time.perf_counter() - start
     notes = _lockin_check(cal, block, before, result) if lockin_source != "fitted from the data" else []
     after = result.settings
-    ref = result.reference
-    replay = {"after": after}
-    if ref is not None and int(ref.reacquisitions[0]) > BEFORE_MAX_REACQUISITIONS:
-        notes.append(f"the settings before lost the track {int(ref.reacquisitions[0])} times on the search samples: "
-                     f"not replayed in full")
-    else:
-        replay["before"] = before
-    bar(0, len(replay), "replays")
-    summaries = _replays(cal, block, replay, solver.initiate, rate)
-    summaries.setdefault("before", {})
-    bar(len(replay), len(replay), "replays")
+    bar(0, 2, "replays")
+    summaries = _replays(cal, block, {"after": after, "before": before}, solver.initiate, rate)
+    bar(2, 2, "replays")
     bar.close()
+    if summaries["before"] is None:
+        notes.append(f"the settings before lost the track more than {BEFORE_MAX_REACQUISITIONS} times: their replay "
+                     f"was stopped there")
+        summaries["before"] = {}
     verdict = _verdict(summaries["after"])
 
     print(_report(args, block, result, seconds, summaries, lockin_source, notes))
     try:
-        write_filter_settings(out, after, _comments(args, block, result, summaries, lockin_source, verdict))
+        write_filter_settings(out, after, _comments(args, block, result, summaries, lockin_source, verdict,
+                                                   before))
     except OSError as exc:
         raise InputError(f"cannot write the filter settings: {exc.strerror}", str(out)) from None
     print(f"wrote {out}")
@@ -250,7 +248,8 @@ def _lockin_check(cal, block, stated, result) -> list[str]:
 
 def _replays(cal, block, settings: dict, initiator, rate_hz) -> dict:
     """Return {name: summary} of the tracker run over the whole block with each of settings (name -> settings);
-    the runs go in parallel threads (the compiled filter releases the interpreter lock)."""
+    the runs go in parallel threads (the compiled filter releases the interpreter lock). 'before' gives up
+    (None) once it has lost the track more than BEFORE_MAX_REACQUISITIONS times: each restart costs a solve."""
     from concurrent.futures import ThreadPoolExecutor
 
     from fieldvane.estimator.tracker import Tracker, TrackerModel
@@ -258,25 +257,41 @@ def _replays(cal, block, settings: dict, initiator, rate_hz) -> dict:
     model = TrackerModel(cal.model, 1.0)
     names = list(settings)
     Tracker(cal, settings[names[0]], initiator, model=model)   # fills the model's shared caches before threads
+
+    def one(name):
+        limit = BEFORE_MAX_REACQUISITIONS if name == "before" else None
+        return _replay_summary(cal, block, settings[name], initiator, rate_hz, model, limit)
+
     with ThreadPoolExecutor(max_workers=len(names)) as pool:
-        done = list(pool.map(lambda n: _replay_summary(cal, block, settings[n], initiator, rate_hz, model), names))
+        done = list(pool.map(one, names))
     return dict(zip(names, done))
 
 
-def _replay_summary(cal, block, settings, initiator, rate_hz, model=None) -> dict:
-    """Return io.report.summarize numbers (plus NIS statistics and the bound) of the tracker over the whole block."""
+def _replay_summary(cal, block, settings, initiator, rate_hz, model=None, give_up_after: int | None = None):
+    """Return io.report.summarize numbers (plus NIS statistics and the bound) of the tracker over the whole block;
+    None when give_up_after is set and the track was lost more often than that."""
     import numpy as np
 
     from fieldvane.estimator.flags import EstimateFlag
     from fieldvane.estimator.honesty import nis_statistics
+    from fieldvane.estimator.samples import SampleBlock
     from fieldvane.estimator.tracker import Tracker
     from fieldvane.io.report import summarize, truth_of
 
     tracker = Tracker(cal, settings, initiator, sample_rate_hz=rate_hz, model=model)
-    rec = tracker.run_arrays(block)
-    est = {"t": rec.t, "ux": rec.u[:, 0], "uy": rec.u[:, 1], "uz": rec.u[:, 2]}
-    for key in ("b_nT", "sigma_deg", "flags", "nis", "nis_dof", "b_a_nT", "b_b_nT", "bound_deg"):
-        est[key] = getattr(rec, key)
+    keys = ("t", "u", "b_nT", "sigma_deg", "flags", "nis", "nis_dof", "b_a_nT", "b_b_nT", "bound_deg")
+    parts: dict = {k: [] for k in keys}
+    for s in range(0, len(block), REPLAY_CHUNK):
+        sl = slice(s, s + REPLAY_CHUNK)
+        # The tracker keeps its state between calls: consecutive chunks are one run.
+        rec = tracker.run_arrays(SampleBlock(block.t[sl], block.f[sl], block.z[sl], block.channels))
+        for k in keys:
+            parts[k].append(getattr(rec, k))
+        if give_up_after is not None and tracker.counters.acquisitions - 1 > give_up_after:
+            return None
+    est = {k: np.concatenate(v) for k, v in parts.items()}
+    u = est.pop("u")
+    est.update(ux=u[:, 0], uy=u[:, 1], uz=u[:, 2])
     summary = summarize(est, truth_of(block))
     flags = est["flags"]
     summary["gated_fraction"] = float(np.mean((flags & int(EstimateFlag.GATED)) != 0))
@@ -370,6 +385,7 @@ def _report(args, block, result, seconds: float, summaries: dict, lockin_source:
     ratio = nf.ratio(np.asarray(result.calibrated_std_V))
     for ch, c_v, e_v, r in zip(nf.channels, result.calibrated_std_V, nf.std_V, ratio):
         lines.append(f"  {ch:<7}  {c_v:<12.4g}  {e_v:<11.4g}  {r:.3f}")
+    lines.append("  channel_noise_scale: these ratios over their RMS; the filter learns the common level from the stream")
     if nf.burst_fraction > 0:
         lines.append(f"  ({100 * nf.burst_fraction:.1f} % of the samples left out as noise bursts)")
     if result.floor_deg > 0:
@@ -409,11 +425,12 @@ def _report(args, block, result, seconds: float, summaries: dict, lockin_source:
     return "\n".join(lines)
 
 
-def _comments(args, block, result, summaries: dict, lockin_source: str, verdict) -> list[str]:
+def _comments(args, block, result, summaries: dict, lockin_source: str, verdict, before) -> list[str]:
     """Return the leading comment lines of the written filter TOML: where the settings came from."""
     from datetime import datetime, timezone
 
     from fieldvane import __version__
+    from fieldvane.estimator.tuning import state_set_of
 
     nf = result.noise
     when = datetime.now(timezone.utc).replace(microsecond=0).isoformat()
@@ -424,9 +441,10 @@ def _comments(args, block, result, summaries: dict, lockin_source: str, verdict)
              f"input: {args.input} ({len(block)} samples; search on {result.samples_used}, every "
              f"{result.decimation})",
              f"calibration: {args.calibration}",
-             f"started from: {args.filter or 'defaults'}",
+             f"started from: {args.filter or 'defaults'} (state set {state_set_of(before)})",
              f"lock-in filter: {lockin}, {lockin_source} (correlation factor {nf.kappa:.3g})",
-             f"channel_noise_scale: stream noise std over the calibrated, from second differences: {ratios}",
+             f"noise std of the stream over the calibrated, from second differences: {ratios}; channel_noise_scale "
+             f"holds them relative to their RMS (the filter learns the common level from the stream)",
              f"state set: {result.chosen}, chosen by BIC among "
              + ", ".join(f"{n} {r.score:.1f}" for n, r in result.sets.items())
              + f" (a richer set had to win by more than {2 * result.allowance:.4g})",
