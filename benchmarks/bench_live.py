@@ -7,6 +7,7 @@ decodes the first frame (the floor set by the interpreter, numpy and the link).
 import os
 import subprocess
 import sys
+import threading
 import time
 
 import pytest
@@ -16,6 +17,23 @@ from fieldvane.firmware_sim.scenario import load_scenario, simulate
 from fieldvane.io.cli import main
 
 EXAMPLES = os.path.join(os.path.dirname(__file__), "..", "examples")
+# A field turning slowly at 20 uT, sampled at %d Hz for %g s (the live latency benchmark).
+EXAMPLE_10KHZ = """version = 1
+name = "fast_stream"
+[run]
+sample_rate_hz = %d
+duration_s = %g
+seed = 3
+[direction]
+start = [0.5, 0.5, 0.707]
+[[direction.segments]]
+kind = "rotate"
+axis = [0, 0, 1]
+rate_deg_per_s = 2.0
+duration_s = 100
+[magnitude]
+start_nT = 20000
+"""
 
 BASELINE = """
 import sys, serial
@@ -97,3 +115,83 @@ def test_baseline_bare_reader_time_to_first_frame(benchmark):
     benchmark.pedantic(once, rounds=3, iterations=1)
     benchmark.extra_info["first_frame_s"] = [round(r[0], 3) for r in results]
     print("\nbaseline:", benchmark.extra_info)
+
+
+SENSOR_PROCESS = """
+import sys, time
+from fieldvane.firmware_sim.emitter import Emitter, PtySink
+from fieldvane.firmware_sim.scenario import loads_scenario, simulate
+run = simulate(loads_scenario(sys.stdin.read()))
+sink = PtySink()
+print(sink.path, flush=True)
+starts = []
+def clock():
+    now = time.monotonic()          # CLOCK_MONOTONIC: the same clock in every process of this machine
+    if not starts:
+        starts.append(now)
+        print(repr(now), flush=True)
+    return now
+emitter = Emitter(run, sink, clock=clock)
+time.sleep(float(sys.argv[1]))
+emitter.start()
+emitter.wait_sent(1e6)
+print(emitter.stats.records_dropped, flush=True)
+emitter.stop()
+"""
+
+
+def test_live_10khz_latency_frame_to_sink(calibration):
+    """A simulated sensor in its own process streaming 10,000 frames/s over a pty for 8 s into the live loop (link
+    reader thread, decoder, the tracker on whatever has arrived, a batch at a time): latency from each frame's
+    scheduled send time to the moment its estimate is handed to the loggers (p50, p99, max), and frames lost."""
+    import math
+
+    import numpy as np
+
+    from fieldvane.estimator.snapshot import SnapshotSolver
+    from fieldvane.estimator.tracker import Tracker
+    from fieldvane.io.calfile import load_calibration
+    from fieldvane.io.live import BinarySampleDecoder, LiveLoop
+    from fieldvane.io.serial_link import SerialLink
+    from fieldvane.io.table_cache import cache_dir_for, load_or_build_table
+
+    rate, seconds = 10_000, 8.0
+    cal = load_calibration(calibration)
+    table, _ = load_or_build_table(cal, cache_dir_for(calibration))
+    solver = SnapshotSolver.from_calibration(cal, table)
+    tracker = Tracker(cal, None, solver.initiate, sample_rate_hz=rate)
+    proc = subprocess.Popen([sys.executable, "-c", SENSOR_PROCESS, "2.0"], stdin=subprocess.PIPE,
+                            stdout=subprocess.PIPE, text=True)
+    proc.stdin.write(EXAMPLE_10KHZ % (rate, seconds))
+    proc.stdin.close()
+    path = proc.stdout.readline().strip()
+    latencies, t_start = [], []
+
+    def estimate_batch(samples):
+        rows = [e.row() for e in tracker.step_record(samples).estimates()]
+        now = time.monotonic()
+        if t_start:
+            latencies.extend(now - (t_start[0] + s.t) for s in samples)
+        return rows
+
+    link = SerialLink(path)
+    loop = LiveLoop(link, BinarySampleDecoder(), lambda s: None, [], None, log=None, estimate_batch=estimate_batch)
+    old_interval = sys.getswitchinterval()
+    sys.setswitchinterval(0.0002)          # as `fieldvane run` does: threads take turns faster than 5 ms
+    thread = threading.Thread(target=loop.run, daemon=True)
+    try:
+        thread.start()
+        t_start.append(float(proc.stdout.readline()))
+        dropped = int(proc.stdout.readline())
+        time.sleep(0.5)
+        loop.stop()
+        thread.join(10)
+    finally:
+        sys.setswitchinterval(old_interval)
+        proc.wait(20)
+    lat = np.array(latencies[rate // 2:]) * 1e3        # after the first half second (acquisition, caches)
+    p50, p99, worst = np.percentile(lat, 50), np.percentile(lat, 99), lat.max()
+    total = int(rate * seconds)
+    print(f"\n10 kHz live: {loop.samples} of {total} frames estimated ({loop.samples / max(loop.chunks, 1):.1f} "
+          f"per chunk), latency p50 {p50:.3f} ms, p99 {p99:.3f} ms, max {worst:.2f} ms; sensor dropped {dropped}")
+    assert loop.samples > 0 and not math.isnan(p99)

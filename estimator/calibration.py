@@ -525,10 +525,11 @@ def _fit_inliers(u, b_nT, z, s_basis, knots, basis, nearest_knot, channels, nois
                                      else [round(float(x), 4) for x in pfit.dispersion]),
                 "misfit_beams": [bool(x) for x in pfit.misfit_beams()]}
     col = 2 * n_beams
-    if fit_efficiency:
+    fit_info["terms"] = dict(pfit.terms or {})
+    if pfit.terms and pfit.terms["efficiency"]:
         fit_info["efficiency_std"] = std[col:col + 8].reshape(2, 2, 2).tolist()   # [pump, pump of (p.u)^2, re/im]
         col += 8
-    if fit_detuning:
+    if pfit.terms and pfit.terms["detuning"]:
         fit_info["detuning_law_std"] = std[col:col + 8].reshape(2, 2, 2).tolist()
         fit_info["detuning_shape_std"] = std[col + 8:col + 12].reshape(2, 2).tolist()
     params_per_knot = N_LINEAR_TERMS + np.array([n_harmonics(d) if d >= 0 else 0 for d in per_level])

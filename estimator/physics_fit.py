@@ -27,6 +27,9 @@ JACKKNIFE_MIN_LEVELS = 3  # fewer levels give too few leave-one-out fits for a s
 JACKKNIFE_ALPHA = 0.01    # the level dispersion widens the covariance when significant at this level (chi-square)
 DEBUG = False
 PRIOR_STD = 1.0           # weak prior on efficiency and detuning parameters (dimensionless)
+PINNED_STD = 1e-9         # a parameter the scan cannot separate from another is held at zero by this prior
+DETUNING_TEST_ALPHA = 1e-3  # significance level for fitting the detuning (heading) terms
+LINEAR_TEST_ALPHA = 1e-3  # significance level for the non-ideal linear terms (quadrature, leak, offset)
 COST_TOLERANCE = 1e-3     # LM stops when the whitened chi-square falls by less than this
 RANK_TOLERANCE = 1e-10    # relative size of a QR diagonal below which the design is rank-deficient
 RANK_MESSAGE = ("the scan cannot separate the channel terms (rank-deficient design); "
@@ -49,6 +52,7 @@ class PhysicsFit:
     iterations: int
     inflation: float              # covariance factor for correlated residuals (AR(1), >= 1)
     dispersion: np.ndarray | None = None  # (n_beams,) leave-one-level-out dispersion, about 1 if the model holds
+    terms: dict | None = None             # which optional terms were fitted: efficiency, detuning, leak_terms
 
     def covariance_std_deg(self) -> np.ndarray:
         """Return each beam's 1-sigma angle from the fit's covariance alone, degrees (pumps, probes)."""
@@ -115,8 +119,9 @@ class _BlockLinear:
     projected out.
     """
 
-    def __init__(self, blocks: list, terms: np.ndarray, columns: np.ndarray | None):
+    def __init__(self, blocks: list, terms: np.ndarray, columns: np.ndarray | None, n_keep: int = 4):
         self.blocks = blocks
+        self.n_keep = n_keep
         self.factors = []
         for idx in blocks:
             q, r = np.linalg.qr(terms[idx])
@@ -140,16 +145,17 @@ class _BlockLinear:
         return out
 
     def coefficients(self, y: np.ndarray) -> np.ndarray:
-        k = len(self.blocks)
+        """Return the coefficients: each kept block column over the knots in turn, then the global columns."""
+        k, m = len(self.blocks), self.n_keep
         n_g = 0 if self.columns is None else self.columns.shape[1]
-        out = np.zeros(4 * k + n_g, complex)
+        out = np.zeros(m * k + n_g, complex)
         rest = y
         if n_g:
             x_g = np.linalg.solve(self.r_g, gram(self.q_g, y))
-            out[4 * k:] = x_g
+            out[m * k:] = x_g
             rest = y - self.columns @ x_g
         for i, (idx, (q, r)) in enumerate(zip(self.blocks, self.factors)):
-            out[i:4 * k:k] = np.linalg.solve(r, gram(q, rest[idx]))[:4]
+            out[i:m * k:k] = np.linalg.solve(r, gram(q, rest[idx]))[:m]
         return out
 
     def project(self, d: np.ndarray) -> np.ndarray:
@@ -173,8 +179,9 @@ class _Problem:
     """Data and fixed structure of one fit: directions, magnitude weights, values, channel layout."""
 
     def __init__(self, u, s_basis, z, channels, weights, fit_efficiency, fit_detuning, knots_nT, leak_terms: int,
-                 extra: np.ndarray | None = None):
+                 extra: np.ndarray | None = None, full_linear: bool = True):
         self.u, self.s, self.z = u, s_basis, z
+        self.full_linear = bool(full_linear)   # False: the ideal channel a (c - i sigma s) only, per knot
         self.extra = extra          # (N, X) free per-level columns (higher harmonics) or None
         self.leak_terms = int(leak_terms)   # how many of the s' leak law's powers are fitted (0, 1 or 2)
         self.knots_nT = np.asarray(knots_nT, float)
@@ -192,9 +199,13 @@ class _Problem:
         self.law_powers = np.stack([np.ones(self.k), (self.knots_nT / DETUNING_REFERENCE_NT) ** 2])   # (2, K)
         # A weak prior (std PRIOR_STD) on the dimensionless efficiency and detuning parameters keeps them
         # bounded where the scan cannot see them (a detuning shape when there is no detuning); it is
-        # negligible wherever the data determine them.
+        # negligible wherever the data determine them. With knots spanning less than a factor 1.5 the
+        # detuning law's |B|^2 term cannot be told from its constant one: it is held at zero.
         self.prior = np.zeros(self.n_theta)
         self.prior[2 * self.n_beams:] = 1.0 / PRIOR_STD
+        if fit_detuning and not (self.k >= 2 and self.knots_nT.max() >= 1.5 * self.knots_nT.min()):
+            start = 2 * self.n_beams + (8 if fit_efficiency else 0)
+            self.prior[start + 1:start + 8:2] = 1.0 / PINNED_STD
 
     def solve(self, phys: PhysicsParameters):
         """Solve the linear coefficients in place; return ((geo, eta, R), solver per channel, residual (N,C))."""
@@ -205,24 +216,37 @@ class _Problem:
         solvers, resid = [], np.empty_like(self.z)
         for c in range(len(self.channels)):
             columns = (eta[:, c] * geo["s_leak"][:, c])[:, None] * self.law[:, :self.leak_terms]
+            ideal = geo["c"][:, c] - 1j * phys.handedness[c] * geo["s"][:, c]
+            n_keep = 4 if self.full_linear else 1
             if self.blocks is not None:
                 r_own = rot[np.arange(n), c, self.own_knot]
-                terms = eta[:, c, None] * np.column_stack([r_own * geo["c"][:, c], r_own * geo["s"][:, c],
-                                                           geo["c_leak"][:, c], np.ones(n)])
+                if self.full_linear:
+                    terms = eta[:, c, None] * np.column_stack([r_own * geo["c"][:, c], r_own * geo["s"][:, c],
+                                                               geo["c_leak"][:, c], np.ones(n)])
+                else:
+                    terms = (eta[:, c] * r_own * ideal)[:, None]
                 if self.extra is not None:
                     terms = np.concatenate([terms, self.extra.astype(complex)], axis=1)
-                lin = _BlockLinear(self.blocks, terms, columns)
+                lin = _BlockLinear(self.blocks, terms, columns, n_keep)
             else:
                 se = self.s * eta[:, c, None]                                   # (N, K)
-                cols = [se * rot[:, c, :] * geo["c"][:, c, None], se * rot[:, c, :] * geo["s"][:, c, None],
-                        se * geo["c_leak"][:, c, None], se.astype(complex)]
+                if self.full_linear:
+                    cols = [se * rot[:, c, :] * geo["c"][:, c, None], se * rot[:, c, :] * geo["s"][:, c, None],
+                            se * geo["c_leak"][:, c, None], se.astype(complex)]
+                else:
+                    cols = [se * rot[:, c, :] * ideal[:, None]]
                 cols.append(columns.astype(complex))
                 lin = _DenseLinear(np.concatenate(cols, axis=1))
             coef = lin.coefficients(self.z[:, c])
-            phys.gains[c], phys.quadrature[c] = coef[:k], coef[k:2 * k]
-            phys.leak[c], phys.offset[c] = coef[2 * k:3 * k], coef[3 * k:4 * k]
+            if self.full_linear:
+                phys.gains[c], phys.quadrature[c] = coef[:k], coef[k:2 * k]
+                phys.leak[c], phys.offset[c] = coef[2 * k:3 * k], coef[3 * k:4 * k]
+            else:
+                phys.gains[c] = coef[:k]
+                phys.quadrature[c] = -1j * phys.handedness[c] * coef[:k]
+                phys.leak[c], phys.offset[c] = 0.0, 0.0
             phys.leak_quadrature[c] = 0.0
-            phys.leak_quadrature[c, :self.leak_terms] = coef[4 * k:4 * k + self.leak_terms]
+            phys.leak_quadrature[c, :self.leak_terms] = coef[n_keep * k:n_keep * k + self.leak_terms]
             resid[:, c] = lin.project(self.z[:, c])
             solvers.append(lin)
         return (geo, eta, rot), solvers, resid
@@ -431,10 +455,38 @@ def fit_physics(u: np.ndarray, s_basis: np.ndarray, knots_nT: np.ndarray, z: np.
     phys = PhysicsParameters(np.array(pump0, float), np.array(probe0, float), np.zeros((c_n, k), complex),
                              np.ones(c_n), channels, np.zeros((c_n, k), complex), knots_nT=knots_nT)
     weights = 1.0 / np.asarray(noise_std, float)
-    prob = _Problem(u, s_basis, z, channels, weights, fit_efficiency, fit_detuning, knots_nT, 0)
+    prob = _Problem(u, s_basis, z, channels, weights, fit_efficiency, False, knots_nT, 0)
     prob.solve(phys)
     phys.handedness = _handedness_from(phys)
     phys, iterations = _fit_reweighted(prob, phys, max_iterations)
+    full_linear = True
+
+    def make(detuning: bool, leak_terms: int) -> _Problem:
+        return _Problem(u, s_basis, z, channels, prob.w, fit_efficiency, detuning, knots_nT, leak_terms,
+                        full_linear=full_linear)
+
+    def better(current, phys_now, other, start, dof, alpha):
+        """Return (problem, parameters, iterations): `other` fitted from `start` if it is significantly better."""
+        trial, it = _levenberg_marquardt(other, start, max_iterations)
+        gain = current.cost(current.solve(phys_now)[2], phys_now) - other.cost(other.solve(trial)[2], trial)
+        return (other, trial, it) if gain > chi2.isf(alpha, dof) else (current, phys_now, it)
+
+    # The non-ideal linear terms (free quadrature b, leak l, offset o at every knot) only when they
+    # lower the residual significantly: a sensor without them would only gain noise from 6 more
+    # real parameters per channel and knot.
+    ideal = _Problem(u, s_basis, z, channels, prob.w, fit_efficiency, False, knots_nT, 0, full_linear=False)
+    trial, it = _levenberg_marquardt(ideal, _same(phys, ideal), max_iterations)
+    iterations += it
+    gain = ideal.cost(ideal.solve(trial)[2], trial) - prob.cost(prob.solve(phys)[2], phys)
+    if gain <= chi2.isf(LINEAR_TEST_ALPHA, 6 * k * c_n):
+        prob, phys, full_linear = ideal, trial, False
+    # The detuning (heading) terms only where they lower the residual significantly: at low fields
+    # there is no heading shift to see, and 16 idle parameters would only add noise to the model.
+    if fit_detuning:
+        det = make(True, 0)
+        free = 16 - int(np.sum(det.prior >= 1.0 / PINNED_STD / 2))
+        prob, phys, it = better(prob, phys, det, _same(phys, det), free, DETUNING_TEST_ALPHA)
+        iterations += it
     # The s' leak law: tried when the knots span a factor 2 in |B| (its first term, 1/B, must not look
     # like a constant, i.e. a pump-axis turn) and kept when it lowers the residual significantly; then
     # its second term (1/B^2) too wherever the knots span a factor 4 and hold 3 levels. The second
@@ -442,25 +494,24 @@ def fit_physics(u: np.ndarray, s_basis: np.ndarray, knots_nT: np.ndarray, z: np.
     eligible = sum(1 for t in range(1, len(LEAK_POWERS) + 1)
                    if k >= t + 1 and knots_nT.max() >= 2.0 ** t * knots_nT.min())
     if eligible:
-        one = _Problem(u, s_basis, z, channels, prob.w, fit_efficiency, fit_detuning, knots_nT, 1)
-        trial, it = _levenberg_marquardt(one, _same(phys, one), max_iterations)
+        one = make(prob.fit_detuning, 1)
+        prob, phys, it = better(prob, phys, one, _same(phys, one), 2 * c_n, LEAK_TEST_ALPHA)
         iterations += it
-        gain = prob.cost(prob.solve(phys)[2], phys) - one.cost(one.solve(trial)[2], trial)
-        if gain > chi2.isf(LEAK_TEST_ALPHA, 2 * c_n):
-            prob, phys = one, trial
-            if eligible >= 2:
-                prob = _Problem(u, s_basis, z, channels, prob.w, fit_efficiency, fit_detuning, knots_nT, eligible)
-                phys, it = _levenberg_marquardt(prob, _same(phys, prob), max_iterations)
-                iterations += it
-            phys, it = _fit_reweighted(prob, phys, max_iterations, rounds=1)
+        if prob is one and eligible >= 2:
+            prob = make(prob.fit_detuning, eligible)
+            phys, it = _levenberg_marquardt(prob, _same(phys, prob), max_iterations)
             iterations += it
+    phys, it = _fit_reweighted(prob, phys, max_iterations, rounds=1)
+    iterations += it
     terms, qs, resid = prob.solve(phys)
     frames = prob.frames(phys)
     jac = prob.jacobian(phys, terms, qs, frames)
     cov = _inverse_psd(gram(jac) + np.diag(prob.prior ** 2))
     inflation = _lag1_inflation(resid * prob.w)
     jack = _level_jackknife(prob, jac, resid) if prob.blocks is not None and k >= JACKKNIFE_MIN_LEVELS else None
-    return PhysicsFit(phys, cov * inflation, frames, resid, 1.0 / prob.w, iterations, inflation, jack)
+    terms_used = {"efficiency": prob.fit_efficiency, "detuning": prob.fit_detuning, "leak_terms": prob.leak_terms,
+                  "full_linear": prob.full_linear}
+    return PhysicsFit(phys, cov * inflation, frames, resid, 1.0 / prob.w, iterations, inflation, jack, terms_used)
 
 
 def _level_jackknife(prob: _Problem, jac: np.ndarray, resid: np.ndarray) -> np.ndarray | None:

@@ -459,20 +459,43 @@ class Tracker:
         flags = flags | np.where(good.any(axis=1) & (rms < self._low_amp), _LOW, 0)
         seg, seg_t = self.model.segments(b)
         seg = np.where(np.isfinite(b), seg, -1).astype(np.int64)
-        merr = np.zeros(len(t))
-        ratio_fn = getattr(self.calibration, "model_error_ratio", None)
-        if ratio_fn is not None and len(t):
-            known = np.isfinite(b)
-            if known.any():
-                with np.errstate(invalid="ignore"):
-                    merr[known] = np.max(np.atleast_2d(ratio_fn(b[known])), axis=1)
-            # Where the calibration cannot say (inf: far outside its magnitudes) use the cap, flagged.
-            merr = np.where(np.isnan(merr), s.model_error_cap_ratio, np.minimum(merr, s.model_error_cap_ratio))
+        merr = self._model_error(b)
         restart = np.zeros(len(t), np.int64) if restarted is None else np.asarray(restarted, np.int64)
         with np.errstate(invalid="ignore", over="ignore"):
             zw = zr / self._sigma
         return PreparedInput(t, np.ascontiguousarray(zw), b, per, flags.astype(np.int64), seg,
                              np.asarray(seg_t, float), restart, merr, z)
+
+    def _model_error(self, b: np.ndarray) -> np.ndarray:
+        """Return the calibration's model-error variance ratio (N,) at |B| = b (nT; worst channel, capped), from a
+        table in log|B| built once (the calibration's own evaluation is far too slow per live sample)."""
+        table = self.__dict__.get("_merr_table")
+        if table is None:
+            table = self._merr_table = self._model_error_table()
+        if table is None:
+            return np.zeros(len(b))
+        grid, values = table
+        with np.errstate(invalid="ignore", divide="ignore"):
+            x = np.log(b)
+        out = np.interp(x, grid, values)
+        cap = self.settings.model_error_cap_ratio
+        return np.where(np.isfinite(x), np.where((x < grid[0]) | (x > grid[-1]), cap, out), 0.0)
+
+    def _model_error_table(self):
+        """Return (log|B| grid, worst-channel ratio) over a quarter of the calibrated range to four times it."""
+        ratio_fn = getattr(self.calibration, "model_error_ratio", None)
+        if ratio_fn is None:
+            return None
+        lo, hi = self.calibration.magnitude_range_nT
+        grid = np.linspace(math.log(lo / 4.0), math.log(hi * 4.0), MODEL_ERROR_GRID)
+        with np.errstate(invalid="ignore"):
+            values = np.max(np.atleast_2d(ratio_fn(np.exp(grid))), axis=1)
+        cap = self.settings.model_error_cap_ratio
+        # Where the calibration cannot say (inf: far outside its magnitudes) the cap applies, flagged.
+        values = np.where(np.isnan(values), cap, np.minimum(values, cap))
+        if not np.any(values > 0):
+            return None
+        return grid, values
 
     # ----------------------------------------------------------------------------------- running
     def run_arrays(self, block: SampleBlock, chunk: int = 65536) -> TrackRecord:
@@ -657,6 +680,7 @@ class Tracker:
 
 
 MAGNITUDE_STRIDE = 16     # samples between evaluations of the calibrated magnitude corrections
+MODEL_ERROR_GRID = 2048   # points in log|B| of the model-error table (the calibration's ratio varies smoothly)
 
 
 def _interp_finite(x: np.ndarray, xp: np.ndarray, fp: np.ndarray) -> np.ndarray:

@@ -35,6 +35,7 @@ from .frames import STATUS_BITS, TRUTH_COLUMNS
 from .lockin import OutputFilter, default_oversample
 from .response import add_noise, response
 from .sensor import SensorConfig
+from .site import SiteField, parse_site
 
 SCENARIO_VERSION = 1
 KINDS = ("track", "scan")
@@ -627,6 +628,7 @@ class Scenario:
     events: tuple = ()
     source: str = "<scenario>"
     lockin: OutputFilter | None = None
+    site: SiteField | None = None       # [site]: the field fixed in NED, seen through attitude and mounting
 
     @property
     def n_samples(self) -> int:
@@ -652,6 +654,8 @@ class Scenario:
                 np.clip(np.floor(np.asarray(t) * self.sample_rate_hz + 1e-6).astype(int), 0, len(b) - 1)
             return u[idx], b[idx]
         t = self.times() if t is None else np.asarray(t, float)
+        if self.site is not None:
+            return self.site.field_sensor(t)
         return (direction_at(self.direction_start, self.direction_segments, t),
                 magnitude_at(self.magnitude_start_nT, self.magnitude_segments, t))
 
@@ -686,7 +690,7 @@ class Scenario:
 # ----- parsing --------------------------------------------------------------------------
 
 _TOP_KEYS = ("version", "name", "description", "kind", "sensor", "run", "lockin", "direction",
-             "magnitude", "scan", "events")
+             "magnitude", "scan", "events", "site")
 _EVENT_KINDS = ("noise_burst", "gain_drift", "fade", "dropout", "probe_missing", "outliers", "status")
 
 
@@ -754,7 +758,7 @@ def parse_scenario(data: Mapping[str, Any], source: str = "<scenario>", text: st
 
     fields: dict[str, Any] = {"lockin": lockin}
     if kind == "scan":
-        for k in ("direction", "magnitude"):
+        for k in ("direction", "magnitude", "site"):
             if top.has(k):
                 raise top.error(k, "a scan scenario takes its field from [scan]; remove this table "
                                    "or set kind = \"track\"")
@@ -770,6 +774,16 @@ def parse_scenario(data: Mapping[str, Any], source: str = "<scenario>", text: st
                                           f"{plan.n_samples} samples at {rate:g} Hz); leave it out "
                                           f"or shorten it")
         fields["scan"] = plan
+    elif top.has("site"):
+        if top.has("scan"):
+            raise top.error("scan", "only a scan scenario (kind = \"scan\") takes a [scan] table")
+        for k in ("direction", "magnitude"):
+            if top.has(k):
+                raise top.error(k, "with [site] the field comes from site.field_ned_nT (or its elements) "
+                                   "through the attitude and mounting; remove this table")
+        fields["site"] = parse_site(top.table("site"))
+        if duration is None:
+            raise run.error("duration_s", "required with [site] (the field has no timed segments)")
     else:
         if top.has("scan"):
             raise top.error("scan", "only a scan scenario (kind = \"scan\") takes a [scan] table")
@@ -991,6 +1005,7 @@ class SimulatedRun:
     n_samples: int = 0                      # samples of the whole run before dropouts (seq period)
     missing: np.ndarray | None = None
     lockin: OutputFilter | None = None
+    start_utc: str | None = None            # [site] start_utc (ISO 8601 UTC): t = 0 of the run
 
     @property
     def duration_s(self) -> float:
@@ -1021,6 +1036,8 @@ class SimulatedRun:
             meta["lockin_time_constant_s"] = f"{self.lockin.time_constant_s:.12g}"
             meta["lockin_filter_order"] = str(self.lockin.order)
             meta["lockin_noise_bandwidth_hz"] = f"{self.lockin.noise_bandwidth_hz:.12g}"
+        if self.start_utc is not None:
+            meta["start_utc"] = self.start_utc
         return meta
 
 
@@ -1085,7 +1102,8 @@ def simulate(scenario: Scenario) -> SimulatedRun:
                         u=u[keep], b_nT=b[keep], status=status[keep], channels=sensor.channels,
                         sample_rate_hz=scenario.sample_rate_hz, name=scenario.name,
                         seed=scenario.seed, kind=scenario.kind, applied_b_nT=applied, n_samples=n,
-                        missing=missing[keep] if missing.any() else None, lockin=scenario.lockin)
+                        missing=missing[keep] if missing.any() else None, lockin=scenario.lockin,
+                        start_utc=scenario.site.start_utc if scenario.site is not None else None)
 
 
 class _SignalGain:

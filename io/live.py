@@ -240,9 +240,16 @@ class LiveLoop:
             self.link.start()
         try:
             while not self._stop.is_set():
-                chunk = self.link.get(timeout=0.1)
-                if chunk is not None:
-                    self._process(chunk)
+                if self.estimate_batch is not None:
+                    # Everything that arrived meanwhile in one go: a loop that falls behind catches up in larger
+                    # batches instead of paying the per-call cost for every chunk.
+                    chunks = self.link.get_many(timeout=0.1)
+                    if chunks:
+                        self._process_many(chunks)
+                else:
+                    chunk = self.link.get(timeout=0.1)
+                    if chunk is not None:
+                        self._process(chunk)
                 now = self._clock()
                 if now >= next_check:
                     self._check_health(now)
@@ -274,6 +281,17 @@ class LiveLoop:
             self.chunks += 1
             self.bytes += len(chunk.data)
         self._estimate_all(feed_chunk(self.decoder, chunk))
+        with self._progress:
+            self._progress.notify_all()
+
+    def _process_many(self, chunks) -> None:
+        samples: list[Sample] = []
+        for chunk in chunks:
+            if chunk.event == EVENT_DATA:
+                self.chunks += 1
+                self.bytes += len(chunk.data)
+            samples.extend(feed_chunk(self.decoder, chunk))
+        self._estimate_all(samples)
         with self._progress:
             self._progress.notify_all()
 

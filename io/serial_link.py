@@ -73,6 +73,18 @@ class ChunkQueue:
             self._bytes -= len(chunk.data)
             return chunk
 
+    def get_many(self, timeout: float | None = None, limit: int = 4096) -> list[Chunk]:
+        """Return up to `limit` waiting chunks, oldest first, waiting up to timeout s for the first ([] if none)."""
+        with self._cond:
+            if not self._items and not self._cond.wait_for(lambda: bool(self._items), timeout):
+                return []
+            out = []
+            while self._items and len(out) < limit:
+                chunk = self._items.popleft()
+                self._bytes -= len(chunk.data)
+                out.append(chunk)
+            return out
+
     def __len__(self) -> int:
         return len(self._items)
 
@@ -176,6 +188,10 @@ class SerialLink:
     def get(self, timeout: float | None = None) -> Chunk | None:
         """Return the next received Chunk (host_time_ns, bytes), or None after timeout s."""
         return self.queue.get(timeout)
+
+    def get_many(self, timeout: float | None = None, limit: int = 4096) -> list[Chunk]:
+        """Return every received Chunk waiting (up to limit), waiting up to timeout s for the first."""
+        return self.queue.get_many(timeout, limit)
 
     def wait_for(self, predicate: Callable[["SerialLink"], bool], timeout: float) -> bool:
         """Return True once predicate(link) holds after an open, disconnect or read (False on timeout)."""

@@ -36,7 +36,7 @@ def add_arguments(parser) -> None:
     """Register demo's options."""
     from fieldvane.io.options import add_no_plots, add_output_dir, add_renamed
 
-    add_output_dir(parser, "the demo's new dated folder", default="demo_out")
+    add_output_dir(parser, "the demo's new dated folders", default="demo_out")
     add_renamed(parser, "--out", "--output", "output")
     parser.add_argument("--duration", type=float, default=45.0, metavar="S",
                         help=f"seconds of live tracking, streamed in real time (default 45, "

@@ -82,6 +82,15 @@ def run(args) -> int:
     unless --force, the scenario never; the bytes go to a temporary name renamed when the run
     ends (with --repeat, Ctrl-C is that end), so a failed run leaves nothing behind.
     """
+    restore = _sigterm_as_ctrl_c()
+    try:
+        return _run(args)
+    finally:
+        restore()
+
+
+def _run(args) -> int:
+    """Emit to args.to; a file destination is written under a temporary name and renamed at the end."""
     from fieldvane.io.commands.simulate import resolve_scenario_path
     from fieldvane.io.outputs import atomic_file, check_output
 
@@ -100,6 +109,20 @@ def run(args) -> int:
     if stopped:
         raise KeyboardInterrupt
     return code
+
+
+def _sigterm_as_ctrl_c():
+    """Make SIGTERM end emit like Ctrl-C does (counters printed, a file output finished or removed); return a restorer."""
+    import signal
+    import threading
+
+    if threading.current_thread() is not threading.main_thread():
+        return lambda: None
+
+    def _stop(signum, frame):
+        raise KeyboardInterrupt
+    old = signal.signal(signal.SIGTERM, _stop)
+    return lambda: signal.signal(signal.SIGTERM, old)
 
 
 def _emit(args, dest: str, shown: str | None = None) -> int:

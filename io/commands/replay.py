@@ -37,21 +37,23 @@ CHUNK = 8192     # samples of a capture estimated together
 def add_arguments(parser) -> None:
     """Register replay's options."""
     parser.add_argument("input", help="recording CSV, capture folder or capture file")
-    parser.add_argument("-c", "--calibration", required=True, help="calibration JSON from `fieldvane calibrate`")
-    parser.add_argument("-o", "--output", required=True,
-                        help="estimates file to write (.csv, .jsonl or .nmea; CSV for other suffixes)")
+    parser.add_argument("-c", "--calibration", required=True, metavar="CAL.json",
+                        help="calibration JSON written by `fieldvane calibrate` (its .npz beside it)")
+    parser.add_argument("-o", "--output", required=True, metavar="EST.csv",
+                        help="file to write: the estimates (.csv, .jsonl or .nmea; CSV for other suffixes)")
     parser.add_argument("--out", action="append", default=[], metavar="SINK",
                         help="a further output with the grammar of `run --out` (repeatable)")
     parser.add_argument("--mode", choices=("track", "snapshot"), default="track",
                         help="track: extended Kalman filter (default); snapshot: each sample on its own")
-    parser.add_argument("--filter", help="filter settings TOML (see docs/config_files.md); defaults otherwise")
+    parser.add_argument("--filter", metavar="FILTER.toml",
+                        help="filter settings TOML (docs/config_files.md); defaults otherwise")
     parser.add_argument("--gain-free", action="store_true",
                         help="snapshot mode: treat each probe's common gain as unknown (unstable optical power)")
     parser.add_argument("--readouts", action="store_true",
                         help="add demodulated phases (deg) and amplitude ratios as extra columns")
     parser.add_argument("--input-format", choices=("binary", "csv"),
-                        help="format of a capture that does not record it")
-    parser.add_argument("--force", action="store_true", help="replace the output file if it exists")
+                        help="binary wire frames or recording-CSV lines: a capture's format when it does not record it")
+    parser.add_argument("--force", action="store_true", help="replace existing output files (never an input)")
     parser.add_argument("--no-progress", action="store_true", help="no progress bar")
 
 

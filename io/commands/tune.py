@@ -48,9 +48,11 @@ KAPPA_MISMATCH = 0.25      # stated and measured lock-in bandwidth factors diffe
 def add_arguments(parser) -> None:
     """Register tune's options."""
     parser.add_argument("input", help="recording CSV, capture folder or capture file")
-    parser.add_argument("-c", "--calibration", required=True, help="calibration JSON from `fieldvane calibrate`")
-    parser.add_argument("-o", "--output", required=True, help="filter settings TOML to write")
-    parser.add_argument("--filter", help="filter settings TOML to start from (defaults otherwise); "
+    parser.add_argument("-c", "--calibration", required=True, metavar="CAL.json",
+                        help="calibration JSON written by `fieldvane calibrate` (its .npz beside it)")
+    parser.add_argument("-o", "--output", required=True, metavar="FILTER.toml",
+                        help="file to write: the filter settings TOML")
+    parser.add_argument("--filter", metavar="FILTER.toml", help="filter settings TOML to start from (defaults otherwise); "
                                          "everything not tuned is kept from it")
     parser.add_argument("--states", default="none,gain,gain+phase",
                         help="comma list of the state sets to compare: none, gain, gain+phase (default all three)")
@@ -60,8 +62,8 @@ def add_arguments(parser) -> None:
                         help="calibration accuracy floor, deg (1-sigma): 'auto' (from the calibration's "
                              "scan size, the default), a number, or 0 for none")
     parser.add_argument("--input-format", choices=("binary", "csv"),
-                        help="format of a capture that does not record it")
-    parser.add_argument("--force", action="store_true", help="overwrite the output file if it exists")
+                        help="binary wire frames or recording-CSV lines: a capture's format when it does not record it")
+    parser.add_argument("--force", action="store_true", help="replace existing output files (never an input)")
     parser.add_argument("--no-progress", action="store_true", help="no progress bar")
 
 
