@@ -2,7 +2,10 @@
 
 import os
 
-import pytest
+for _name in ("OPENBLAS_NUM_THREADS", "OMP_NUM_THREADS", "MKL_NUM_THREADS"):   # before numpy: one BLAS thread
+    os.environ.setdefault(_name, "1")
+
+import pytest  # noqa: E402
 
 
 @pytest.fixture(scope="module", autouse=True)

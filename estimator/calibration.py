@@ -119,13 +119,18 @@ class Calibration:
 
 
 def magnitude_knots(b_nT: np.ndarray, max_knots: int = 8, gap: float = 0.05) -> np.ndarray:
-    """Return magnitude knots (nT): the levels of a stepped scan, or quantiles of a continuous one."""
+    """Return magnitude knots (nT): the levels of a stepped scan, or quantiles of a continuous one.
+
+    Levels are groups of magnitudes separated by more than `gap` in ln|B|, each no wider than `gap`;
+    otherwise the scan is continuous and gets about one knot per factor 1.5 in |B| (2..max_knots).
+    """
     lb = np.sort(np.log(b_nT))
     breaks = np.flatnonzero(np.diff(lb) > gap)
     groups = np.split(lb, breaks + 1)
-    if len(groups) <= max_knots:
+    if len(groups) <= max_knots and all(g[-1] - g[0] <= gap for g in groups):
         return np.exp([np.median(g) for g in groups])
-    return np.exp(np.quantile(lb, np.linspace(0, 1, max_knots)))
+    count = int(np.clip(np.ceil((lb[-1] - lb[0]) / np.log(1.5)) + 1, 2, max_knots))
+    return np.exp(np.quantile(lb, np.linspace(0, 1, count)))
 
 
 def _init_axes_from_quadratic(u, z, channels):

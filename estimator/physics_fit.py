@@ -25,7 +25,6 @@ N_LINEAR_TERMS = 4        # a (c), b (s), l (c'), o (1) per channel and knot; pl
 LEAK_TEST_ALPHA = 1e-3    # significance level for keeping the s' leak term
 JACKKNIFE_MIN_LEVELS = 3  # fewer levels give too few leave-one-out fits for a spread
 JACKKNIFE_ALPHA = 0.01    # the level dispersion widens the covariance when significant at this level (chi-square)
-DEBUG = False
 PRIOR_STD = 1.0           # weak prior on efficiency and detuning parameters (dimensionless)
 PINNED_STD = 1e-9         # a parameter the scan cannot separate from another is held at zero by this prior
 DETUNING_TEST_ALPHA = 1e-3  # significance level for fitting the detuning (heading) terms
@@ -103,6 +102,7 @@ class _DenseLinear:
         self.r = r
 
     def coefficients(self, y: np.ndarray) -> np.ndarray:
+        """Return the least-squares coefficients of y (N,) on the design's columns."""
         return np.linalg.solve(self.r, gram(self.q, y))
 
     def project(self, d: np.ndarray) -> np.ndarray:
@@ -114,9 +114,9 @@ class _BlockLinear:
     """The same for a stepped scan: one (n_k, m) block per magnitude level plus a few global columns.
 
     Small per-level factorizations keep every product small (and single-threaded in BLAS), and
-    cost K times less than one factorization of the whole (N, mK) design. The first 4 columns of
-    every block are the physics terms whose coefficients are returned; further ones are only
-    projected out.
+    cost K times less than one factorization of the whole (N, mK) design. The first n_keep columns
+    of every block are the terms whose coefficients are returned; further ones are only projected
+    out.
     """
 
     def __init__(self, blocks: list, terms: np.ndarray, columns: np.ndarray | None, n_keep: int = 4):
@@ -159,6 +159,7 @@ class _BlockLinear:
         return out
 
     def project(self, d: np.ndarray) -> np.ndarray:
+        """Return d (N,) or (N, p) minus its least-squares fit on the blocks and the global columns."""
         out = self._project_blocks(d)
         if self.columns is not None:
             out -= rows_times(self.q_g, gram(self.q_g, out))
@@ -179,10 +180,9 @@ class _Problem:
     """Data and fixed structure of one fit: directions, magnitude weights, values, channel layout."""
 
     def __init__(self, u, s_basis, z, channels, weights, fit_efficiency, fit_detuning, knots_nT, leak_terms: int,
-                 extra: np.ndarray | None = None, full_linear: bool = True):
+                 full_linear: bool = True):
         self.u, self.s, self.z = u, s_basis, z
         self.full_linear = bool(full_linear)   # False: the ideal channel a (c - i sigma s) only, per knot
-        self.extra = extra          # (N, X) free per-level columns (higher harmonics) or None
         self.leak_terms = int(leak_terms)   # how many of the s' leak law's powers are fitted (0, 1 or 2)
         self.knots_nT = np.asarray(knots_nT, float)
         self.law = s_basis @ leak_law(self.knots_nT).T                 # (N, powers): (B_1/B)^p, like the table
@@ -225,8 +225,6 @@ class _Problem:
                                                                geo["c_leak"][:, c], np.ones(n)])
                 else:
                     terms = (eta[:, c] * r_own * ideal)[:, None]
-                if self.extra is not None:
-                    terms = np.concatenate([terms, self.extra.astype(complex)], axis=1)
                 lin = _BlockLinear(self.blocks, terms, columns, n_keep)
             else:
                 se = self.s * eta[:, c, None]                                   # (N, K)
@@ -409,6 +407,7 @@ class _Problem:
         return out
 
     def frames(self, phys: PhysicsParameters) -> list:
+        """Return the tangent basis (e1, e2) at every beam axis: pumps, then probes."""
         beams = list(phys.pump_axes) + list(phys.probe_axes)
         return [tangent_basis(b) for b in beams]
 
@@ -601,8 +600,6 @@ def _levenberg_marquardt(prob: _Problem, phys: PhysicsParameters, max_iterations
                 continue
             t_cost = prob.cost(t_resid, trial)
             if t_cost < cost:
-                if DEBUG:
-                    print("  it", it, "cost", cost, "->", t_cost, "lam", lam, "max|d|", np.abs(delta).max())
                 phys, terms, qs, resid = trial, t_terms, t_qs, t_resid
                 # Whitened chi-square: a fall below COST_TOLERANCE is far below any statistical meaning.
                 done = (cost - t_cost) <= COST_TOLERANCE + 1e-10 * cost

@@ -134,6 +134,8 @@ def calibration_document(cal: Calibration, tables_name: str, tables_sha: str, so
     }
     if cal.magnitude_check is not None:
         doc["magnitude_check"] = _magnitude_check_doc(cal.magnitude_check)
+    if getattr(cal, "magnitude_model", None) is not None:
+        doc["magnitude_model"] = cal.magnitude_model.to_dict()
     if sensor and sensor.get("mounting_rotation") is not None:
         doc["mounting_rotation"] = [_vec(r) for r in np.asarray(sensor["mounting_rotation"])]
     if sensor and sensor.get("name"):
@@ -420,6 +422,14 @@ def _build(rd: _Reader, path: Path, doc: dict, version: int) -> Calibration:
         b_rows = np.repeat(knots, per_knot)
         params = N_LINEAR_TERMS + (n_harmonics(corr_degree) if corr_degree >= 0 else 0)
         cal.magnitude_check = check_magnitudes(coef, knots, noise, b_rows, params)
+    if "magnitude_model" in doc:
+        from fieldvane.estimator.magnitude_model import MagnitudeModel
+
+        try:
+            cal.magnitude_model = MagnitudeModel.from_dict(doc["magnitude_model"])
+        except (TypeError, ValueError) as exc:
+            key, _, message = str(exc).partition(": ")
+            rd.fail(key if key.startswith("magnitude_model") else "magnitude_model", message or str(exc))
     return cal
 
 

@@ -3,6 +3,12 @@
 from __future__ import annotations
 
 import argparse
+import os
+
+# The matrices here are small: a BLAS thread pool only competes with the live loop's own threads on a small
+# computer. Set before numpy is first imported (the commands import it lazily); a user's setting wins.
+for _name in ("OPENBLAS_NUM_THREADS", "OMP_NUM_THREADS", "MKL_NUM_THREADS"):
+    os.environ.setdefault(_name, "1")
 import contextlib
 import importlib
 import sys
@@ -25,7 +31,8 @@ COMMANDS = {
     "run": ("run", "live: read a serial port, estimate, stream to loggers, capture raw bytes"),
     "tune": ("tune", "fit filter noise settings to a recording by innovation likelihood"),
     "report": ("report", "plots and a summary of an estimates CSV"),
-    "examples": ("examples", "copy the example scenarios (and a sensor file) into a folder"),
+    "export": ("export", "estimates as IAGA-2002 files, or a capture's raw samples as a recording CSV"),
+    "examples": ("examples", "list the example scenarios, or copy them into a folder to edit"),
     "docs": ("docs", "show where the documentation is, or print one document"),
 }
 

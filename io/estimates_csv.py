@@ -88,7 +88,7 @@ class EstimatesWriter:
             self._stack.close()
             raise InputError(f"cannot write estimates: {exc.strerror}", str(self.path)) from None
         self._formatter = make_formatter("csv", extras)
-        self._metadata = metadata or {}
+        self._metadata = metadata if metadata is not None else {}   # as it stands at the first row
         self._started = False
         self._closed = False
         self._buffer: np.ndarray | None = None
@@ -143,9 +143,16 @@ class EstimatesWriter:
             return
         if self._buffer is None:
             self._buffer = np.empty(WRITE_BLOCK_ROWS * len(names) * (MAX_FIELD_CHARS + 1), np.uint8)
+        utc_at = names.index("utc") if "utc" in names and "utc" in columns else None
+        if utc_at is not None and arrays[utc_at].dtype.kind != "f":
+            utc_at = None
+        if utc_at is not None:              # `utc` is ISO 8601 text, as the CSV sink renders it
+            from fieldvane.io.utc_text import insert_field, iso_texts
+            utc, arrays[utc_at] = arrays[utc_at], None
         for lo in range(0, n, WRITE_BLOCK_ROWS):
             hi = min(lo + WRITE_BLOCK_ROWS, n)
-            self._put(format_rows([None if a is None else a[lo:hi] for a in arrays], out=self._buffer))
+            text = format_rows([None if a is None else a[lo:hi] for a in arrays], out=self._buffer)
+            self._put(text if utc_at is None else insert_field(text, utc_at, iso_texts(utc[lo:hi])))
         self.rows += n
 
     def _write_records(self, columns: Mapping[str, Sequence], n: int) -> None:
@@ -254,7 +261,11 @@ def read_estimates(path: str | Path) -> dict[str, np.ndarray]:
                 raise InputError("column appears twice", path, lineno, name)
             seen.add(name)
         parts = []
+        utc_at = header.index("utc") if "utc" in header else None
         while lines := source.take(READ_CHUNK_ROWS):
+            if utc_at is not None:          # ISO 8601 text (as written) -> POSIX seconds
+                from fieldvane.io.utc_text import utc_lines_to_numbers
+                lines = utc_lines_to_numbers(lines, utc_at, path, lineno + 1)
             values = fast_parse_lines(lines, len(header))
             if values is not None:
                 line_numbers = np.arange(lineno + 1, lineno + 1 + len(lines))

@@ -159,6 +159,9 @@ class LiveLoop:
         # on SIGUSR1 (final=False) and at the end (final=True, instead of the one-line final summary).
         self.status, self.status_interval_s, self.counters_report = status, status_interval_s, counters_report
         self.last_record: Mapping | None = None
+        # host receive time (ns) of the chunk that completed each sample handed to the current estimate
+        # call, one per sample (a capture replay gives the samples the same times: runs_from_capture)
+        self.sample_host_times_ns: list[int] = []
         self._counters_asked = self._counters_shown = 0   # SIGUSR1 requests (the handler only counts)
         # estimate_batch(samples) -> records, one per sample (None: no record): the whole chunk in one call
         # (the compiled filter core's way); `estimate` then serves only as the fallback for a failing batch.
@@ -179,6 +182,7 @@ class LiveLoop:
         self._stop = threading.Event()
         self._progress = threading.Condition()
         self._leftover: list[Sample] = []
+        self._leftover_ns: list[int] = []
         self._deadline: float | None = None     # set while draining at shutdown
         self._forced = False
         self._signals = 0
@@ -280,18 +284,22 @@ class LiveLoop:
         if chunk.event == EVENT_DATA:
             self.chunks += 1
             self.bytes += len(chunk.data)
-        self._estimate_all(feed_chunk(self.decoder, chunk))
+        samples = feed_chunk(self.decoder, chunk)
+        self._estimate_all(samples, [chunk.host_time_ns] * len(samples))
         with self._progress:
             self._progress.notify_all()
 
     def _process_many(self, chunks) -> None:
         samples: list[Sample] = []
+        host_ns: list[int] = []
         for chunk in chunks:
             if chunk.event == EVENT_DATA:
                 self.chunks += 1
                 self.bytes += len(chunk.data)
-            samples.extend(feed_chunk(self.decoder, chunk))
-        self._estimate_all(samples)
+            got = feed_chunk(self.decoder, chunk)
+            samples.extend(got)
+            host_ns.extend([chunk.host_time_ns] * len(got))
+        self._estimate_all(samples, host_ns)
         with self._progress:
             self._progress.notify_all()
 
@@ -300,14 +308,17 @@ class LiveLoop:
             return self._stop.is_set()
         return self._forced or self._clock() >= self._deadline
 
-    def _estimate_all(self, samples: list[Sample]) -> None:
+    def _estimate_all(self, samples: list[Sample], host_ns: list[int] | None = None) -> None:
+        host_ns = [0] * len(samples) if host_ns is None else host_ns
         if self.estimate_batch is not None:
-            self._estimate_batches(samples)
+            self._estimate_batches(samples, host_ns)
             return
         for i, sample in enumerate(samples):
             if self._must_pause():
                 self._leftover.extend(samples[i:])
+                self._leftover_ns.extend(host_ns[i:])
                 return
+            self.sample_host_times_ns = host_ns[i:i + 1]
             self.samples += 1
             if sample.restarted:
                 self.restarts += 1
@@ -327,13 +338,15 @@ class LiveLoop:
             for sink in self.sinks:
                 sink.emit(record)
 
-    def _estimate_batches(self, samples: list[Sample], size: int = 512) -> None:
+    def _estimate_batches(self, samples: list[Sample], host_ns: list[int], size: int = 512) -> None:
         """Estimate samples a batch at a time (the pause is checked between batches)."""
         for start in range(0, len(samples), size):
             if self._must_pause():
                 self._leftover.extend(samples[start:])
+                self._leftover_ns.extend(host_ns[start:])
                 return
             batch = samples[start:start + size]
+            self.sample_host_times_ns = host_ns[start:start + size]
             self.samples += len(batch)
             for sample in batch:
                 if sample.restarted:
@@ -457,14 +470,15 @@ class LiveLoop:
     def _drain(self) -> None:
         """Estimate what arrived before the stop until the drain deadline; count the rest."""
         leftover, self._leftover = self._leftover, []
-        self._estimate_all(leftover)
+        leftover_ns, self._leftover_ns = self._leftover_ns, []
+        self._estimate_all(leftover, leftover_ns)
         while not self._must_pause():
             chunk = self.link.get(timeout=0)
             if chunk is None:
                 break
             self._process(chunk)
         self.not_estimated_samples += len(self._leftover)
-        self._leftover = []
+        self._leftover, self._leftover_ns = [], []
         _chunks, n = self.link.queue.clear()
         self.not_estimated_bytes += n
 
@@ -595,7 +609,8 @@ def _add(totals: dict, counters: Mapping[str, int]) -> None:
 def runs_from_capture(path, input_format: str | None = None, columns: Sequence[str] | None = None,
                       *, run_id: str | None = None, counters: dict | None = None,
                       capture_counters: dict | None = None,
-                      warnings: list[str] | None = None) -> Iterator[tuple[str, Iterator[Sample]]]:
+                      warnings: list[str] | None = None,
+                      host_times: list | None = None) -> Iterator[tuple[str, Iterator[Sample]]]:
     """Yield (run_id, Samples iterator) per run of a capture, each decoded by a fresh decoder as live.
 
     Give each run a fresh estimator to reproduce each live run exactly (a live run starts with
@@ -603,6 +618,8 @@ def runs_from_capture(path, input_format: str | None = None, columns: Sequence[s
     samples are exhausted, `counters` (dict) receives the decoder counters summed over runs,
     `capture_counters` the reader's damage counters (CaptureReader.counters) summed, and
     `warnings` (list) one line per damaged or cut file, with its byte offset. run_id: that run only.
+    host_times (list): receives the host receive time (ns) of the chunk that completed each sample, in
+    sample order, before the sample is yielded (the consumer takes them from the front).
     """
     header_warnings: list[str] = []
     all_infos = capture_files(path, header_warnings)
@@ -624,7 +641,10 @@ def runs_from_capture(path, input_format: str | None = None, columns: Sequence[s
 
         def samples(decoder=decoder, reader=reader):
             for chunk in reader:
-                yield from feed_chunk(decoder, chunk)
+                got = feed_chunk(decoder, chunk)
+                if host_times is not None:
+                    host_times.extend([chunk.host_time_ns] * len(got))
+                yield from got
             if counters is not None:
                 _add(counters, decoder.counters())
             if capture_counters is not None:

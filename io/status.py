@@ -16,6 +16,7 @@ from collections.abc import Callable, Mapping
 from fieldvane.estimator.flags import describe
 
 TTY_REFRESH_S = 0.25      # how often a terminal's line is redrawn
+PROBES_USED = {0: "no probe used", 1: "probe 1", 2: "probe 2", 3: "probes 1+2"}   # the probes_used bitmask
 
 
 def _mib(n: int) -> str:
@@ -62,8 +63,10 @@ def estimate_text(record: Mapping[str, object] | None) -> str:
             return format(float(v), fmt)
         except (TypeError, ValueError):
             return "-"
+    probes = PROBES_USED.get(record.get("probes_used"), "")
     return (f"t {num('t', '.2f')} s  u ({num('ux', '+.3f')} {num('uy', '+.3f')} {num('uz', '+.3f')})  "
-            f"|B| {num('b_nT', '.1f')} nT  sigma {num('sigma_deg', '.3f')} deg  {flags}")
+            f"|B| {num('b_nT', '.1f')} nT  sigma {num('sigma_deg', '.3f')} deg  {flags}"
+            + (f"  {probes}" if probes else ""))
 
 
 def status_text(record: Mapping[str, object] | None, counters: Mapping[str, object]) -> str:

@@ -204,7 +204,9 @@ def test_burst_on_one_probe_inflates_that_probe_only(two_probe):
     uniform = Tracker(cal, FilterSettings(adaptive_noise=False, measurement_noise_scale=math.sqrt(50.5)),
                       GridInitiator(cal.model)).run_arrays(blk)
     rms = np.sqrt(np.mean(err[burst] ** 2))
-    assert rms < 0.5 * np.sqrt(np.mean(errors_deg(uniform, u)[burst] ** 2))
+    # (with the default gain states, probe 1 alone pins its own gain less well than two probes do, so the gain
+    # over a uniform inflation is smaller than without them: about 0.5x here against about 0.3x)
+    assert rms < 0.6 * np.sqrt(np.mean(errors_deg(uniform, u)[burst] ** 2))
 
 
 @pytest.mark.parametrize("n_probes", [2, 1])

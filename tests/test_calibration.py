@@ -95,3 +95,31 @@ def test_model_jacobian_against_finite_differences():
             fd = (model.h(exp_map(pts, h * e), b_nT) - model.h(exp_map(pts, -h * e), b_nT)) / (2 * h)
             np.testing.assert_allclose(np.einsum("nck,nk->nc", jac, e), fd, atol=1e-6)
     assert to_real(np.array([[1 + 2j, 3 - 4j]])).tolist() == [[1, 2, 3, -4]]
+
+
+def test_magnitude_check_of_stepped_and_continuous_scans():
+    sensor, _, _ = make_sensor(seed=11, n_probes=2)
+    # Stepped: zero at the levels, positive between and beyond them, larger further out.
+    u, b, z, f, _ = scan(sensor, [1000, 4000, 16000], 600, snr=1000, seed=3)
+    cal = fit_calibration(u, b, z, f, sensor.channels)
+    mc = cal.magnitude_check
+    assert mc.stepped and np.allclose(mc.levels_nT, [1000, 4000, 16000]) and list(mc.level_rows) == [600] * 3
+    r = cal.model_error_ratio(np.array([1000.0, 2000.0, 16000.0, 30000.0, 60000.0]))
+    assert r.shape == (5, 4) and np.all(r[0] == 0) and np.all(r[2] == 0)
+    assert np.all(r[1] > 0) and np.all(r[4] >= r[3]) and np.all(r[3] > 0)
+    # Continuous: every magnitude in the range was scanned, so the model is verified there.
+    rng = np.random.default_rng(4)
+    b_cont = np.exp(rng.uniform(np.log(1000), np.log(16000), 2400))
+    u2 = fibonacci_sphere(2400)
+    z2 = sensor.response(u2, b_cont)
+    z2 = z2 + (np.abs(sensor.gains) / 1000) * (rng.normal(size=z2.shape) + 1j * rng.normal(size=z2.shape))
+    cal2 = fit_calibration(u2, b_cont, z2, sensor.frequencies(b_cont), sensor.channels)
+    assert not cal2.magnitude_check.stepped
+    inside = cal2.model_error_ratio(np.array([1500.0, 7000.0]))
+    assert np.all(inside == 0)
+    assert np.all(cal2.model_error_ratio(np.array([200.0]))[0] > 0)
+    # A single level: verified within 10 % of it, unknown (infinite) beyond.
+    u3, b3, z3, f3, _ = scan(sensor, [5000], 1200, snr=1000, seed=5)
+    cal3 = fit_calibration(u3, b3, z3, f3, sensor.channels)
+    r3 = cal3.model_error_ratio(np.array([5000.0, 5200.0, 8000.0]))
+    assert np.all(r3[:2] == 0) and np.all(np.isinf(r3[2]))

@@ -155,12 +155,16 @@ def test_direction_std_is_honest_over_seeds():
 
     direction_std_deg is sigma_tot = sqrt(trace) of the axis' 2x2 covariance; for a 2-D isotropic
     Gaussian P(error < sigma_tot) = 1 - exp(-1) = 63.2 % (REFERENCES.md 'Estimation'), up to
-    68.3 % for a fully anisotropic one. 24 seeds x 4 axes, both scans.
+    68.3 % for a fully anisotropic one. 20 seeds x 4 axes of the low-field scan (about 20 s of
+    CPU); FIELDVANE_LONG_MC=1 adds the Earth-field scan.
     """
+    import os
+
     cfg = sensor()
-    for magnitudes in (LOW, EARTH):
+    scans = [LOW] + ([EARTH] if os.environ.get("FIELDVANE_LONG_MC") else [])
+    for magnitudes in scans:
         inside = []
-        for seed in range(100, 124):
+        for seed in range(100, 120):
             u, b, z, f = scan(cfg, magnitudes, seed=seed)
             cal = fit_calibration(u, b, z, f, cfg.channels)
             inside.append(axis_errors(cal, cfg) <= cal.direction_std_deg)

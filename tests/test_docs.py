@@ -96,7 +96,7 @@ def test_docs_and_examples_ship_with_the_package():
     assert project["package-dir"]["fieldvane.examples"] == "examples"
     assert {"fieldvane.docs", "fieldvane.examples"} <= set(project["packages"])
     assert "*.md" in project["package-data"]["fieldvane.docs"]
-    assert "*.toml" in project["package-data"]["fieldvane.examples"]
+    assert {"*.toml", "**/*.toml"} <= set(project["package-data"]["fieldvane.examples"])
 
 
 def test_docs_command_lists_and_prints_documents(capsys):
@@ -115,8 +115,9 @@ def test_examples_are_listed_copied_once_and_usable_by_name(tmp_path, capsys):
     assert "calibration_scan" in capsys.readouterr().out
     out = tmp_path / "mine"
     assert main(["examples", "-o", str(out)]) == 0
-    copied = sorted(p.name for p in out.iterdir())
-    assert copied == sorted(p.name for p in (ROOT / "examples").glob("*.toml"))
+    copied = sorted(str(p.relative_to(out)) for p in out.rglob("*") if p.is_file())
+    assert copied == sorted(str(p.relative_to(ROOT / "examples")) for p in (ROOT / "examples").rglob("*")
+                            if p.is_file() and "__pycache__" not in p.parts)
     assert main(["examples", "-o", str(out)]) == 2                 # the overwrite rule
     assert "--force" in capsys.readouterr().err
     assert main(["examples", "-o", str(out), "--force"]) == 0

@@ -181,5 +181,7 @@ def test_help_names_only_docs_that_exist(name):
 
 def test_docs_and_readme_name_only_docs_that_exist():
     for path in [ROOT / "README.md", *sorted((ROOT / "docs").glob("*.md"))]:
-        for doc in re.findall(r"docs/[A-Za-z0-9_]+\.md", path.read_text(encoding="utf-8")):
+        text = path.read_text(encoding="utf-8")
+        for doc in re.findall(r"docs/[A-Za-z0-9_]+\.md", text):
             assert (ROOT / doc).is_file(), f"{path.name} names {doc}, which does not exist"
+        assert "DESIGN.md" not in text, f"{path.name} points to a DESIGN.md the repository does not have"

@@ -175,6 +175,15 @@ def summary_text(cal, scan_name, rows, skipped, sensor=None) -> str:
                      f"noise {rep.noise_std:.3g} V  phase {rep.heldout_phase_deg:.3f} deg  "
                      f"amplitude {rep.heldout_amplitude_pct:.3f} %  leak {leak[0]:.2f}..{leak[-1]:.2f} %  "
                      f"corrections {corr[k] / rep.noise_std:.2f}x noise")
+    terms = cal.fit_info.get("terms") or {}
+    if terms:
+        parts = ["gain and phase per knot"]
+        parts.append("counter-rotating part, other pump's leak and offset per knot" if terms.get("full_linear")
+                     else "no leak or counter-rotating part (not significant)")
+        parts.append("pump efficiency vs angle" if terms.get("efficiency") else "no efficiency term")
+        parts.append("heading detuning" if terms.get("detuning") else "no heading detuning (not significant)")
+        parts.append(f"{terms.get('leak_terms', 0)} term(s) of the 1/|B| quadrature leak")
+        lines.append("physics part: " + "; ".join(parts))
     scores = ", ".join(f"{'none' if d < 0 else d}: {s:.3g}" for d, s in sorted(cal.degree_scores.items()))
     chosen = "none (physics part only)" if cal.correction_degree < 0 else f"degree {cal.correction_degree}"
     lines.append(f"corrections: {chosen}; held-out RMS (V) by degree: {scores}")
@@ -185,6 +194,7 @@ def summary_text(cal, scan_name, rows, skipped, sensor=None) -> str:
         lines.append(f"  too sparse to trust near (deg): {regions}{more}")
     lines.extend(rejected_lines(cal.rejected_rows))
     lines.extend(magnitude_lines(cal))
+    lines.extend(magnitude_model_lines(cal))
     for w in cal.warnings:
         lines.append(f"note: {w}")
     return "\n".join(lines)
@@ -200,6 +210,21 @@ def rejected_lines(rejected, listed: int = 10) -> list[str]:
         out.append(f"  {r.where()}: {r.reason}{ch}: {r.detail}")
     if len(rejected) > listed:
         out.append(f"  ... and {len(rejected) - listed} more")
+    return out
+
+
+def magnitude_model_lines(cal) -> list[str]:
+    """Return summary lines of the magnitude model: per isotope the residual and the size of each fitted effect."""
+    mm = getattr(cal, "magnitude_model", None)
+    if mm is None:
+        return ["magnitude model: none (|B| is f / gamma, uncorrected)"]
+    names = {"inverse": "exchange pull", "constant": "light shift", "square": "heading"}
+    out = [f"magnitude model (frequency error f/gamma - |B| per isotope; mean and sphere RMS of each effect; "
+           f"rows left out: {mm.rejected_rows[0]}, {mm.rejected_rows[1]}):"]
+    for iso, res, deg, sizes in zip(mm.isotopes, mm.residual_nT(), mm.degrees, mm.effect_sizes()):
+        parts = [f"{names.get(k, k)} {mean:+.3f} / {spread:.3f} nT at {b:.0f} nT"
+                 for k, (mean, spread, b) in sizes.items()]
+        out.append(f"  {iso:5s} residual {res:.2g} nT (degree {deg}); " + "; ".join(parts))
     return out
 
 

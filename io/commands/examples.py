@@ -46,10 +46,13 @@ def run(args) -> int:
         print("copy them with `fieldvane examples -o DIR`")
         return 0
     check_output(args.output, folder=True, force=True, option="--output")     # a file there: refused
+    source = shipped_dir("examples")
+    files = [p for p in sorted(source.rglob("*")) if p.is_file() and "__pycache__" not in p.parts]
     with atomic_folder(args.output) as tmp:
-        for path in scenarios.values():
-            shutil.copyfile(path, Path(tmp) / path.name)
-        check_folder_outputs(tmp, args.output, inputs=list(scenarios.values()), force=args.force,
-                             option="--output")
-    print(f"copied {len(scenarios)} example scenarios to {args.output}/")
+        for path in files:              # subfolders too: scenarios may name files beside them
+            target = Path(tmp) / path.relative_to(source)
+            target.parent.mkdir(parents=True, exist_ok=True)
+            shutil.copyfile(path, target)
+        check_folder_outputs(tmp, args.output, inputs=files, force=args.force, option="--output")
+    print(f"copied {len(scenarios)} example scenarios ({len(files)} files) to {args.output}/")
     return 0

@@ -19,6 +19,15 @@ The lock-in's filter (time constant, order) is read from the recording's metadat
 filter settings do not give it: correlated samples are then weighted honestly and the lock-in's
 delay is removed from t.
 
+Absolute time: with a '# start_utc: 2026-12-02T00:00:00Z' line in the recording, or --start-utc, every
+estimate gets utc = start_utc + t (extra column utc: ISO 8601 in text files, POSIX seconds in records),
+and the estimates carry their own '# start_utc:' line. A capture without either takes utc from the
+host clock: the receive time of the bytes that completed each frame (good to the host clock plus the
+link's delay, a few ms to tens of ms). --site adds the field at the site in north-east-down (X_nT,
+Y_nT, Z_nT, H_nT, F_nT, D_deg, I_deg and their sigmas; docs/geographic.md), turned through the
+calibration's mounting and the site's attitude at each estimate's time: a first sanity check of an
+installation, not a navigation or safety instrument by itself.
+
 The output is the estimates CSV: t, ux, uy, uz, b_nT, bx_nT, by_nT, bz_nT, sigma_deg, flags, then
 extra columns (nis, nis_dof, b_a_nT, b_b_nT, bound_deg, noise_scale, probes_used, ...; see
 docs/estimates_columns.md). The output's format follows its suffix (.csv, .jsonl, .nmea); --out adds
@@ -29,6 +38,7 @@ examples:
   fieldvane replay rec.csv -c cal.json -o est.csv
   fieldvane replay capture/ -c cal.json -o est.csv --filter filter.toml
   fieldvane replay rec.csv -c cal.json -o snap.csv --mode snapshot --gain-free
+  fieldvane replay pier.csv -c cal.json -o est.csv --site examples/pier/pier_site_angles.toml
 """
 
 CHUNK = 8192     # samples of a capture estimated together
@@ -55,6 +65,10 @@ def add_arguments(parser) -> None:
                         help="binary wire frames or recording-CSV lines: a capture's format when it does not record it")
     parser.add_argument("--force", action="store_true", help="replace existing output files (never an input)")
     parser.add_argument("--no-progress", action="store_true", help="no progress bar")
+    from fieldvane.io.geo_output import add_site_option, add_start_utc_option
+
+    add_site_option(parser)
+    add_start_utc_option(parser, "the recording's '# start_utc:' line; a capture's host clock")
 
 
 def _is_capture(path) -> bool:
@@ -83,7 +97,8 @@ class _Outputs:
 
         self.path = Path(path)
         fmt = FILE_SUFFIXES.get(self.path.suffix.lower(), "csv")
-        self.writer = EstimatesWriter(self.path) if fmt == "csv" else None
+        self.metadata: dict[str, str] = {}       # '# key: value' lines, as they stand at the first row
+        self.writer = EstimatesWriter(self.path, metadata=self.metadata) if fmt == "csv" else None
         self.sinks = []
         self._specs = ([] if fmt == "csv" else [f"{fmt}:file:{self.path}"]) + list(specs)
         self._force = force
@@ -95,28 +110,34 @@ class _Outputs:
             self.sinks.append(open_sink(spec, extras))
         self._specs = []
 
-    def write_record(self, record):
-        """Write one track record (arrays)."""
+    def write_record(self, record, more=None):
+        """Write one track record (arrays), with `more` columns (name -> (N,) array: utc, geographic)."""
         from fieldvane.io.estimates_csv import estimate_columns
 
         if len(record) == 0:
             return
         extras = record.extra_columns()
+        extras.update(more or {})
         if self._specs:
             self._open_sinks(list(extras))
         if self.writer is not None:
             self.writer.write_columns(estimate_columns(record.t, record.u, record.b_nT, record.sigma_deg,
                                                        record.flags, extras))
         if self.sinks:
-            for est in record.estimates():
+            added = {k: v.tolist() for k, v in (more or {}).items()}
+            for i, est in enumerate(record.estimates()):
                 row = est.row()
+                row.update({k: v[i] for k, v in added.items()})
                 for sink in self.sinks:
                     sink.emit_wait(row, timeout=60.0)
 
-    def write_estimates(self, estimates):
-        """Write Estimate objects (snapshot mode)."""
+    def write_estimates(self, estimates, more=None):
+        """Write Estimate objects (snapshot mode), with `more` columns (name -> (N,) array)."""
         if not estimates:
             return
+        for k, v in (more or {}).items():
+            for est, value in zip(estimates, v.tolist()):
+                est.extras[k] = value
         if self._specs:
             self._open_sinks(list(estimates[0].extras))
         if self.writer is not None:
@@ -156,10 +177,14 @@ def run(args) -> int:
     from fieldvane.io.outputs import check_output
     from fieldvane.io.table_cache import cache_dir_for, load_or_build_table
 
+    from fieldvane.io import geo_output
+
     if not Path(args.input).exists():
         raise InputError("no such file or folder", args.input)
-    out = check_output(args.output, inputs=[args.input, args.calibration, args.filter], force=args.force,
-                       option="--output")
+    # utc and the site's columns; a recording's '# start_utc:' line is taken at its first block
+    geo = geo_output.setup(args.site, args.start_utc, args.calibration)
+    out = check_output(args.output, inputs=[args.input, args.calibration, args.filter, *geo.inputs],
+                       force=args.force, option="--output")
     cal = load_calibration(args.calibration)
     settings = read_filter_settings(args.filter) if args.filter else None
     table, info = load_or_build_table(cal, cache_dir_for(args.calibration))
@@ -189,20 +214,27 @@ def run(args) -> int:
             decoder_counters: dict = {}
             capture_counters: dict = {}
             cap_warnings: list[str] = []
+            host_ns: list[int] = []           # receive time of the chunk that completed each sample
+            geo.host_clock = True
+            geo.check_clock()
+            if args.site or geo.start_utc is not None:    # else the same bytes as the live run's CSV logger
+                outputs.metadata.update(geo.metadata())
             for _run_id, samples in runs_from_capture(args.input, args.input_format, counters=decoder_counters,
-                                                      capture_counters=capture_counters, warnings=cap_warnings):
+                                                      capture_counters=capture_counters, warnings=cap_warnings,
+                                                      host_times=host_ns):
                 tracker = Tracker(cal, settings, solver.initiate, report_channels=args.readouts) if track else None
                 trackers.append(tracker)
                 for batch in _batches(_progress(samples, None, args.no_progress), CHUNK):
+                    host_utc = geo_output.take_host_times(host_ns, len(batch))
                     if track:
                         rec = tracker.step_record(batch)
-                        outputs.write_record(rec)
+                        outputs.write_record(rec, geo.for_record(rec, host_utc))
                         note(rec.flags, rec.probes_used)
                     else:
                         ests = [solver.solve_sample(s) for s in batch]
-                        outputs.write_estimates(ests)
+                        outputs.write_estimates(ests, geo.for_estimates(ests, host_utc))
                         note(_flags_of(ests), _probes_of(ests))
-            print("capture decoder: " + ", ".join(f"{k} {v}" for k, v in decoder_counters.items()), file=sys.stderr)
+            print(counters_table(decoder_counters, "capture decoder:"), file=sys.stderr)
             capture_lines = capture_problem_lines(capture_counters, cap_warnings)
         else:
             from fieldvane.estimator.snapshot import solve_block
@@ -210,7 +242,12 @@ def run(args) -> int:
 
             reader = RecordingReader(args.input)
             tracker = None
+            geo_ready = False
             for block in _progress(reader, "chunks", args.no_progress):
+                if not geo_ready:             # the metadata lines are read with the first block
+                    geo.take_metadata(reader.metadata, args.input)
+                    outputs.metadata.update(geo.metadata())
+                    geo_ready = True
                 if tracker is None and track:
                     _check_channels(block.channels, cal, args.input, reader)
                     stream = settings_for_stream(settings, reader.metadata, args.input)
@@ -221,11 +258,11 @@ def run(args) -> int:
                     _check_channels(block.channels, cal, args.input, reader)
                 if track:
                     rec = tracker.run_arrays(block)
-                    outputs.write_record(rec)
+                    outputs.write_record(rec, geo.for_record(rec))
                     note(rec.flags, rec.probes_used)
                 else:
                     ests = solve_block(solver, block)
-                    outputs.write_estimates(ests)
+                    outputs.write_estimates(ests, geo.for_estimates(ests))
                     note(_flags_of(ests), _probes_of(ests))
             warnings += reader.warnings
         ok = True
@@ -242,6 +279,8 @@ def run(args) -> int:
     rate = rows / seconds if seconds > 0 else float("inf")
     print(f"replay ({args.mode}): {rows} estimates in {seconds:.2f} s ({rate:,.0f}/s) -> {out}")
     print(probe_use_line(probe_sets))
+    for line in geo.describe():
+        print(line)
     if counts:
         print("flags: " + ", ".join(f"{bit.name} {n}" for bit, n in counts.items()))
     for k, tracker in enumerate(trackers):

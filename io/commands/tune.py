@@ -207,7 +207,8 @@ def _read_capture(path: str, input_format: str | None):
         t.append(sample.t)
         f.append((sample.f_a, sample.f_b))
         z.append(np.asarray(sample.z, complex))
-    print("capture decoder: " + ", ".join(f"{k} {v}" for k, v in counters.items()), file=sys.stderr)
+    from fieldvane.io.estimation import counters_table
+    print(counters_table(counters, "capture decoder:"), file=sys.stderr)
     if not t:
         raise InputError("the capture holds no samples", str(path))
     return SampleBlock(np.array(t, float), np.array(f, float), np.array(z), channels)
