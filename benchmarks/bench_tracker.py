@@ -106,7 +106,7 @@ def test_compiled_step_alone(benchmark, problem, gain_drift):
         a = tracker._arrays
         return core.run_filter(*a.kernel_args(), prepared.t, prepared.zw, prepared.segment, prepared.seg_t,
                                prepared.flags, prepared.restarted, prepared.model_error, tracker._sigma_log, fout,
-                               iout, 2, n)
+                               iout, 2, n, 0, False, np.zeros(3), np.zeros(3), np.eye(2), tracker._init_var)
 
     stop = benchmark.pedantic(run, setup=setup, rounds=5, iterations=1)
     assert stop == n

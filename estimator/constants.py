@@ -4,9 +4,12 @@ from __future__ import annotations
 
 from dataclasses import dataclass
 
-from scipy import constants as _c
-
 J_GROUND = 0.5  # 2S1/2 ground state
+# CODATA 2022 (h exact since the 2019 SI): the Bohr magneton and the Planck constant. Written out rather than
+# read from scipy.constants at import, which costs a tenth of a second of every command's start-up;
+# tests/test_constants.py checks both against scipy.constants.
+BOHR_MAGNETON_J_PER_T = 9.2740100657e-24
+PLANCK_J_S = 6.62607015e-34
 
 
 @dataclass(frozen=True)
@@ -32,7 +35,7 @@ class Isotope:
     @property
     def gamma_hz_per_nt(self) -> float:
         """Return gamma/2pi = |g_F| mu_B / h of the upper ground level, in Hz/nT."""
-        return abs(self.g_f) * _c.physical_constants["Bohr magneton"][0] / _c.h * 1e-9
+        return abs(self.g_f) * BOHR_MAGNETON_J_PER_T / PLANCK_J_S * 1e-9
 
     def nonlinear_zeeman_hz(self, b_nT: float) -> float:
         """Return the approximate splitting between adjacent Zeeman lines, 2 f_L^2 / f_hfs, in Hz."""

@@ -571,8 +571,14 @@ def _marginal_nis(p, no, j, b, yy, work_a, work_b):
 def run_filter(cfg, icfg, w_table, exps, comp_probe, chan_probe, normalizers, gates, fs, istate, counters, x, p,
                ratio, baseline, short_ring, short_sorted, long_ring, long_sorted, ring_pos, zhist, zback, probe_state,
                probe_ema, weff,
-               t_in, zw, seg_in, segt_in, flags_in, restart_in, merr_in, sigma_log, fout, iout, start, stop):
+               t_in, zw, seg_in, segt_in, flags_in, restart_in, merr_in, sigma_log, fout, iout, start, stop,
+               acq_pending, acq_ok, acq_u, acq_e1, acq_cov, init_var):
     """Advance the filter over samples start..stop-1; return the index where a (re)start is needed, or stop.
+
+    When the core stopped at sample i for a (re)start, Python asks the initiator and calls again with start = i,
+    acq_pending = 1 and its answer (acq_ok; acq_u (3,) unit direction and acq_e1 (3,) its first tangent axis, sensor
+    frame; acq_cov (2, 2) rad^2 in (e1, u x e1); init_var (n,) prior variances of the other states): sample i is
+    completed from it first (one compiled entry point: each one costs start-up time to load).
 
     t_in (N,) s; zw (N, 2C) lock-in values whitened by the calibrated noise (nan: missing); seg_in (N,) magnitude
     segment (-1: no |B|) and segt_in (N,) position in it; flags_in (N,) input flags; restart_in (N,) 1 where the
@@ -615,6 +621,10 @@ def run_filter(cfg, icfg, w_table, exps, comp_probe, chan_probe, normalizers, ga
     for k in range(m):
         comps[comp_probe[k]] += 1
 
+    if acq_pending:
+        finish_acquisition(cfg, icfg, fs, istate, counters, x, p, ratio, zback, probe_state, fout, iout, start,
+                           acq_ok, acq_u, acq_e1, acq_cov, init_var)
+        start += 1
     for i in range(start, stop):
         counters[N_SAMPLES] += 1
         flags = flags_in[i]

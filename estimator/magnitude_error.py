@@ -26,9 +26,15 @@ from __future__ import annotations
 from dataclasses import dataclass
 
 import numpy as np
-from scipy.optimize import nnls
 
 from fieldvane.estimator.magnitude_basis import MagnitudeBasis
+
+
+def _nnls():
+    """Return scipy.optimize.nnls, imported only when a calibration is fitted (not when one is read)."""
+    from scipy.optimize import nnls
+
+    return nnls
 
 ENVELOPES = ("inverse", "square", "constant")   # 1/|B|, |B|^2, 1
 LENGTH_GRID = np.geomspace(0.5, 8.0, 25)         # candidate correlation lengths in ln|B|
@@ -164,7 +170,7 @@ def fit_error_prior(lolo: np.ndarray, knots_nT: np.ndarray, x_ref: float) -> tup
         amps = np.zeros((3, c_n))
         for c in range(c_n):
             weight = 1.0 / (lolo[:, c] + SCORE_FLOOR)       # relative fit: every level counts alike
-            amps[:, c], _ = nnls(v * weight[:, None], lolo[:, c] * weight)
+            amps[:, c], _ = _nnls()(v * weight[:, None], lolo[:, c] * weight)
         pred = v @ amps
         score = float(np.sum(np.log((lolo + SCORE_FLOOR) / (pred + SCORE_FLOOR)) ** 2))
         # Ties go to the shorter length: it predicts larger errors between levels.

@@ -45,9 +45,15 @@ import math
 from dataclasses import dataclass, field
 
 import numpy as np
-from scipy.stats import bartlett, norm
 
 from fieldvane.estimator.harmonics import harmonics, harmonics_and_gradient, n_harmonics
+
+
+def _stats():
+    """Return scipy.stats, imported only when a magnitude model is fitted (not when one is read)."""
+    import scipy.stats
+
+    return scipy.stats
 
 FORMAT_VERSION = 1
 ENVELOPES = ("inverse", "constant", "square")
@@ -184,7 +190,7 @@ def _fit_isotope(names, u, b_nT, delta, reference_nT, candidates, seed) -> tuple
     # Robust start at a low degree (pulling, light shift and heading are all of low degree), then
     # reject rows beyond a family-wise normal limit of the MAD scale, and repeat.
     start = min(feasible[-1], 3)
-    limit = float(norm.isf(FAMILY_ALPHA / (2 * n)))
+    limit = float(_stats().norm.isf(FAMILY_ALPHA / (2 * n)))
     keep = np.isfinite(delta)
     design_start = _design(names, start, u, b_nT, reference_nT)
     for _ in range(5):
@@ -628,7 +634,7 @@ def _level_noise(resid: np.ndarray, label: np.ndarray, n_levels: int) -> np.ndar
     sizable = [g for g in groups if g.size >= MIN_LEVEL_ROWS]
     if len(sizable) < 2 or pooled == 0.0:
         return np.full(n_levels, pooled)
-    if bartlett(*sizable).pvalue >= HOMOGENEITY_ALPHA:
+    if _stats().bartlett(*sizable).pvalue >= HOMOGENEITY_ALPHA:
         return np.full(n_levels, pooled)
     return np.array([float(np.sqrt(np.mean(g * g))) if g.size >= MIN_LEVEL_ROWS else pooled for g in groups])
 

@@ -15,10 +15,16 @@ from __future__ import annotations
 from dataclasses import dataclass
 
 import numpy as np
-from scipy.stats import chi2
 
 from fieldvane.estimator.harmonics import harmonics
 from fieldvane.estimator.tall import gram, rows_times
+
+
+def _chi2():
+    """Return scipy.stats.chi2, imported only when a calibration is fitted (not when one is read)."""
+    from scipy.stats import chi2
+
+    return chi2
 
 MAD_TO_STD = 1.4826         # consistency factor of the MAD for a Gaussian (common practice)
 HUBER_QUANTILE = 0.95       # rows beyond this chi-square quantile are down-weighted (common practice)
@@ -37,7 +43,7 @@ class ScreenResult:
 
 def row_threshold(n_channels: int, row_alpha: float) -> float:
     """Return the chi-square limit (2C degrees of freedom) on a row's whitened residual sum of squares."""
-    return float(chi2.isf(row_alpha, 2 * n_channels))
+    return float(_chi2().isf(row_alpha, 2 * n_channels))
 
 
 def robust_scale(resid: np.ndarray) -> np.ndarray:
@@ -59,7 +65,7 @@ def screen_rows(u: np.ndarray, s_basis: np.ndarray, z: np.ndarray, degree: int, 
     n, c_n = z.shape
     design = (s_basis[:, :, None] * harmonics(degree, u)[:, None, :]).reshape(n, -1)
     target = np.concatenate([z.real, z.imag], axis=1)                     # (N, 2C)
-    huber_k2 = float(chi2.isf(1.0 - HUBER_QUANTILE, 2 * c_n))
+    huber_k2 = float(_chi2().isf(1.0 - HUBER_QUANTILE, 2 * c_n))
     w = np.ones(n)
     scale = np.ones(c_n)
     resid = z

@@ -14,12 +14,18 @@ from __future__ import annotations
 from dataclasses import dataclass
 
 import numpy as np
-from scipy.stats import chi2
 
 from fieldvane.estimator.physics import (DETUNING_REFERENCE_NT, LEAK_POWERS, PhysicsParameters, channel_indices,
                                          detuning_from_law, leak_law)
 from fieldvane.estimator.sphere import exp_map, tangent_basis
 from fieldvane.estimator.tall import gram, rows_times
+
+
+def _chi2():
+    """Return scipy.stats.chi2, imported only when a calibration is fitted (not when one is read)."""
+    from scipy.stats import chi2
+
+    return chi2
 
 N_LINEAR_TERMS = 4        # a (c), b (s), l (c'), o (1) per channel and knot; plus one m (s') per channel
 LEAK_TEST_ALPHA = 1e-3    # significance level for keeping the s' leak term
@@ -68,7 +74,7 @@ class PhysicsFit:
         if self.dispersion is None:
             return np.zeros(2 + self.params.probe_axes.shape[0], bool)
         dof = 2 * self.params.n_knots
-        return self.dispersion > chi2.isf(JACKKNIFE_ALPHA, dof) / dof
+        return self.dispersion > _chi2().isf(JACKKNIFE_ALPHA, dof) / dof
 
     def beam_covariance(self, beam: int) -> np.ndarray:
         """Return the 2x2 covariance (rad^2) of beam `beam` (pumps a, b, then probes) on beam_frames[beam]."""
@@ -468,7 +474,7 @@ def fit_physics(u: np.ndarray, s_basis: np.ndarray, knots_nT: np.ndarray, z: np.
         """Return (problem, parameters, iterations): `other` fitted from `start` if it is significantly better."""
         trial, it = _levenberg_marquardt(other, start, max_iterations)
         gain = current.cost(current.solve(phys_now)[2], phys_now) - other.cost(other.solve(trial)[2], trial)
-        return (other, trial, it) if gain > chi2.isf(alpha, dof) else (current, phys_now, it)
+        return (other, trial, it) if gain > _chi2().isf(alpha, dof) else (current, phys_now, it)
 
     # The non-ideal linear terms (free quadrature b, leak l, offset o at every knot) only when they
     # lower the residual significantly: a sensor without them would only gain noise from 6 more
@@ -477,7 +483,7 @@ def fit_physics(u: np.ndarray, s_basis: np.ndarray, knots_nT: np.ndarray, z: np.
     trial, it = _levenberg_marquardt(ideal, _same(phys, ideal), max_iterations)
     iterations += it
     gain = ideal.cost(ideal.solve(trial)[2], trial) - prob.cost(prob.solve(phys)[2], phys)
-    if gain <= chi2.isf(LINEAR_TEST_ALPHA, 6 * k * c_n):
+    if gain <= _chi2().isf(LINEAR_TEST_ALPHA, 6 * k * c_n):
         prob, phys, full_linear = ideal, trial, False
     # The detuning (heading) terms only where they lower the residual significantly: at low fields
     # there is no heading shift to see, and 16 idle parameters would only add noise to the model.

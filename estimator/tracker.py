@@ -586,16 +586,18 @@ class Tracker:
         a = self._arrays
         args = a.kernel_args()
         i, n = 0, len(inp.t)
-        while i < n:
+        pending, answer = 0, (False, _NO_U, _NO_U, _NO_COV)
+        while True:
             i = core.run_filter(*args, inp.t, inp.zw, inp.segment, inp.seg_t, inp.flags, inp.restarted,
-                                inp.model_error, self._sigma_log, fout, iout, i, n)
+                                inp.model_error, self._sigma_log, fout, iout, i, n, pending, *answer,
+                                self._init_var)
             if i >= n:
                 break
-            self._acquire(i, inp, fout, iout, sample_at)
-            i += 1
+            pending, answer = 1, self._initiate(i, inp, iout, sample_at)
 
-    def _acquire(self, i: int, inp: PreparedInput, fout, iout, sample_at) -> None:
-        """Ask the initiator for sample i (drifts removed, unused probes blanked) and complete it in the core."""
+    def _initiate(self, i: int, inp: PreparedInput, iout, sample_at) -> tuple:
+        """Ask the initiator for sample i (drifts removed, unused probes blanked); return the core's acquisition
+        arguments (ok, u (3,), e1 (3,), cov (2, 2)) and record the reset when it answered."""
         a = self._arrays
         reason = core.REASON_NAMES[int(a.istate[core.K_LOST])] or "start"
         was = a.fstate[core.S_U:core.S_U + 3].copy() if a.istate[core.K_ACQUIRED] else None
@@ -623,16 +625,11 @@ class Tracker:
             else:
                 u = u / norm
         if u is None:
-            core.finish_acquisition(a.cfg, a.icfg, a.fstate, a.istate, a.counters, a.x, a.p, a.ratio, a.zback,
-                                    a.probe_state, fout, iout, i, False, np.zeros(3), np.zeros(3), np.eye(2),
-                                    self._init_var)
-            return
+            return False, _NO_U, _NO_U, _NO_COV
         e1, _ = tangent_basis(u)
-        core.finish_acquisition(a.cfg, a.icfg, a.fstate, a.istate, a.counters, a.x, a.p, a.ratio, a.zback,
-                                a.probe_state, fout, iout, i, True, np.ascontiguousarray(u), np.ascontiguousarray(e1),
-                                np.ascontiguousarray(cov), self._init_var)
         jump = math.degrees(float(angle_between(was, u))) if was is not None else math.nan
         self.resets.append(ResetRecord(float(inp.t[i]) - self.delay_s, reason, jump))
+        return True, np.ascontiguousarray(u, float), np.ascontiguousarray(e1, float), np.ascontiguousarray(cov, float)
 
     def step(self, sample: Sample) -> Estimate:
         """Return the estimate after one sample (u sensor frame, |B| nT, sigma deg, flags, extras)."""
@@ -679,6 +676,7 @@ class Tracker:
         return self.run_arrays(block).estimates()
 
 
+_NO_U, _NO_COV = np.zeros(3), np.eye(2)          # placeholders of the core's acquisition arguments
 MAGNITUDE_STRIDE = 16     # samples between evaluations of the calibrated magnitude corrections
 MODEL_ERROR_GRID = 2048   # points in log|B| of the model-error table (the calibration's ratio varies smoothly)
 

@@ -298,21 +298,35 @@ def take_host_times(host_ns: list, count: int) -> np.ndarray:
     return out
 
 
+# Samples whose flags say there is no usable estimate are left out of averages, exports and checks.
+UNUSABLE_FLAGS = ("NO_ESTIMATE", "COASTING", "BAD_INPUT", "COVARIANCE_FAULT")
+
+
+def unusable(flags) -> np.ndarray:
+    """Return (N,) True where the flags hold any of UNUSABLE_FLAGS (no usable estimate)."""
+    from fieldvane.estimator.flags import EstimateFlag
+
+    mask = 0
+    for name in UNUSABLE_FLAGS:
+        mask |= int(EstimateFlag[name])
+    return (np.asarray(flags, np.int64) & mask) != 0
+
+
 def estimates_time_and_site(est: dict, path: str, site: Site | None, start_option: str | None,
                             mounting_option: np.ndarray | None = None, mounting_source: str = ""
-                            ) -> tuple[np.ndarray | None, dict[str, np.ndarray] | None, GeoOutput]:
-    """Return (utc (N,) or None, geographic columns or None, the GeoOutput) of an estimates file's columns.
+                            ) -> tuple[np.ndarray | None, dict[str, np.ndarray] | None, GeoOutput, str]:
+    """Return (utc (N,) or None, geographic columns or None, the GeoOutput, how the columns were had).
 
-    utc: the file's utc column, else start_utc (--start-utc or its '# start_utc:' line) + t. The
-    geographic columns: the file's own when it has them and no site is given; computed from ux..uz,
-    sigma_deg, b_nT (and sigma_b_nT) when a site is given, with the mounting of --sensor, else of the
-    file's '# mounting_rotation:' line, else the identity.
+    utc: start_utc (--start-utc, else the file's '# start_utc:' line) + t, else the file's utc column.
+    The geographic columns: the file's own when it has them (written by replay or run with a site),
+    else computed here with `site` from ux..uz, b_nT, sigma_deg (and sigma_b_nT), with the mounting
+    of mounting_option, else of the file's '# mounting_rotation:' line, else the identity.
     """
     meta = read_metadata(path)
     start, start_source = start_utc_of(start_option, meta, path)
     geo = GeoOutput(site=site, start_utc=start, start_source=start_source)
     if mounting_option is not None:
-        geo.mounting, geo.mounting_source = mounting_option, mounting_source
+        geo.mounting, geo.mounting_source = np.asarray(mounting_option, float), mounting_source
     elif "mounting_rotation" in meta:
         geo.mounting = mounting_from_text(meta["mounting_rotation"], path)
         geo.mounting_source = f"the '# mounting_rotation:' line of {path}"
@@ -321,11 +335,14 @@ def estimates_time_and_site(est: dict, path: str, site: Site | None, start_optio
         utc = start + est["t"]
     elif "utc" in est:
         utc = est["utc"]
+    if all(k in est for k in GEO_COLUMNS):
+        cols = {k: est[k] for k in GEO_OUTPUT_COLUMNS if k in est}
+        cols.setdefault("sigma_F_nT", est.get("sigma_b_nT", np.full(est["t"].size, np.nan)))
+        return utc, cols, geo, "the estimates' own geographic columns"
     if site is None:
-        have = all(k in est for k in GEO_COLUMNS)
-        return utc, ({k: est[k] for k in GEO_OUTPUT_COLUMNS if k in est} if have else None), geo
+        return utc, None, geo, ""
     geo.check_clock()
     u = np.column_stack([est["ux"], est["uy"], est["uz"]])
     cols = site_columns(site, geo.mounting, est["t"], utc, u, est["b_nT"], est["sigma_deg"],
                         est.get("sigma_b_nT"))
-    return utc, cols, geo
+    return utc, cols, geo, f"computed from ux, uy, uz with the mounting {geo.mounting_source}"

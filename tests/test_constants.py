@@ -48,3 +48,13 @@ def test_identify_isotope():
         identify_isotope(5.8)
     with pytest.raises(ValueError, match="unknown isotope"):
         gamma_hz_per_nt("12C")
+
+
+def test_written_out_codata_values_equal_scipy_constants():
+    """The Bohr magneton and Planck constant written in estimator/constants.py equal scipy.constants (CODATA)."""
+    from scipy import constants
+
+    from fieldvane.estimator.constants import BOHR_MAGNETON_J_PER_T, PLANCK_J_S
+
+    assert BOHR_MAGNETON_J_PER_T == constants.physical_constants["Bohr magneton"][0]
+    assert PLANCK_J_S == constants.h

@@ -50,20 +50,23 @@ def golden_run():
     return run
 
 
-def _compare(rec, ref, tol=1e-9):
+def _compare(rec, ref, tol=1e-9, nis_rtol=1e-9):
     u_ref = np.column_stack([ref["ux"], ref["uy"], ref["uz"]])
     assert len(rec) == len(ref["t"])
     assert np.array_equal(rec.flags, ref["flags"].astype(np.int64))
     assert np.allclose(rec.u, u_ref, rtol=0, atol=tol, equal_nan=True)
     assert np.allclose(rec.sigma_deg, ref["sigma_deg"], rtol=tol, atol=tol, equal_nan=True)
-    assert np.allclose(rec.nis, ref["nis"], rtol=tol, atol=tol, equal_nan=True)
+    assert np.allclose(rec.nis, ref["nis"], rtol=nis_rtol, atol=tol, equal_nan=True)
 
 
 def test_compiled_core_equals_the_tracker_it_replaced(golden_run):
     before = FilterSettings(gain_drift=False, adaptive_noise=False, noise_baseline_ratio=1.0, probe_rejection=False)
     # The calibration's model-error term (between magnitude levels) did not exist then either.
     tracker, rec = golden_run(before, model_error=False)
-    _compare(rec, read_golden(GOLDEN / "golden_before_core.csv"))
+    # Directions and sigmas to 1e-9. The magnitude splines are now computed without scipy (estimator/
+    # magnitude_basis.py; equal to scipy's to 3e-15): that rounding grows to 1e-8 relative in the NIS of samples
+    # far outside the gate (NIS of tens), hence the NIS tolerance.
+    _compare(rec, read_golden(GOLDEN / "golden_before_core.csv"), nis_rtol=1e-7)
     assert tracker.counters.acquisitions == 32 and tracker.counters.gated == 316
 
 

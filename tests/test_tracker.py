@@ -489,7 +489,13 @@ def test_rotation_through_every_blind_plane(two_probe, one_probe, n_probes):
         err = errors_deg(rec, u)
         bound = true_bound_deg(sensor, u, B0, sigma)
         assert err.max() < 10.0
-        assert np.all(err[200:] < 5 * bound[200:]), err.max()
+        if n_probes == 2:
+            assert np.all(err[200:] < 5 * bound[200:]), err.max()
+        else:
+            # One probe with its gain a consider state (it drifts, and one probe cannot pin it): near the probe's
+            # own axis the known-gain bound is too optimistic a yardstick; the filter says how well it knows.
+            assert np.all(err[200:] < 3 * rec.sigma_deg[200:]), err.max()
+            assert np.mean(err[200:] < 2 * rec.sigma_deg[200:]) > 0.95
         assert tracker.counters.acquisitions == 1
 
 

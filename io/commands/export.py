@@ -37,8 +37,6 @@ examples:
 
 FORMATS = ("iaga2002",)
 INTERVALS = {"second": (1,), "minute": (60,), "both": (1, 60)}
-# Samples whose flags say there is no usable estimate are left out of the averages.
-EXCLUDED_FLAGS = ("NO_ESTIMATE", "COASTING", "BAD_INPUT", "COVARIANCE_FAULT")
 BLOCK_ROWS = 65536
 
 
@@ -99,11 +97,10 @@ def export_iaga2002(args) -> int:
 
     import numpy as np
 
-    from fieldvane.estimator.flags import EstimateFlag
     from fieldvane.io import iaga2002
     from fieldvane.io.errors import InputError
     from fieldvane.io.estimates_csv import read_estimates
-    from fieldvane.io.geo_output import CAUTION, estimates_time_and_site
+    from fieldvane.io.geo_output import CAUTION, estimates_time_and_site, unusable
     from fieldvane.io.outputs import check_output
     from fieldvane.io.sitefile import format_utc, read_mounting, read_site_file
 
@@ -121,21 +118,12 @@ def export_iaga2002(args) -> int:
     est = read_estimates(args.estimates)
     if est["t"].size == 0:
         raise InputError("no estimates in the file", args.estimates)
-    have = all(k in est for k in ("X_nT", "Y_nT", "Z_nT", "F_nT"))
-    utc, cols, geo = estimates_time_and_site(est, args.estimates, None if have else site, args.start_utc,
-                                             mounting, f"the [mounting] of {args.sensor}")
+    utc, cols, geo, how = estimates_time_and_site(est, args.estimates, site, args.start_utc, mounting,
+                                                  f"the [mounting] of {args.sensor}")
     if utc is None:
         raise InputError("the estimates have no utc column and no '# start_utc:' line: give --start-utc "
                          "(ISO 8601 UTC of t = 0)", args.estimates, column="--start-utc")
-    if cols is None:
-        raise InputError("no geographic columns", args.estimates, column="X_nT")
-    if have:
-        how = "the estimates' own X_nT, Y_nT, Z_nT, F_nT columns"
-    else:
-        how = f"computed from ux, uy, uz with the mounting {geo.mounting_source or 'none (identity)'}"
-    bad = np.zeros(est["t"].size, bool)
-    for name in EXCLUDED_FLAGS:
-        bad |= (est["flags"] & int(EstimateFlag[name])) != 0
+    bad = unusable(est["flags"])
     xyzf = np.column_stack([cols["X_nT"], cols["Y_nT"], cols["Z_nT"], cols["F_nT"]])
     xyzf[bad] = np.nan
     usable = np.isfinite(utc) & np.all(np.isfinite(xyzf), axis=1)
@@ -164,7 +152,7 @@ def export_iaga2002(args) -> int:
           f"{format_utc(last, 3)}), values {how}; {int(bad.sum())} flagged samples left out")
     print(f"site {site.name} ({site.iaga_code}); sampling {sampling:g} s; data type Provisional")
     for path, (_, text) in zip(paths, files):
-        print(f"  {path}  ({text.count(chr(10)) - _header_lines(text)} records)")
+        print(f"  {path}  ({text.count(chr(10)) - _header_lines(text)} data records)")
     print(f"note: {CAUTION}", file=sys.stderr)
     return 0
 

@@ -23,6 +23,14 @@ matched to the nearest truth sample within half a truth sample period; the repor
 and 95th-percentile angle to truth, the share of samples within 1 and 2 sigma_deg (a consistent
 filter gives about 63% and 98%), and the magnitude error.
 
+With --site SITE.toml (docs/geographic.md) the report adds a geographic check: the run's mean
+declination D, inclination I and total field F at the site, with their uncertainties, against the
+IGRF main field at the site and date (the 'geo' extra: ppigrf), the differences printed and drawn
+(geographic.png). The estimates' own geographic columns are used when they have them, else they are
+computed from ux, uy, uz (mounting from --sensor or the estimates' '# mounting_rotation:' line); the
+date comes from their utc column, their '# start_utc:' line or --start-utc. A first sanity check of
+an installation against a main-field model, not a survey.
+
 The figures need matplotlib (the 'plots' extra); without it, or with --no-plots, summary.md is
 still written. The estimates columns: docs/estimates_columns.md.
 The output is not a safety or navigation instrument by itself.
@@ -48,6 +56,13 @@ def add_arguments(parser) -> None:
     parser.add_argument("--channels", type=int, default=None, metavar="N",
                         help="lock-in channels (NIS degrees of freedom = 2 N) when the file has no "
                              "nis_dof column (default: from the phase_* columns, else 4)")
+    from fieldvane.io.geo_output import add_site_option, add_start_utc_option
+
+    add_site_option(parser)
+    add_start_utc_option(parser, "the estimates' utc column or '# start_utc:' line")
+    parser.add_argument("--sensor", metavar="SENSOR.toml",
+                        help="sensor TOML whose [mounting] turns the sensor frame to the platform's, when the "
+                             "geographic columns are computed here (default: the estimates' mounting line)")
 
 
 def run(args) -> int:
@@ -59,8 +74,14 @@ def run(args) -> int:
     from fieldvane.io.report import make_report, summary_text
 
     check_output(args.output, folder=True, force=True, option="--output")   # a file there: refused
-    inputs = [args.estimates, args.truth]
+    inputs = [args.estimates, args.truth, args.site, args.sensor]
     check_output(Path(args.output) / "summary.md", inputs=inputs, force=args.force, option="--output")
+    site = mounting = None
+    if args.site is not None:
+        from fieldvane.io.sitefile import read_mounting, read_site_file
+
+        site = read_site_file(args.site)
+        mounting = read_mounting(args.sensor) if args.sensor else None
     if args.channels is not None and not 1 <= args.channels <= 64:
         raise InputError(f"--channels must be between 1 and 64, got {args.channels}")
     static = None
@@ -76,11 +97,24 @@ def run(args) -> int:
     with atomic_folder(args.output) as tmp:
         out = make_report(args.estimates, args.truth, tmp, channels=args.channels, static=static,
                           figures=not args.no_plots)
+        geo_check = None
+        if site is not None:                # appended to summary.md, with its own figure
+            from fieldvane.io.geo_report import geographic_check
+
+            geo_check = geographic_check(args.estimates, site, tmp, args.start_utc, mounting,
+                                         f"the [mounting] of {args.sensor}", figures=not args.no_plots)
+            with open(Path(tmp) / "summary.md", "a", encoding="utf-8") as fh:
+                fh.write("\n" + geo_check.markdown)
+            if geo_check.figure is not None:
+                out.files.append(geo_check.figure)
+            out.notes.extend(geo_check.notes)
         check_folder_outputs(tmp, args.output, inputs=inputs, force=args.force, option="--output")
     out.files[:] = [Path(args.output) / Path(p).relative_to(tmp) for p in out.files]
     for note in out.notes:
         print(f"note: {note}", file=sys.stderr)
     print(summary_text(out.summary))
+    if geo_check is not None:
+        print("\n".join(geo_check.lines))
     print("wrote:")
     for path in out.files:
         print(f"  {path}")

@@ -37,6 +37,12 @@ printed (exit 130); samples not estimated by then are in the capture (replay it)
 Ctrl-C abandons the capture's last writes too. Exit 3 when the port never opened within
 --link-timeout; exit 4 when raw bytes were lost; exit 1 when a logger file failed.
 
+Every estimate carries utc: the host clock's receive time of the bytes that completed its frame
+(POSIX seconds in records, ISO 8601 in CSV and JSON lines, hhmmss.sss in NMEA; as good as the host
+clock plus the link's delay, a few ms to tens of ms). --site SITE.toml adds the field at the site in
+north-east-down (X_nT, Y_nT, Z_nT, H_nT, F_nT, D_deg, I_deg and their sigmas; docs/geographic.md),
+turned through the calibration's mounting and the site's attitude at each estimate's time.
+
 Not a safety or navigation instrument by itself: check the flags and sigma_deg.
 
 example:
@@ -71,6 +77,9 @@ def add_arguments(parser) -> None:
                         help="no status line (messages and the final counters are still printed)")
     parser.add_argument("--link-timeout", type=float, default=30.0, metavar="S",
                         help="give up (exit 3) if the port never opens within this many seconds (default 30)")
+    from fieldvane.io.geo_output import add_site_option
+
+    add_site_option(parser)
 
 
 def _check_number(value, option: str, low: float, high: float = float("inf"), what: str = "") -> None:
@@ -113,7 +122,7 @@ def _check_outputs(args, specs) -> None:
     from fieldvane.io.outputs import check_output, same_path
 
     cal = Path(args.calibration)
-    inputs = [cal, cal.with_suffix(".npz"), args.filter]
+    inputs = [cal, cal.with_suffix(".npz"), args.filter, args.site]
     files = [s.path for s in specs if s.transport == "file"]
     for i, path in enumerate(files):
         if any(same_path(path, other) for other in files[:i]):
@@ -155,7 +164,12 @@ def run(args) -> int:
     from fieldvane.io.status import StatusLine
     from fieldvane.io.table_cache import cache_dir_for, load_or_build_table
 
+    from fieldvane.io import geo_output
+
     columns, specs = check_options(args)
+    # utc from the host receive times; the site's columns with --site
+    geo = geo_output.setup(args.site, None, args.calibration, host_clock=True)
+    host_clock = geo_output.HostClock()
     cal = load_calibration(args.calibration)
     settings = read_filter_settings(args.filter) if args.filter else None
     _check_outputs(args, specs)
@@ -165,13 +179,15 @@ def run(args) -> int:
     link_failed = threading.Event()
     status = StatusLine(sys.stderr, interval_s=args.log_interval)
 
-    def estimate(sample):
-        return tracker.step(sample).row()
-
     def estimate_batch(samples):
-        return [est.row() for est in tracker.step_record(samples).estimates()]
+        rec = tracker.step_record(samples)
+        return geo.add_to_rows([est.row() for est in rec.estimates()], rec, host_clock.utc(len(rec)))
+
+    def estimate(sample):
+        return estimate_batch([sample])[0]
 
     def watch_link(loop):
+        host_clock.attach(loop)
         def check():
             if not loop.wait_for(lambda lp: lp.link.counters().get("opens", 0) > 0, args.link_timeout):
                 if loop.link.counters().get("opens", 0) == 0:
@@ -192,6 +208,8 @@ def run(args) -> int:
 
     for line in start_lines(args, specs, os.getpid()):
         status.log(line)
+    for line in geo.describe():
+        status.log(f"fieldvane run: {line}")
     summary = run_live(args.port, args.input_format, estimate, specs, args.capture, columns=columns,
                        baudrate=args.baud, log=status.log, log_interval_s=args.log_interval,
                        max_capture_file_bytes=int(args.capture_file_mib * 2**20),
@@ -217,8 +235,11 @@ def run(args) -> int:
 
 def start_lines(args, specs, pid: int) -> list[str]:
     """Return the lines run prints before reading: where estimates and raw bytes go, what is not kept."""
+    import signal
+
     fmt = "binary frames" if args.input_format == "binary" else "CSV lines"
-    lines = [f"fieldvane run: reading {args.port} ({fmt}); stop with Ctrl-C, counters with kill -USR1 {pid}"]
+    ask = f", counters with kill -USR1 {pid}" if hasattr(signal, "SIGUSR1") else ""
+    lines = [f"fieldvane run: reading {args.port} ({fmt}); stop with Ctrl-C{ask}"]
     if specs:
         lines.append("fieldvane run: estimates to " + ", ".join(str(s) for s in specs))
     else:
