@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import math
 from functools import lru_cache
 
 import numpy as np
@@ -35,6 +36,37 @@ def real_sph_harm_reference(degree: int, u: np.ndarray) -> np.ndarray:
     return np.column_stack(cols)
 
 
+def real_sph_harm(degree: int, u: np.ndarray) -> np.ndarray:
+    """Return orthonormal real spherical harmonics Y_lm(u), l <= degree (N, (L+1)^2), the same functions and order as
+    real_sph_harm_reference (scipy.special, with the Condon-Shortley phase), by the associated Legendre recurrences
+    (so that reading a calibration does not load scipy.special)."""
+    u = np.atleast_2d(np.asarray(u, float))
+    polar, azimuth = unit_to_spherical(u)
+    x, s = np.cos(polar), np.sin(polar)
+    p = {}                                  # P_l^m(x) with the Condon-Shortley phase, m >= 0
+    pmm = np.ones_like(x)
+    for m in range(degree + 1):
+        if m > 0:
+            pmm = -(2 * m - 1) * s * pmm
+        p[(m, m)] = pmm
+        if m + 1 <= degree:
+            p[(m + 1, m)] = x * (2 * m + 1) * pmm
+        for l in range(m + 2, degree + 1):
+            p[(l, m)] = ((2 * l - 1) * x * p[(l - 1, m)] - (l + m - 1) * p[(l - 2, m)]) / (l - m)
+    cols = []
+    for l in range(degree + 1):
+        for m in range(-l, l + 1):
+            a = abs(m)
+            norm = math.sqrt((2 * l + 1) / (4 * math.pi) * math.exp(math.lgamma(l - a + 1) - math.lgamma(l + a + 1)))
+            if m < 0:
+                cols.append(math.sqrt(2.0) * norm * p[(l, a)] * np.sin(a * azimuth))
+            elif m == 0:
+                cols.append(norm * p[(l, 0)])
+            else:
+                cols.append(math.sqrt(2.0) * norm * p[(l, a)] * np.cos(a * azimuth))
+    return np.column_stack(cols)
+
+
 @lru_cache(maxsize=16)
 def monomial_coefficients(degree: int) -> tuple[np.ndarray, np.ndarray]:
     """Return (monomial exponents (M, 3), T (M, (L+1)^2)) with harmonics(degree, u) = monomials(u) @ T on the sphere."""
@@ -42,7 +74,7 @@ def monomial_coefficients(degree: int) -> tuple[np.ndarray, np.ndarray]:
     # Each degree-l harmonic is a homogeneous degree-l polynomial: fit it exactly on the
     # sphere from that degree's monomials only (residual at rounding level).
     grid = fibonacci_sphere(max(400, 8 * n_harmonics(degree)))
-    ref = real_sph_harm_reference(degree, grid)
+    ref = real_sph_harm(degree, grid)
     mono = monomials(grid, exps)
     total = exps.sum(axis=1)
     coef = np.zeros((len(exps), n_harmonics(degree)))

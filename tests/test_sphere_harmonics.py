@@ -72,3 +72,13 @@ def test_magnitude_basis_interpolates_and_is_smooth():
     assert MagnitudeBasis([3000]).size == 1
     with pytest.raises(ValueError):
         MagnitudeBasis([0, 100])
+
+
+@pytest.mark.parametrize("degree", [0, 1, 2, 5, 10])
+def test_own_real_harmonics_equal_scipy(degree):
+    """The recurrence-based real harmonics (used at run time) equal scipy.special.sph_harm_y's (the reference)."""
+    from fieldvane.estimator.harmonics import real_sph_harm, real_sph_harm_reference
+    from fieldvane.estimator.sphere import fibonacci_sphere
+
+    u = fibonacci_sphere(500)
+    assert np.allclose(real_sph_harm(degree, u), real_sph_harm_reference(degree, u), atol=1e-12)
