@@ -45,7 +45,7 @@ def test_iso_texts_match_the_standard_library():
         want = (EPOCH + timedelta(microseconds=round(value * 1e6))).strftime("%Y-%m-%dT%H:%M:%S.%fZ")
         assert text == want
     back = posix_from_texts(got[:2000])
-    np.testing.assert_allclose(back, x[:2000], rtol=0, atol=6e-7)
+    np.testing.assert_allclose(back, x[:2000], rtol=0, atol=1.01e-6)   # 0.5 us rounding + float spacing
 
 
 def test_block_writer_writes_utc_as_the_csv_sink_does(tmp_path):
@@ -256,6 +256,7 @@ def bad_files(bench):
     d = bench[0]
     base = (PIER / "pier_site_angles.toml").read_text(encoding="utf-8")
     base = re.sub(r"\n(heading|pitch|roll)_std_deg = .*", "", base)
+    base = re.sub(r" *#.*", "", base)               # no comments: the edits below match whole lines
     for name, (old, new) in BAD_SITES.items():
         assert old in base, name
         (d / name).write_text(base.replace(old, new), encoding="utf-8")

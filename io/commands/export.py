@@ -171,13 +171,13 @@ def _header_lines(text: str) -> int:
 
 def export_raw(args) -> int:
     """Write a capture's samples (decoded as live) as a recording CSV; returns 0."""
+    import math
     from collections import deque
     from pathlib import Path
 
     from fieldvane import __version__
     from fieldvane.io.capture import capture_files
     from fieldvane.io.errors import InputError, JobError
-    from fieldvane.io.float_text import format_rows
     from fieldvane.io.live import capture_problem_lines, runs_from_capture
     from fieldvane.io.outputs import atomic_file, check_output
     from fieldvane.io.sitefile import format_utc
@@ -199,53 +199,58 @@ def export_raw(args) -> int:
     channels: tuple[str, ...] | None = None
     rows = dropped_values = with_status = 0
     run_lines: list[str] = []
+    first_start = None                # start_utc of the file: the first sample's receive time minus its t
+    shift = 0.0                       # s added to t after a restart, so that t increases and utc = start_utc + t
+    last_t = -math.inf
     try:
         with atomic_file(out) as tmp, open(tmp, "w", encoding="utf-8", newline="\n") as fh:
-            header_written = False
             for k, (run_id, samples) in enumerate(runs_from_capture(
                     args.raw, args.input_format, run_id=args.run_id, counters=counters,
                     capture_counters=capture_counters, warnings=warnings, host_times=host_ns)):
-                run_start = None
+                new_run = True
                 block: list = []
                 for sample in samples:
                     host = host_ns.popleft()
-                    if run_start is None:
-                        run_start = host * 1e-9 - float(sample.t)
-                        if not header_written:
-                            channels = tuple(sample.channels)
-                            meta = {"source": first_meta.get("source", "unknown"),
-                                    "input_format": fmt or "unknown",
-                                    "capture": str(args.raw),
-                                    "capture_run": run_id if args.run_id is not None else
-                                    f"{run_id} (first of {len(runs)})",
-                                    "start_utc": format_utc(run_start, 6),
-                                    "start_utc_source": "host receive time of the first sample's bytes "
-                                                        "minus its t (host clock)",
-                                    "written_by": f"fieldvane {__version__} export --raw"}
-                            fh.writelines(f"# {key}: {value}\n" for key, value in meta.items())
-                            names = ["t", "f_a", "f_b"] + [f"{c}_{ch}" for ch in channels for c in ("x", "y")]
-                            fh.write(",".join(names) + "\n")
-                            header_written = True
-                        else:
-                            fh.write(_flush(block, channels, format_rows))
-                            block = []
-                            fh.write(f"# restart: capture run {run_id} begins here (the sensor's clock may start "
-                                     f"again); its start_utc: {format_utc(run_start, 6)}\n")
-                        run_lines.append(f"  run {run_id}: start_utc {format_utc(run_start, 3)}")
-                    elif sample.restarted:
-                        fh.write(_flush(block, channels, format_rows))
+                    start_here = host * 1e-9 - float(sample.t)
+                    if first_start is None:
+                        first_start = start_here
+                        channels = tuple(sample.channels)
+                        meta = {"source": first_meta.get("source", "unknown"), "input_format": fmt or "unknown",
+                                "capture": str(args.raw),
+                                "capture_run": run_id if args.run_id is not None else f"{run_id} (first of {len(runs)})",
+                                "start_utc": format_utc(first_start, 6),
+                                "start_utc_source": "host receive time of the first sample's bytes minus its t "
+                                                    "(host clock)",
+                                "written_by": f"fieldvane {__version__} export --raw"}
+                        fh.writelines(f"# {key}: {value}\n" for key, value in meta.items())
+                        names = ["t", "f_a", "f_b"] + [f"{c}_{ch}" for ch in channels for c in ("x", "y")]
+                        fh.write(",".join(names) + "\n")
+                        run_lines.append(f"  run {run_id}: start_utc {format_utc(first_start, 3)}")
+                    elif new_run or sample.restarted:
+                        fh.write(_flush(block, channels, shift))
                         block = []
-                        fh.write("# restart: the sensor restarted here (sequence reset)\n")
+                        what = f"capture run {run_id} begins here" if new_run else "the sensor restarted here"
+                        if float(sample.t) + shift <= last_t:      # its clock started again: move it on
+                            shift = start_here - first_start
+                            fh.write(f"# restart: {what}; its t is moved by {shift:+.6f} s (start_utc "
+                                     f"{format_utc(start_here, 6)}), so t increases and utc = start_utc + t\n")
+                        else:
+                            fh.write(f"# restart: {what}; its clock runs on\n")
+                        if new_run:
+                            run_lines.append(f"  run {run_id}: start_utc {format_utc(start_here, 3)}"
+                                             + (f", t moved by {shift:+.3f} s" if shift else ""))
+                    new_run = False
+                    last_t = float(sample.t) + shift
                     if sample.status:
                         with_status += 1
                     dropped_values += sum(1 for ch in sample.channels if ch not in channels)
                     block.append(sample)
                     rows += 1
                     if len(block) >= BLOCK_ROWS:
-                        fh.write(_flush(block, channels, format_rows))
+                        fh.write(_flush(block, channels, shift))
                         block = []
-                fh.write(_flush(block, channels, format_rows))
-            if not header_written:
+                fh.write(_flush(block, channels, shift))
+            if first_start is None:
                 raise InputError("the capture holds no complete sample", args.raw, column="--raw")
     except OSError as exc:
         raise JobError(f"cannot write {out}: {exc.strerror}") from None
@@ -254,9 +259,6 @@ def export_raw(args) -> int:
     print(f"export: {rows} samples of {len(run_lines)} run(s) -> {out} ({', '.join(channels or ())})")
     for line in run_lines:
         print(line)
-    if len(run_lines) > 1:
-        print("note: utc = start_utc + t holds for the first run; each later run's start_utc is in its "
-              "'# restart:' line (or export one run with --run ID)", file=sys.stderr)
     if with_status:
         print(f"note: {with_status} samples carried status bits, which a recording CSV does not keep",
               file=sys.stderr)
@@ -266,14 +268,17 @@ def export_raw(args) -> int:
     return 0
 
 
-def _flush(samples, channels, format_rows) -> str:
-    """Return the recording CSV rows (float repr, lossless) of samples in the header's channel order."""
+def _flush(samples, channels, shift: float = 0.0) -> str:
+    """Return the recording CSV rows (float repr, lossless) of samples in the header's channel order, t + shift."""
     import numpy as np
+
+    from fieldvane.io.float_text import format_rows
 
     if not samples:
         return ""
     n = len(samples)
-    cols = [np.array([float(s.t) for s in samples]), np.array([float(s.f_a) for s in samples]),
+    t = np.array([float(s.t) for s in samples])
+    cols = [t + shift if shift else t, np.array([float(s.f_a) for s in samples]),
             np.array([float(s.f_b) for s in samples])]
     z = np.full((n, len(channels)), complex(np.nan, np.nan))
     for i, s in enumerate(samples):
