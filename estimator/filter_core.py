@@ -894,6 +894,22 @@ def run_filter(cfg, icfg, w_table, exps, comp_probe, chan_probe, normalizers, ga
                 j00 += jpm[q, 0, 0]
                 j01 += jpm[q, 0, 1]
                 j11 += jpm[q, 1, 1]
+        if ng:
+            n_use = 0
+            for q in range(n_probes):
+                if use & (1 << q):
+                    n_use += 1
+                    gq = 2 + q
+            if n_use == 1:
+                # One probe: its gain is not corrected (a consider state) and only its prior variance pins it, so
+                # the direction's information is what is left with the gain eliminated against that prior
+                # (J_dd - J_dg (J_gg + 1/P_gg)^-1 J_gd): a gain known from a stretch with both probes keeps the
+                # direction observable; an unknown one leaves the probe blind near its own axis, as the map says.
+                jgg = jpm[gq - 2, gq, gq] + 1.0 / max(p[gq, gq], 1e-300)
+                j0g, j1g = jpm[gq - 2, 0, gq], jpm[gq - 2, 1, gq]
+                j00 -= j0g * j0g / jgg
+                j01 -= j0g * j1g / jgg
+                j11 -= j1g * j1g / jgg
         det_j = j00 * j11 - j01 * j01
         bound2 = (j00 + j11) / det_j if det_j > 0 else math.inf
         min_ratio = math.inf
