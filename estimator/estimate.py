@@ -6,7 +6,7 @@ from dataclasses import dataclass, field
 
 import numpy as np
 
-# The estimates CSV columns of DESIGN.md section 4, in order; extra columns follow them.
+# The estimates CSV columns of docs/estimates_columns.md, in order; extra columns follow them.
 ESTIMATE_COLUMNS = ("t", "ux", "uy", "uz", "b_nT", "bx_nT", "by_nT", "bz_nT", "sigma_deg", "flags")
 
 

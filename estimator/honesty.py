@@ -2,7 +2,7 @@
 
 With truth (simulator recordings): the share of samples whose direction error is within 1 and 2 sigma.
 For a 2-D Gaussian error with sigma^2 = trace P the shares are 1 - exp(-k^2): 63.2 % and 98.2 %
-(REFERENCES.md, "Estimation"). A filter is called honest when 50-80 % lie within 1 sigma and at least
+(docs/references.md, "Estimation"). A filter is called honest when 50-80 % lie within 1 sigma and at least
 93 % within 2 sigma (TRUTH_BAND: a practical band around the Gaussian values, common practice, since
 real errors are not exactly Gaussian nor isotropic).
 

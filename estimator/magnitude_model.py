@@ -11,7 +11,7 @@ that follow the three effects' laws (x = |B| / reference):
 
 * ``inverse`` 1/x: spin-exchange pulling of the two isotopes' coupled modes, about k0 k1 / dw
   with dw the gap between their frequencies (proportional to |B|), so constant in Hz times 1/|B|
-  in nT (REFERENCES.md, 'Two isotopes coupled by spin exchange');
+  in nT (docs/references.md, 'Two isotopes coupled by spin exchange');
 * ``constant`` 1: the light shift, a fictitious field b_j along each pump axis p_j, which moves
   |B u + b_j p_j| by b_j (p_j . u) to first order (degree 1 in u), independent of |B|;
 * ``square`` x^2: the nonlinear Zeeman (heading) shift, proportional to f_L^2 / f_hfs in Hz and so
@@ -57,7 +57,7 @@ def _stats():
 
 FORMAT_VERSION = 1
 ENVELOPES = ("inverse", "constant", "square")
-CROSSOVER_NT = 10_000.0      # below, pulling dominates heading (DESIGN.md: 'strongly below roughly 10 uT')
+CROSSOVER_NT = 10_000.0      # below, pulling dominates heading (docs/physics.md: 'strongly below roughly 10 uT')
 MAX_DEGREE = 4
 MIN_ROWS_PER_PARAMETER = 3   # common practice: a few data per fitted parameter
 FOLDS = 5

@@ -8,10 +8,10 @@ Channel (probe q, pump p, other pump p'), field direction u, at magnitude knot k
     R_k(u) = 1 / (1 + i*sigma*x_k),   x_k = t_k,a L_a + t_k,b L_b,
     L_m = (p_m.u) (1 + v_m,a (p_a.u)^2 + v_m,b (p_b.u)^2)
 
-* a_k c + b_k s is DESIGN.md's ideal channel g exp(i phi0) (c - i sigma s) when b = -i sigma a; a
+* a_k c + b_k s is docs/physics.md's ideal channel g exp(i phi0) (c - i sigma s) when b = -i sigma a; a
   free b also carries the counter-rotating part of the precession (b/a differs from -i sigma by a
   few percent below ~2 uT, falling as 1/|B|).
-* l_k c' + m(B) s' is the other pump's leak into this channel (REFERENCES.md, 'Two isotopes
+* l_k c' + m(B) s' is the other pump's leak into this channel (docs/references.md, 'Two isotopes
   coupled by spin exchange'): the modulated pump acts on the mean polarization the other pump
   holds, whose longitudinal part the probe reads as (q.u)(p'.u) (the c' term, free at every knot)
   and whose small transverse part, turned by the precession, is driven on resonance into
@@ -29,7 +29,7 @@ Channel (probe q, pump p, other pump p'), field direction u, at magnitude knot k
   Earth-field magnitudes. L's even factor (v) carries the pumps' efficiency and line width versus
   the pump-field angle, which the polarization and the width follow. The coefficients t follow
   t_0 + t_2 (|B| / 50 uT)^2: the
-  nonlinear Zeeman splitting grows as f_L^2 (REFERENCES.md, 2 f_L^2 / f_hfs), a light shift adds a
+  nonlinear Zeeman splitting grows as f_L^2 (docs/references.md, 2 f_L^2 / f_hfs), a light shift adds a
   constant; four pairs (t_0, t_2) in all, whatever the number of knots.
   R, the resonance's response to that detuning, acts on the resonant part only; one set of t
   per pump, shared by that pump's channels.

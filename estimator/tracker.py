@@ -8,7 +8,7 @@ log-gain drifts (on by default: optical power drifts on every bench), optional p
 drifts, and the angular velocity w of the field direction (3, rad/s, sensor frame; u' = w x u). After
 every correction the direction error is folded into u along a great circle (retraction), the basis is
 transported with it and the covariance is mapped by the exact Jacobian of the chart change (Markley
-2003, REFERENCES.md "Estimation").
+2003, docs/references.md "Estimation").
 
 Measurement. The X/Y channels of the probes present in a sample, whitened by the calibrated noise
 (never phases). A probe whose fields are missing, or whose light has faded below a fraction of its

@@ -141,7 +141,7 @@ def optical_line_shape(detuning_ghz, width_ghz):
 
 
 # Rb: D. A. Steck, "Rubidium 87 D Line Data" and "Rubidium 85 D Line Data" (values as quoted in
-# REFERENCES.md; hyperfine splittings there marked 'from memory').
+# docs/references.md; hyperfine splittings there marked 'from memory').
 # K: T. G. Tiecke, "Properties of Potassium" (from memory). Cs: D. A. Steck, "Cesium D Line Data"
 # (from memory; the 133Cs splitting is exact by the SI definition of the second).
 ATOMS: dict[str, AtomData] = {

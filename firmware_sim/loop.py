@@ -4,7 +4,7 @@
 on the resonance of their isotope's upper-level mode as the cell really has it: the precession
 rate |Omega| including the light shift and the heading shift (kappa times the longitudinal
 polarization, which depends on the pump-field angle), then pulled by spin exchange. The two
-upper levels form the coupled-mode pair (REFERENCES.md, 'Two isotopes coupled by spin exchange')
+upper levels form the coupled-mode pair (docs/references.md, 'Two isotopes coupled by spin exchange')
 
     d beta_i / dt = (i W_i - G_i) beta_i + k_i beta_other
 

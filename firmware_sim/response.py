@@ -17,7 +17,7 @@ This is the steady-state, first-order-in-modulation solution of the same Bloch e
   leaves a 2 x 2 system per row in closed form (`_solve`; checked against a dense Cartesian solve
   with numpy.linalg in tests/test_sim_realism.py).
 
-Without coupling this reduces to the DESIGN.md channel factor (c + i s)/2 times the Bell-Bloom
+Without coupling this reduces to the docs/physics.md channel factor (c + i s)/2 times the Bell-Bloom
 resonance; the counter-rotating and longitudinal responses (order Gamma/omega, about 1 % at 1 uT)
 come out of the same solve, so the two models agree closely at low field.
 

@@ -1016,7 +1016,7 @@ class SimulatedRun:
         return int(self.t.shape[0])
 
     def recording_columns(self) -> dict[str, np.ndarray]:
-        """Return the recording-CSV columns (DESIGN.md section 4), name -> (N,) array, in order."""
+        """Return the recording-CSV columns (docs/recording_format.md), name -> (N,) array, in order."""
         cols: dict[str, np.ndarray] = {"t": self.t, "f_a": self.f[:, 0], "f_b": self.f[:, 1]}
         for k, ch in enumerate(self.channels):
             cols[f"x_{ch}"] = self.z[:, k].real

@@ -63,8 +63,10 @@ class CsvLayout:
                              line)
         cols = self.columns
 
-        def _num(i: int) -> float:
+        def _num(i: int, may_be_missing: bool = False) -> float:
             text = fields[i].strip()
+            if may_be_missing and not text:
+                return math.nan
             try:
                 return float(text)
             except ValueError:
@@ -73,12 +75,19 @@ class CsvLayout:
         t, f_a, f_b = _num(self.t_i), _num(self.fa_i), _num(self.fb_i)
         z = np.empty(len(self.plan), dtype=np.complex128)
         for k, (_ch, polar, i1, i2) in enumerate(self.plan):
-            a, b = _num(i1), _num(i2)
-            if polar:
+            a, b = _num(i1, True), _num(i2, True)
+            if math.isnan(a) or math.isnan(b):
+                z[k] = complex(math.nan, math.nan)      # missing, as in a recording (a dark probe)
+            elif polar:
                 th = math.radians(b)
                 z[k] = complex(a * math.cos(th), a * math.sin(th))
             else:
                 z[k] = complex(a, b)
+        # Like the recording reader: the row stands while one probe has all its values.
+        if np.isnan(z[:2]).any() and (len(z) < 4 or np.isnan(z[2:]).any()):
+            first = next(k for k in range(len(z)) if np.isnan(z[k]))
+            raise InputError("no probe has all its lock-in values (empty or NaN read as missing)",
+                             source, line, cols[self.plan[first][2]])
         return Sample(t, f_a, f_b, z, self.channels, 0, restarted)
 
 

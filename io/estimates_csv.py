@@ -1,4 +1,4 @@
-"""Estimates CSV (DESIGN.md section 4): a lossless synchronous writer and a fast validating reader.
+"""Estimates CSV (docs/estimates_columns.md): a lossless synchronous writer and a fast validating reader.
 
 Bytes: every row is exactly what the CSV logger sink writes for the same record (io/sinks.py
 CsvFormatter): floats as Python's repr (shortest text that reads back to the same double), integers

@@ -1,4 +1,4 @@
-"""Recording CSV (DESIGN.md section 4): a chunked, vectorized reader with per-line errors, and a writer.
+"""Recording CSV (docs/recording_format.md): a chunked, vectorized reader with per-line errors, and a writer.
 
 Reading: lines are taken a chunk at a time and parsed by numpy's compiled text reader; a chunk (or a
 piece of one) that numpy cannot parse falls back to a line-by-line parser that names the bad line,

@@ -1,4 +1,4 @@
-"""A small synthetic sensor for estimator tests, built directly from the channel formula of DESIGN.md section 2.
+"""A small synthetic sensor for estimator tests, built directly from the channel formula of docs/physics.md.
 
 Z = g exp(i phi0(|B|)) (c - i sigma s) (1 + distortion(u)), with misaligned axes, arbitrary gains,
 phase offsets and handedness, and a phase that moves with |B| (stronger at low field). Numbers are

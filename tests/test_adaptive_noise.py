@@ -149,7 +149,7 @@ def test_noise_level_median_threshold_cap_and_baseline_against_numpy():
 def test_noise_burst_is_tracked_honestly(two_probe, one_probe, n_probes):
     """A 15x noise burst for 4 s while the field turns at 6 deg/s: the track is kept (no re-acquisition),
     the error stays consistent with sigma_deg (>= 90% within 2 sigma inside the burst; 98% expected for a
-    2-D Gaussian, REFERENCES.md "Estimation") and the noise factor reads about sqrt(1 + 15^2). Without the
+    2-D Gaussian, docs/references.md "Estimation") and the noise factor reads about sqrt(1 + 15^2). Without the
     adaptive noise the same stream loses the track and reports a sigma the errors do not respect."""
     sensor, cal, sigma = two_probe if n_probes == 2 else one_probe
     blk, u = turning_stream(sensor, sigma)

@@ -3,7 +3,7 @@ project's simulator): optical power drifting per probe, a probe going dark or mi
 bandwidth than the calibration scan's, a lock-in's low-pass filter.
 
 Yardstick: the median single-sample Cramer-Rao bound at the true directions (estimator/fisher.crlb_deg with the
-stream's true noise std), and honesty against the 2-D Gaussian law P(err < k sigma) = 1 - exp(-k^2) (REFERENCES.md
+stream's true noise std), and honesty against the 2-D Gaussian law P(err < k sigma) = 1 - exp(-k^2) (docs/references.md
 "Estimation", derived): 63 % at k = 1 (up to 68 % for a flat ellipse), 98 % at k = 2; accepted here 50-80 % and
 >= 93 %.
 """

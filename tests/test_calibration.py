@@ -1,4 +1,4 @@
-"""Calibration fit on synthetic scans built from the channel formula of DESIGN.md section 2."""
+"""Calibration fit on synthetic scans built from the channel formula of docs/physics.md."""
 
 import numpy as np
 import pytest

@@ -86,7 +86,7 @@ def test_every_axis_within_0p03_deg_and_its_sigma(which, request):
     # Requirement: every fitted axis within 0.03 deg of the truth (0.1 deg is the promise to users).
     assert err.max() < 0.03, err
     # And within 4 of its own reported 1-sigma (a 2-D error beyond 4 sigma_tot has probability
-    # exp(-16) for an isotropic Gaussian, REFERENCES.md 'Estimation'): the sigma is not a formality.
+    # exp(-16) for an isotropic Gaussian, docs/references.md 'Estimation'): the sigma is not a formality.
     assert np.all(err < 4 * cal.direction_std_deg), (err, cal.direction_std_deg)
 
 
@@ -145,7 +145,7 @@ def test_snapshot_error_reaches_the_cramer_rao_bound(low_field):
         sigmas.append(res.sigma_deg[ok])
     e, s = np.concatenate(errors), np.concatenate(sigmas)
     # Requirement: held-out snapshot RMS error within 1.05x the RMS Cramer-Rao bound (sqrt of the
-    # trace of the inverse Fisher information, REFERENCES.md 'Estimation').
+    # trace of the inverse Fisher information, docs/references.md 'Estimation').
     assert np.sqrt(np.mean(e ** 2)) <= 1.05 * np.sqrt(np.mean(s ** 2))
 
 
@@ -154,7 +154,7 @@ def test_direction_std_is_honest_over_seeds():
     """Monte Carlo: the true axis lies within the reported 1 sigma in 55-75 % of the cases.
 
     direction_std_deg is sigma_tot = sqrt(trace) of the axis' 2x2 covariance; for a 2-D isotropic
-    Gaussian P(error < sigma_tot) = 1 - exp(-1) = 63.2 % (REFERENCES.md 'Estimation'), up to
+    Gaussian P(error < sigma_tot) = 1 - exp(-1) = 63.2 % (docs/references.md 'Estimation'), up to
     68.3 % for a fully anisotropic one. 20 seeds x 4 axes of the low-field scan (about 20 s of
     CPU); FIELDVANE_LONG_MC=1 adds the Earth-field scan.
     """
@@ -289,6 +289,6 @@ def test_model_error_ratio_is_what_a_stream_between_knots_needs():
     assert 0.7 * dof < np.mean(widened.chi2) < 1.3 * dof
     err_plain = np.degrees(angle_between(plain.u, g)) / plain.sigma_deg
     err_wide = np.degrees(angle_between(widened.u, g)) / widened.sigma_deg
-    # 2-D Gaussian: P(error < 2 sigma_tot) = 1 - exp(-4) = 98.2 % (REFERENCES.md 'Estimation').
+    # 2-D Gaussian: P(error < 2 sigma_tot) = 1 - exp(-4) = 98.2 % (docs/references.md 'Estimation').
     assert np.mean(err_plain < 2) < 0.9
     assert np.mean(err_wide < 2) > 0.9

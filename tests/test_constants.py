@@ -7,7 +7,7 @@ from fieldvane.estimator.constants import ISOTOPES, gamma_hz_per_nt, identify_is
 
 def test_rb87_upper_level_gyromagnetic_ratio():
     # D. A. Steck, "Rubidium 87 D Line Data": g_F(F=2) ~ 1/2, i.e. ~0.70 MHz/G = 7.0 Hz/nT;
-    # with CODATA mu_B/h the compilation's g-factors give 6.9958 Hz/nT (REFERENCES.md).
+    # with CODATA mu_B/h the compilation's g-factors give 6.9958 Hz/nT (docs/references.md).
     assert gamma_hz_per_nt("87Rb") == pytest.approx(6.9958, abs=5e-4)
     assert ISOTOPES["87Rb"].g_f == pytest.approx(0.5, rel=1e-3)
 
@@ -34,7 +34,7 @@ def test_other_cells():
 
 
 def test_nonlinear_zeeman_scale():
-    # 2 f_L^2 / f_hfs: about 1.4 Hz at 10 uT and 36 Hz at 50 uT for 87Rb (REFERENCES.md, from
+    # 2 f_L^2 / f_hfs: about 1.4 Hz at 10 uT and 36 Hz at 50 uT for 87Rb (docs/references.md, from
     # the Breit-Rabi formula).
     rb = ISOTOPES["87Rb"]
     assert rb.nonlinear_zeeman_hz(10_000) == pytest.approx(1.43, rel=0.03)

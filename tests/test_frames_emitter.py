@@ -130,7 +130,7 @@ def read_socket_to_eof(sock, timeout_s=READ_TIMEOUT_S, limit=None) -> bytes:
 
 def test_crc_check_value():
     # Check value of CRC-16/CCITT-FALSE for ASCII "123456789": 0x29B1 (the catalogue of
-    # parametrised CRC algorithms, as quoted in docs/wire_format.md and REFERENCES.md).
+    # parametrised CRC algorithms, as quoted in docs/wire_format.md and docs/references.md).
     assert frames.crc16_ccitt_false(b"123456789") == 0x29B1
 
 
@@ -145,7 +145,7 @@ def test_crc_matches_binascii_and_crc_package():
 
 
 def test_cobs_worked_examples():
-    # Worked examples of COBS (Cheshire and Baker 1999) as tabulated in REFERENCES.md.
+    # Worked examples of COBS (Cheshire and Baker 1999) as tabulated in docs/references.md.
     assert frames.cobs_encode(b"\x00") == b"\x01\x01"
     assert frames.cobs_encode(b"\x00\x00") == b"\x01\x01\x01"
     assert frames.cobs_encode(b"\x11\x22\x00\x33") == b"\x03\x11\x22\x02\x33"

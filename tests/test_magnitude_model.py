@@ -198,7 +198,7 @@ def test_heading_error_of_the_simulated_breit_rabi_resonance_is_corrected():
         b_est, per, _ = model.correct(f_t, ut)
         assert np.ptp(raw[:, 1]) > 10.0 * (level / 50000.0) ** 2          # the 85Rb heading error is there
         assert np.sqrt(np.mean((per - bt[:, None]) ** 2)) < 0.01 * (level / 50000.0) ** 2 + 0.002
-    # Heading error grows as |B|^2 (nonlinear Zeeman shift ~ f_L^2 / f_hfs, REFERENCES.md): the
+    # Heading error grows as |B|^2 (nonlinear Zeeman shift ~ f_L^2 / f_hfs, docs/references.md): the
     # fitted effect lives in the square envelope.
     sizes = model.effect_sizes()
     assert sizes[1]["square"][1] > 5.0 and abs(sizes[1]["inverse"][1]) < 0.05 * sizes[1]["square"][1]

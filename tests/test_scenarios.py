@@ -74,10 +74,13 @@ def test_scenario_parses_and_simulates(path):
     assert np.all(run.b_nT > 0)
     finite = np.isfinite(run.f).all(axis=1)
     # Modulation tracks the Larmor frequencies: f = gamma |B|, gamma of 87Rb F=2 and 85Rb F=3
-    # (6.9958 and 4.6674 Hz/nT, REFERENCES.md 'Atomic constants').
+    # (6.9958 and 4.6674 Hz/nT, docs/references.md 'Atomic constants').
+    # A "locked" loop follows the pulled resonance (spin-exchange pulling, about k^2/dw), so its
+    # frequencies sit near, not at, gamma |B|: within 1% is far wider than any realistic pull.
+    rtol = 1e-2 if scenario.sensor.frequency_loop == "locked" else 1e-4
     ratio = run.f[finite] / run.b_nT[finite, None]
-    np.testing.assert_allclose(ratio[:, 0], 6.9958, rtol=1e-4)
-    np.testing.assert_allclose(ratio[:, 1], 4.6674, rtol=1e-4)
+    np.testing.assert_allclose(ratio[:, 0], 6.9958, rtol=rtol)
+    np.testing.assert_allclose(ratio[:, 1], 4.6674, rtol=rtol)
     if scenario.kind == "scan":
         np.testing.assert_allclose(run.applied_b_nT, run.u * run.b_nT[:, None])
     else:
@@ -158,7 +161,7 @@ def test_magnitude_ramp_endpoints_and_linearity():
     assert np.all(b[run.t >= 35.0] == pytest.approx(20000.0))
     mid = (run.t >= 5.0) & (run.t < 35.0)
     np.testing.assert_allclose(b[mid], 1000.0 + 19000.0 * (run.t[mid] - 5.0) / 30.0, rtol=1e-12)
-    # f_a follows gamma(87Rb) |B| (6.9958 Hz/nT, REFERENCES.md): 7.0 kHz -> 139.9 kHz.
+    # f_a follows gamma(87Rb) |B| (6.9958 Hz/nT, docs/references.md): 7.0 kHz -> 139.9 kHz.
     assert run.f[0, 0] == pytest.approx(6995.8, abs=1.0)
     assert run.f[-1, 0] == pytest.approx(139916.0, abs=20.0)
 

@@ -2,7 +2,7 @@
 
 The reference here is the ground-state Hamiltonian itself, H/h = A I.J + mu_B B (g_J J_z + g_I I_z)/h
 with A = f_hfs / (I + 1/2) (the form and constants of Steck's Rb D line data, as quoted in
-REFERENCES.md), diagonalized numerically with numpy: nothing below reuses the closed-form
+docs/references.md), diagonalized numerically with numpy: nothing below reuses the closed-form
 Breit-Rabi expressions of atoms.py.
 """
 
@@ -87,7 +87,7 @@ def test_heading_slope_matches_a_spin_temperature_centroid(name):
 def test_heading_strength_differs_between_the_isotopes_by_about_two():
     rb87, rb85 = atom("87Rb"), atom("85Rb")
     b = 50_000.0
-    # In units of the adjacent-line spacing 2 f_L^2/f_hfs (36 Hz at 50 uT for both, REFERENCES.md):
+    # In units of the adjacent-line spacing 2 f_L^2/f_hfs (36 Hz at 50 uT for both, docs/references.md):
     # A_F / 2 with A_F = sum (2m-1)^2 M_m / sum M_m, M_m = F(F+1) - m(m-1) (derived in the docstring
     # of heading_hz_per_polarization; 4.2 for F = 2, 9.0 for F = 3). 1 %: the spacing formula uses
     # g_F where the exact low-field spacing has (g_J - g_I)/(2I+1), 0.4 % apart for 87Rb.
@@ -129,7 +129,7 @@ def test_lower_level_spin_share_matches_a_spin_temperature_density_matrix(name):
 
 def test_electron_gyromagnetic_ratio_is_codata_within_the_bound_state_correction():
     # scipy.constants (CODATA): free-electron gamma_e/2pi = 28024.95 MHz/T = 28.025 Hz/nT; the Rb
-    # ground state's g_J = 2.00233113 is 5.9e-6 above the free g_e = 2.00231930 (REFERENCES.md).
+    # ground state's g_J = 2.00233113 is 5.9e-6 above the free g_e = 2.00231930 (docs/references.md).
     free = sc.physical_constants["electron gyromag. ratio in MHz/T"][0] * 1e-3
     for name in ("87Rb", "85Rb"):
         assert atom(name).electron_gamma_hz_per_nt == pytest.approx(free, rel=1e-5)

@@ -70,11 +70,11 @@ def rho_closed_form(x: float, n: int) -> float:
 def test_noise_bandwidth_formula_matches_the_integral(n):
     tau = 0.005
     # Outside reference: scipy.integrate.quad of |H(f)|^2 = 1 / (1 + (2 pi f tau)^2)^n over f >= 0.
-    # (REFERENCES.md quotes Gamma(n - 1/2) / (4 sqrt(pi) Gamma(n) tau) 'from memory': checked here.)
+    # (docs/references.md quotes Gamma(n - 1/2) / (4 sqrt(pi) Gamma(n) tau) 'from memory': checked here.)
     enbw, _ = integrate.quad(lambda f: (1.0 + (2 * math.pi * f * tau) ** 2) ** (-n), 0, math.inf,
                              epsabs=0, epsrel=1e-12, limit=500)
     assert rc_noise_bandwidth_hz(tau, n) == pytest.approx(enbw, rel=1e-9)
-    quoted = {1: 1 / 4, 2: 1 / 8, 3: 3 / 32, 4: 5 / 64}     # REFERENCES.md 'The lock-in amplifier'
+    quoted = {1: 1 / 4, 2: 1 / 8, 3: 3 / 32, 4: 5 / 64}     # docs/references.md 'The lock-in amplifier'
     if n in quoted:
         assert rc_noise_bandwidth_hz(tau, n) == pytest.approx(quoted[n] / tau, rel=1e-12)
 
@@ -103,7 +103,7 @@ def test_closed_form_autocorrelation_matches_scipy_impulse_response():
         k = int(round(lag_s / step))
         r = integrate.trapezoid(h[:-k] * h[k:], dx=step)
         assert rho_closed_form(lag_s / tau, n) == pytest.approx(r / r0, abs=2e-5)
-    # The number quoted in REFERENCES.md: about 0.9 at 200 Hz with 4 stages of 5 ms.
+    # The number quoted in docs/references.md: about 0.9 at 200 Hz with 4 stages of 5 ms.
     assert rho_closed_form(1.0, 4) == pytest.approx(0.9074, abs=1e-4)
 
 

@@ -19,7 +19,7 @@ def _ideal(cfg, **extra):
 
 
 def _geometry(cfg, u):
-    """Return DESIGN.md section 2's ideal channel output g exp(i phi0) (c - i sigma s), (N, C)."""
+    """Return docs/physics.md's ideal channel output g exp(i phi0) (c - i sigma s), (N, C)."""
     pumps, probes = cfg.pump_array(), cfg.probe_array()
     cols = []
     for ch, sig, g in zip(cfg.channels, cfg.handedness, cfg.channel_complex_gain()):
@@ -39,7 +39,7 @@ def _directions(n, seed=3):
 # ----- atomic data ---------------------------------------------------------------------------
 
 def test_gamma_values_match_compilation():
-    # REFERENCES.md 'Atomic constants': g_F formula with CODATA mu_B gives 6.9958 Hz/nT (87Rb F=2)
+    # docs/references.md 'Atomic constants': g_F formula with CODATA mu_B gives 6.9958 Hz/nT (87Rb F=2)
     # and 4.6674 Hz/nT (85Rb F=3); Steck's compilations quote about 0.70 MHz/G and 0.47 MHz/G.
     assert atom("87Rb").gamma_hz_per_nt == pytest.approx(6.9958, abs=5e-4)
     assert atom("85Rb").gamma_hz_per_nt == pytest.approx(4.6674, abs=5e-4)
@@ -62,7 +62,7 @@ def test_breit_rabi_low_field_limit_and_nonlinear_split():
         # Low-field limit of Breit-Rabi: lines centred on g_F mu_B B / h (textbook limit of the
         # Breit-Rabi formula as given in Steck's compilations).
         assert lines.mean() == pytest.approx(a.larmor_hz(10_000.0), rel=2e-6)
-        # REFERENCES.md: adjacent-line splitting about 2 f_L^2/f_hfs = 1.4 Hz at 10 uT, 36 Hz at 50 uT.
+        # docs/references.md: adjacent-line splitting about 2 f_L^2/f_hfs = 1.4 Hz at 10 uT, 36 Hz at 50 uT.
         assert np.mean(-np.diff(lines)) == pytest.approx(1.4, abs=0.06)
         assert np.mean(-np.diff(a.breit_rabi_transitions_hz(50_000.0))) == pytest.approx(36.0, abs=0.5)
         assert a.nonlinear_zeeman_split_hz(50_000.0) == pytest.approx(36.0, abs=0.5)
@@ -124,7 +124,7 @@ def test_digital_lockin_recovers_a_known_tone():
 # ----- fast model ----------------------------------------------------------------------------
 
 def test_fast_model_ideal_limit_is_design_formula():
-    # DESIGN.md section 2 / REFERENCES.md 'Geometry of one channel': without coupling the channel is
+    # docs/physics.md / docs/references.md 'Geometry of one channel': without coupling the channel is
     # g exp(i phi0)(c - i sigma s); the remaining non-resonant terms scale like Gamma/omega.
     cfg = _ideal(default_config(2))
     u = _directions(400)
@@ -138,7 +138,7 @@ def test_fast_model_ideal_limit_is_design_formula():
 
 
 def test_fast_model_phase_pull_grows_as_field_falls():
-    # REFERENCES.md 'Two isotopes coupled by spin exchange': with dw >> k each mode is pulled by about
+    # docs/references.md 'Two isotopes coupled by spin exchange': with dw >> k each mode is pulled by about
     # k^2/dw, so the coupling's phase effect grows roughly as 1/|B| (dw is proportional to |B|).
     cfg = default_config(2, heading_strength=0.0, cross_pumping=0.0)
     free = cfg.replace(spin_exchange_per_s=0.0)
@@ -186,7 +186,7 @@ def test_bell_bloom_resonance_from_time_domain():
     f_mod[:, 0] += detune_hz                      # sweep pump a across the 87Rb resonance
     u = np.tile(np.array([[0.3, 0.5, 0.81]]) / np.linalg.norm([0.3, 0.5, 0.81]), (detune_hz.size, 1))
     z = simulate_time_domain(cfg, u, b_nT, settle_s=0.016, average_s=0.004, f_mod_hz=f_mod)[:, 0]
-    # Expected half-width: Gamma = relaxation + mean pump rate (REFERENCES.md 'Spin dynamics').
+    # Expected half-width: Gamma = relaxation + mean pump rate (docs/references.md 'Spin dynamics').
     gamma_hz = (cfg.relaxation_per_s[0] + cfg.pump_rate_per_s[0]) / (2.0 * np.pi)
 
     def lorentz(d, a, hw, d0):
@@ -223,7 +223,7 @@ def test_time_domain_geometry_and_blind_plane():
         p, q = pumps["ab".index(ch[1])], probes[int(ch[0]) - 1]
         amp = np.linalg.norm(np.cross(p, generic), axis=1) * np.linalg.norm(np.cross(q, generic), axis=1)
         ok = amp > 0.2
-        # REFERENCES.md 'Geometry of one channel' (derived from Bell-Bloom): |Z| proportional to
+        # docs/references.md 'Geometry of one channel' (derived from Bell-Bloom): |Z| proportional to
         # |p x u| |q x u|; the residue is the non-resonant Gamma/omega ~ 0.4 % at 5 uT.
         ratio = np.abs(z[:10, k])[ok] / amp[ok]
         assert np.max(np.abs(ratio - 1.0)) < 0.015, f"{ch}: |Z|/(|p x u||q x u|) = {ratio}"
@@ -253,7 +253,7 @@ def test_time_domain_phases_move_with_field_when_isotopes_couple():
     z_c = simulate_time_domain(coupled, u, b, settle_s=0.016, average_s=0.004)
     z_f = simulate_time_domain(free, u, b, settle_s=0.016, average_s=0.004)
     shift = np.degrees(np.abs(np.angle(z_c / z_f))).reshape(fields.size, -1).mean(axis=1)
-    # Common practice (phases depend on |B|, strongly below ~10 uT) and REFERENCES.md's k^2/dw pull:
+    # Common practice (phases depend on |B|, strongly below ~10 uT) and docs/references.md's k^2/dw pull:
     # the frequency gap dw grows with |B|, so the coupling's phase shift falls roughly as 1/|B|.
     assert shift[0] > 2.0, f"coupling moves phases by {shift} deg at {fields} nT"
     assert shift[0] / shift[1] == pytest.approx(2.0, rel=0.3), f"shifts {shift} deg"

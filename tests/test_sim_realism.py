@@ -1,7 +1,7 @@
 """The simulated cell's realism options: light shift, frequency loops, exchange, lower level, efficiency.
 
 Each effect is checked against something outside the project (a textbook relation, a reference
-library, DESIGN.md / REFERENCES.md), and the default sensor is checked to have every one off.
+library, docs/physics.md, docs/references.md), and the default sensor is checked to have every one off.
 """
 
 from __future__ import annotations
@@ -124,7 +124,7 @@ def test_locked_loop_without_shifts_reports_gamma_b():
 
 
 def test_exchange_pulls_the_two_resonances_together_by_k0_k1_over_dw():
-    # REFERENCES.md 'Two isotopes coupled by spin exchange': with the gap dw >> k each mode is pulled
+    # docs/references.md 'Two isotopes coupled by spin exchange': with the gap dw >> k each mode is pulled
     # by about k^2/dw (here k0 k1 / dw for the density-weighted rates), growing as the field falls.
     cfg = default_config(2, cross_pumping=0.0, heading_strength=0.0, frequency_loop="locked",
                          spin_exchange_per_s=2250.0, density_fraction=(0.2783, 0.7217))
@@ -138,7 +138,7 @@ def test_exchange_pulls_the_two_resonances_together_by_k0_k1_over_dw():
         dw = 2.0 * np.pi * (f_free[0] - f_free[1])
         expected_hz = k0 * k1 / dw / (2.0 * np.pi)
         # The higher line (87Rb, pump a) comes down, the lower one goes up: the modes attract (and
-        # lock when dw is not large against k, as REFERENCES.md says).
+        # lock when dw is not large against k, as docs/references.md says).
         assert pull[:, 0] == pytest.approx(-expected_hz, rel=0.02)
         assert pull[:, 1] == pytest.approx(expected_hz, rel=0.02)
         pulls.append(pull[0, 1])
@@ -220,9 +220,9 @@ def _geometry(cfg, u, channel):
 
 
 def test_lower_level_adds_a_mirror_handed_signal_at_its_own_larmor_frequency():
-    # DESIGN.md section 2: the handedness of a channel follows the sense of precession, i.e. the sign of
+    # docs/physics.md: the handedness of a channel follows the sense of precession, i.e. the sign of
     # g_F. The lower level (g_F < 0) must add c - i s where the upper level gives c + i s, and resonate
-    # at its own |g_F| mu_B B / h (g_F formula with the constants of Steck's compilations, REFERENCES.md).
+    # at its own |g_F| mu_B B / h (g_F formula with the constants of Steck's compilations, docs/references.md).
     from fieldvane.firmware_sim.atoms import MU_B_HZ_PER_NT
 
     base = default_config(2, **QUIET, gain_V=1.0, phase_deg=0.0, handedness=-1)
@@ -253,7 +253,7 @@ def test_lower_level_adds_a_mirror_handed_signal_at_its_own_larmor_frequency():
 
 
 def test_lower_level_and_exchange_move_the_phases_mostly_below_10_uT():
-    # DESIGN.md section 2 (common practice): the phases depend on |B|, strongly below ~10 uT.
+    # docs/physics.md (common practice): the phases depend on |B|, strongly below ~10 uT.
     real = default_config(2, **REALISTIC)
     u = _sphere(300, seed=2)
     med = {}
@@ -316,7 +316,7 @@ def test_a_scenario_with_the_realistic_cell_reports_locked_frequencies():
     run = simulate(loads_scenario(text))
     gamma = default_config(2).gamma_hz_per_nt()
     magnitudes = run.f / gamma[None, :]
-    # Spin-exchange pulling (REFERENCES.md, coupled modes): 87Rb reads low, 85Rb high, both off |B|.
+    # Spin-exchange pulling (docs/references.md, coupled modes): 87Rb reads low, 85Rb high, both off |B|.
     assert np.all(magnitudes[:, 0] < run.b_nT) and np.all(magnitudes[:, 1] > run.b_nT)
     assert 0.1 < 100.0 * np.mean((magnitudes[:, 1] - magnitudes[:, 0]) / run.b_nT) < 0.4
 

@@ -1,6 +1,6 @@
 """The tracking filter: model Jacobians, update algebra, and scenarios on synthetic streams.
 
-Streams come from tests/synthetic_sensor.py (the channel formula of DESIGN.md section 2 with
+Streams come from tests/synthetic_sensor.py (the channel formula of docs/physics.md with
 misaligned axes, arbitrary gains/phases/handedness and a low-field phase shift); the tracker only
 sees a calibration fitted to a synthetic scan of the same sensor. Yardstick: the single-sample
 Cramer-Rao bound sqrt(trace J^-1), J = H^T R^-1 H with H the tangent Jacobian of the TRUE sensor
@@ -425,7 +425,7 @@ def test_turning_field_error_below_fraction_of_crlb(turning, n_probes, limit):
 @pytest.mark.parametrize("n_probes", [2, 1])
 def test_reported_uncertainty_is_consistent(turning, n_probes):
     """Errors against sigma_deg = sqrt(trace P): for an isotropic 2-D Gaussian P(err < k sigma) = 1 - exp(-k^2)
-    (REFERENCES.md "Estimation", derived): 63% at k = 1 (up to 68% for a flat ellipse), 98% at k = 2."""
+    (docs/references.md "Estimation", derived): 63% at k = 1 (up to 68% for a flat ellipse), 98% at k = 2."""
     r = turning[n_probes]
     sigma = r["rec"].sigma_deg[r["keep"]]
     within1, within2 = np.mean(r["err"] < sigma), np.mean(r["err"] < 2 * sigma)

@@ -3,8 +3,8 @@
 References outside the project: the simulator's scenarios (their noise, lock-in filter, drifts and
 true directions: firmware_sim is an independent implementation), the simulator's own statement of
 the lock-in noise bandwidth (recording metadata; the correlation factor of a long average is
-fs / (2 ENBW) for fs >> ENBW, REFERENCES.md "The lock-in amplifier"), the 2-D Gaussian law
-P(|e| < k sigma) = 1 - exp(-k^2) (REFERENCES.md "Estimation"), scipy.stats.chi2 for chi-square
+fs / (2 ENBW) for fs >> ENBW, docs/references.md "The lock-in amplifier"), the 2-D Gaussian law
+P(|e| < k sigma) = 1 - exp(-k^2) (docs/references.md "Estimation"), scipy.stats.chi2 for chi-square
 quantiles and samples, and errors against truth computed here from plain geometry.
 """
 
@@ -88,7 +88,7 @@ def against_truth(cal, block, settings, initiator) -> dict:
 
 
 def assert_honest(stats: dict, what: str) -> None:
-    # 2-D Gaussian (REFERENCES.md): 63.2 % within 1 sigma, 98.2 % within 2; the brief's band around it.
+    # 2-D Gaussian (docs/references.md): 63.2 % within 1 sigma, 98.2 % within 2; the brief's band around it.
     assert HONEST_1[0] <= stats["within1"] <= HONEST_1[1], (what, stats)
     assert stats["within2"] >= HONEST_2, (what, stats)
 
