@@ -634,7 +634,10 @@ def _level_noise(resid: np.ndarray, label: np.ndarray, n_levels: int) -> np.ndar
     sizable = [g for g in groups if g.size >= MIN_LEVEL_ROWS]
     if len(sizable) < 2 or pooled == 0.0:
         return np.full(n_levels, pooled)
-    if _stats().bartlett(*sizable).pvalue >= HOMOGENEITY_ALPHA:
+    # A level whose residuals are all equal (noiseless frequencies) makes Bartlett's statistic
+    # log(0): its variance differs from the others' beyond any chance, so keep the levels apart.
+    spread_everywhere = all(np.ptp(g) > 0.0 for g in sizable)
+    if spread_everywhere and _stats().bartlett(*sizable).pvalue >= HOMOGENEITY_ALPHA:
         return np.full(n_levels, pooled)
     return np.array([float(np.sqrt(np.mean(g * g))) if g.size >= MIN_LEVEL_ROWS else pooled for g in groups])
 

@@ -83,11 +83,8 @@ class CsvLayout:
                 z[k] = complex(a * math.cos(th), a * math.sin(th))
             else:
                 z[k] = complex(a, b)
-        # Like the recording reader: the row stands while one probe has all its values.
-        if np.isnan(z[:2]).any() and (len(z) < 4 or np.isnan(z[2:]).any()):
-            first = next(k for k in range(len(z)) if np.isnan(z[k]))
-            raise InputError("no probe has all its lock-in values (empty or NaN read as missing)",
-                             source, line, cols[self.plan[first][2]])
+        # Like a binary frame with non-finite values, the sample goes on: the estimator uses the
+        # complete probes and flags BAD_INPUT, and the stream keeps its time line.
         return Sample(t, f_a, f_b, z, self.channels, 0, restarted)
 
 

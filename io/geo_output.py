@@ -144,7 +144,7 @@ class GeoOutput:
             self.start_utc, self.start_source = start_utc_of(None, metadata, path)
         self.check_clock()
 
-    def check_clock(self, option: str = "--site") -> None:
+    def check_clock(self) -> None:
         """Refuse a UTC-clock attitude file when no sample can have a UTC time."""
         if (self.site is not None and self.site.attitude.kind == "file" and self.site.attitude.clock == "utc"
                 and self.start_utc is None and not self.host_clock):

@@ -96,7 +96,13 @@ def test_docs_and_examples_ship_with_the_package():
     assert project["package-dir"]["fieldvane.examples"] == "examples"
     assert {"fieldvane.docs", "fieldvane.examples"} <= set(project["packages"])
     assert "*.md" in project["package-data"]["fieldvane.docs"]
-    assert {"*.toml", "**/*.toml"} <= set(project["package-data"]["fieldvane.examples"])
+    # Every file under examples/ (scenarios and the files they name) must match a package-data
+    # pattern, or `fieldvane examples -o` from an installed copy would miss it.
+    patterns = project["package-data"]["fieldvane.examples"]
+    for path in (ROOT / "examples").rglob("*"):
+        if path.is_file() and "__pycache__" not in path.parts:
+            rel = path.relative_to(ROOT / "examples")
+            assert any(rel.match(p) for p in patterns), f"examples/{rel} is not in package-data"
 
 
 def test_docs_command_lists_and_prints_documents(capsys):

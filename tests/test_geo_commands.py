@@ -132,18 +132,26 @@ def test_export_raw_writes_the_captured_samples_as_a_recording(bench, capsys):
     assert meta["source"] == "socket://127.0.0.1:7000" and meta["input_format"] == "binary"
     # start_utc: the first sample's receive time minus its t, so that utc = start_utc + t.
     assert abs(parse_utc(meta["start_utc"]) - (host[0] - block.t[0])) < 1e-6
-    assert len(re.findall(r"^# restart: capture run \S+ begins here", text, re.M)) == 1
+    # The second run's clock starts again: its rows are moved on by the host clock's 60 s, so t increases.
+    assert len(re.findall(r"^# restart: capture run \S+ begins here; its t is moved by \+60.000000 s", text,
+                          re.M)) == 1
     raw, _ = read_recording(out)
     assert len(raw) == 2 * len(block)
     np.testing.assert_array_equal(raw.t[:len(block)], block.t)
+    np.testing.assert_allclose(raw.t[len(block):], block.t + 60.0, rtol=0, atol=1e-6)
     np.testing.assert_array_equal(raw.f[len(block):], block.f)
     # The wire carries float32 lock-in values: the text keeps them exactly.
     np.testing.assert_array_equal(raw.z, np.concatenate([block.z, block.z]).astype(np.complex64))
-    # Replaying the exported recording gives the capture replay's estimates (utc apart).
+    # Replaying the exported recording gives the capture replay's first run exactly, and utc = start_utc + t
+    # within a chunk's span (7 frames share one receive time) of the host times, through both runs.
     assert main(["replay", str(out), "-c", str(d / "cal.json"), "-o", str(d / "raw_est.csv")]) == 0
-    a, b = read_estimates(d / "raw_est.csv"), read_estimates(d / "cap_est.csv")
+    assert main(["replay", str(d / "cap"), "-c", str(d / "cal.json"), "-o", str(d / "cap_est3.csv")]) == 0
+    a, b = read_estimates(d / "raw_est.csv"), read_estimates(d / "cap_est3.csv")
+    first = slice(0, len(block))
     for key in ("ux", "uy", "uz", "b_nT", "sigma_deg"):
-        np.testing.assert_allclose(a[key], b[key], rtol=0, atol=1e-9)
+        np.testing.assert_allclose(a[key][first], b[key][first], rtol=0, atol=1e-9)
+    lag = b["utc"] - a["utc"]
+    assert np.max(np.abs(lag)) <= 0.035
     # One run only, and the overwrite rule.
     runs = re.findall(r"capture_run: (\S+)", text)
     assert main(["export", "--raw", str(d / "cap"), "-o", str(d / "one.csv"), "--run", runs[0]]) == 0
@@ -318,3 +326,27 @@ def test_bad_geographic_input_gets_one_line_and_exit_2(bad_files, capsys, name, 
     assert len(lines) == 1 and re.search(pattern, lines[0]), err
     after = sorted(p.name for p in d.iterdir())
     assert [n for n in after if n not in before and n != ".fieldvane-tables"] == []
+
+
+def test_live_rows_get_utc_and_the_sites_columns():
+    # What `run --site` adds to each logger record: the same numbers as the block path of replay.
+    from types import SimpleNamespace
+
+    from fieldvane.estimator.geomagnetic import attitude_matrix, elements, mounting_from_rotation_deg
+    from fieldvane.io.geo_output import setup
+
+    geo = setup(str(PIER / "pier_site_angles.toml"), host_clock=True)
+    geo.mounting = mounting_from_rotation_deg([0, -15, -75])
+    b_ned = np.array([21905.0, 1330.0, 42870.0])
+    b_s = (attitude_matrix(131.5, 0.35, -0.6) @ geo.mounting).T @ b_ned
+    n = 4
+    rec = SimpleNamespace(t=np.arange(n) * 0.005, u=np.tile(b_s / np.linalg.norm(b_s), (n, 1)),
+                          b_nT=np.full(n, np.linalg.norm(b_s)), sigma_deg=np.full(n, 0.03),
+                          sigma_b_nT=np.full(n, 0.5))
+    rows = geo.add_to_rows([{"t": float(t)} for t in rec.t], rec, np.array([1.0, 1.0, 2.0, 2.0]) + 1.8e9)
+    want = elements(b_ned[None])
+    for row in rows:
+        assert row["D_deg"] == pytest.approx(float(want.d_deg[0]), abs=1e-9)
+        assert row["X_nT"] == pytest.approx(b_ned[0], abs=1e-6) and row["sigma_F_nT"] == 0.5
+        assert isinstance(row["utc"], float)
+    assert [r["utc"] for r in rows] == [1.8e9 + 1, 1.8e9 + 1, 1.8e9 + 2, 1.8e9 + 2]

@@ -208,3 +208,18 @@ def test_example_attitude_file_is_the_scenarios_motion():
     h, p, r = load_scenario(EX / "pier_tilt.toml").site.attitude_angles_deg(rows[:, 0])
     np.testing.assert_allclose(rows[:, 1:], np.column_stack([h, p, r]), atol=5.1e-7)
     assert rows[0, 0] == 0.0 and rows[-1, 0] >= load_scenario(EX / "pier_tilt.toml").duration_s
+
+
+def test_attitude_file_on_the_utc_clock_gives_the_same_columns(pier):
+    # The same attitude log with POSIX UTC times (file_clock = "utc", as a GNSS/INS log has them).
+    start = parse_utc(load_scenario(EX / "pier_tilt.toml").site.start_utc)
+    rows = np.loadtxt(pier / "att.csv", delimiter=",", skiprows=1)
+    (pier / "att_utc.csv").write_text("t,heading_deg,pitch_deg,roll_deg\n" + "".join(
+        f"{start + r[0]:.3f},{r[1]:.6f},{r[2]:.6f},{r[3]:.6f}\n" for r in rows), encoding="utf-8")
+    site = (pier / "site_series.toml").read_text(encoding="utf-8").replace("att.csv", "att_utc.csv")
+    (pier / "site_utc.toml").write_text(site.replace('file_clock = "recording"', 'file_clock = "utc"'), "utf-8")
+    assert main(["replay", str(pier / "pier_tilt.csv"), "-c", str(pier / "cal.json"), "-o", str(pier / "est_utc.csv"),
+                 "--site", str(pier / "site_utc.toml")]) == 0
+    a, b = read_estimates(pier / "est_utc.csv"), read_estimates(pier / "est_series.csv")
+    for key in ("D_deg", "I_deg", "X_nT"):
+        np.testing.assert_allclose(a[key], b[key], rtol=0, atol=1e-6 if key.endswith("deg") else 1e-3)

@@ -214,7 +214,7 @@ def test_csv_lines_polar_columns_two_probes_and_chunking():
 
 def test_csv_lines_given_columns_bad_lines_and_new_header():
     d = CsvLineDecoder(columns=["t", "f_a", "f_b", "x_1a", "y_1a", "x_1b", "y_1b"], source="COM7")
-    out = d.feed(b"1,2,3,4,5,6,7\n1,2,3,4,5,6\n1,2,3,,5,6,7\n" + b"9" * 5000 + b"\n"
+    out = d.feed(b"1,2,3,4,5,6,7\n1,2,3,4,5,6\n1,2,3,x,5,6,7\n" + b"9" * 5000 + b"\n"
                  b"t,f_a,f_b,x_1a,y_1a,x_1b,y_1b,x_2a,y_2a,x_2b,y_2b\n"
                  b"2,2,3,1,1,1,1,1,1,1,1\n")
     assert [s.t for s in out] == [1.0, 2.0]
@@ -226,19 +226,23 @@ def test_csv_lines_given_columns_bad_lines_and_new_header():
     assert d.last_error == "COM7:7: column 'x_1a': not a number: 'x'"
 
 
-def test_csv_lines_missing_probe_values_like_a_recording():
-    # A dark probe streams empty or NaN values: the row stays while one probe is complete.
+def test_csv_lines_missing_probe_values_stream_as_nan():
+    # A dark probe streams empty or NaN values: they arrive as NaN (as non-finite values in a
+    # binary frame do) and the estimator decides what is usable; only text that is not a number
+    # makes a bad line.
     d = CsvLineDecoder(source="tcp")
     out = d.feed(b"t,f_a,f_b,x_1a,y_1a,x_1b,y_1b,x_2a,y_2a,x_2b,y_2b\n"
                  b"1,2,3,1,1,1,1,,,,\n"
                  b"2,2,3,1,1,1,1,nan,nan,NaN,NaN\n"
                  b"3,2,3,,,1,1,1,1,1,1\n"
-                 b"4,2,3,,1,1,1,1,,1,1\n")
-    assert [s.t for s in out] == [1.0, 2.0, 3.0]
+                 b"4,2,3,,1,1,1,1,,1,1\n"
+                 b"5,2,3,1,1,1,1,1,1,1,dark\n")
+    assert [s.t for s in out] == [1.0, 2.0, 3.0, 4.0]
     assert np.isnan(out[0].z[2:]).all() and np.isnan(out[1].z[2:]).all() and not np.isnan(out[0].z[:2]).any()
     assert np.isnan(out[2].z[0]) and out[2].z[1] == complex(1, 1) and not np.isnan(out[2].z[2:]).any()
+    assert np.isnan(out[3].z[[0, 2]]).all() and not np.isnan(out[3].z[[1, 3]]).any()
     assert d.counters()["bad_lines"] == 1
-    assert d.last_error == "tcp:5: column 'x_1a': no probe has all its lock-in values (empty or NaN read as missing)"
+    assert d.last_error == "tcp:6: column 'y_2b': not a number: 'dark'"
 
 
 def test_csv_lines_data_before_header_and_bad_headers():

@@ -23,8 +23,10 @@ of --sensor (else the estimates' '# mounting_rotation:' line, else none) and the
 exactly as the live run decoded them, as a recording CSV (docs/recording_format.md) whose metadata
 gives the capture's source, its input format and start_utc (the host receive time of the first
 sample's bytes minus its t, so utc = start_utc + t). Every run of the capture goes in, one after the
-other, with a '# restart:' comment where a run begins (the sensor's clock may start again there: its
-start_utc is in that comment; `--run ID` writes one run only). Status bits are not kept.
+other, with a '# restart:' comment where a run begins or the sensor restarted; where the sensor's
+clock started again, the rows after it have their t moved on by the host clock's difference (said in
+the comment), so t keeps increasing and utc = start_utc + t holds throughout. `--run ID` writes one
+run only. Status bits are not kept.
 
 Not a navigation or safety instrument by itself. An existing output is refused unless --force; an
 input is never overwritten.
