@@ -4,7 +4,7 @@ The simulator is given the Earth's field in north-east-down at an invented site 
 sensor frame through its own copy of the rotations (firmware_sim/site.py); fieldvane calibrates the sensor from a
 scan (examples/pier_scan.toml, sensor file with [mounting]), replays the recording with a site file and writes
 IAGA-2002 files. The truth is the scenario's NED field; its elements are checked against the definitions in
-REFERENCES.md ('Geomagnetism': H = sqrt(X^2+Y^2), D = atan2(Y, X), I = atan2(Z, H)) computed here with numpy.
+docs/references.md ('Geomagnetism': H = sqrt(X^2+Y^2), D = atan2(Y, X), I = atan2(Z, H)) computed here with numpy.
 
 Targets (the issue's): one-second means of D and I within 0.02 deg RMS of the truth, X, Y, Z within 15 nT RMS,
 F within 2 nT RMS, with the attitude given as heading/pitch/roll, as a matrix and as a time series. The lock-in
@@ -34,7 +34,7 @@ DURATION_S = 150.0          # long enough for two one-minute values (the filter 
 
 
 def _truth(name: str) -> dict[str, float]:
-    """Return the scenario's true elements, from its NED field with numpy (REFERENCES.md definitions)."""
+    """Return the scenario's true elements, from its NED field with numpy (docs/references.md definitions)."""
     x, y, z = load_scenario(EX / f"{name}.toml").site.field_ned_nT
     h = math.hypot(x, y)
     return {"X_nT": x, "Y_nT": y, "Z_nT": z, "H_nT": h, "F_nT": math.sqrt(h * h + z * z),
