@@ -26,23 +26,8 @@ from fieldvane.io.sitefile import Site, format_utc, parse_utc, read_site_file
 
 # What the geographic output adds, in the order documented (files sort extra columns by name).
 GEO_OUTPUT_COLUMNS = GEO_COLUMNS + ("sigma_F_nT",)
-SITE_HELP = ("site TOML (docs/geographic.md): add the field at the site in north-east-down, X_nT Y_nT Z_nT "
-             "H_nT F_nT D_deg I_deg, with sigma_D_deg sigma_I_deg sigma_F_nT")
-START_UTC_HELP = ("UTC time of t = 0 as ISO 8601, e.g. 2026-12-02T00:00:00Z (utc = start + t); default: the "
-                  "file's '# start_utc:' line")
 CAUTION = ("geographic values are only as good as the mounting, the attitude and the calibration: "
            "not a navigation or safety instrument by itself")
-
-
-def add_site_option(parser) -> None:
-    """Register --site SITE.toml with the shared wording."""
-    parser.add_argument("--site", metavar="SITE.toml", help=SITE_HELP)
-
-
-def add_start_utc_option(parser, default_text: str = "") -> None:
-    """Register --start-utc TIME with the shared wording (default_text replaces the default's description)."""
-    text = START_UTC_HELP if not default_text else START_UTC_HELP.split("; default")[0] + "; default: " + default_text
-    parser.add_argument("--start-utc", metavar="TIME", help=text)
 
 
 # ------------------------------------------------------------------------------------ inputs

@@ -89,3 +89,20 @@ def add_no_plots(parser) -> None:
     """Register --no-plots (old --no-png a hidden alias)."""
     parser.add_argument("--no-plots", action="store_true", help=NO_PLOTS_HELP)
     add_renamed(parser, "--no-png", "--no-plots", "no_plots", flag=True)
+
+
+SITE_HELP = ("site TOML (docs/geographic.md): add the field at the site in north-east-down, X_nT Y_nT Z_nT "
+             "H_nT F_nT D_deg I_deg, with sigma_D_deg sigma_I_deg sigma_F_nT")
+START_UTC_HELP = ("UTC time of t = 0 as ISO 8601, e.g. 2026-12-02T00:00:00Z (utc = start + t); default: the "
+                  "file's '# start_utc:' line")
+
+
+def add_site_option(parser) -> None:
+    """Register --site SITE.toml with the shared wording."""
+    parser.add_argument("--site", metavar="SITE.toml", help=SITE_HELP)
+
+
+def add_start_utc_option(parser, default_text: str = "") -> None:
+    """Register --start-utc TIME with the shared wording (default_text replaces the default's description)."""
+    text = START_UTC_HELP if not default_text else START_UTC_HELP.split("; default")[0] + "; default: " + default_text
+    parser.add_argument("--start-utc", metavar="TIME", help=text)

@@ -39,14 +39,19 @@ def test_io_folder_does_not_shadow_the_standard_library():
 
 
 def test_live_path_imports_no_plotting():
-    # What `fieldvane run` imports before the loop starts: nothing for plots, progress bars or fuzzing
-    # (filterpy and scipy.stats are the filter's own; matplotlib alone would cost ~0.5 s and 30 MB).
+    # What `fieldvane run` imports before the loop starts: nothing for plots, progress bars, fuzzing
+    # or fitting (matplotlib alone would cost ~0.5 s and 30 MB, scipy ~0.3 s of start-up); and
+    # `fieldvane --help` (the parser alone) does not even need numpy.
     code = ("import sys\n"
             "from fieldvane.io.cli import build_parser\n"
             "build_parser()\n"
+            "assert 'numpy' not in sys.modules, 'the parser imports numpy'\n"
             "import fieldvane.io.commands.run, fieldvane.io.live, fieldvane.io.calfile, fieldvane.io.table_cache\n"
             "import fieldvane.estimator.tracker, fieldvane.estimator.snapshot, fieldvane.io.filterfile\n"
-            "heavy = [m for m in ('matplotlib', 'hypothesis', 'tqdm', 'pytest') if m in sys.modules]\n"
+            "import fieldvane.io.geo_output, fieldvane.io.commands.replay\n"
+            # (numba itself imports scipy's top level, about 15 ms; the fitting subpackages are what costs)
+            "fitting = ('scipy.stats', 'scipy.optimize', 'scipy.interpolate', 'scipy.special', 'scipy.linalg')\n"
+            "heavy = [m for m in ('matplotlib', 'hypothesis', 'tqdm', 'pytest') + fitting if m in sys.modules]\n"
             "assert not heavy, heavy\n")
     subprocess.run([sys.executable, "-c", code], check=True, cwd=ROOT)
 

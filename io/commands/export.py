@@ -44,7 +44,7 @@ BLOCK_ROWS = 65536
 
 def add_arguments(parser) -> None:
     """Register export's options."""
-    from fieldvane.io.geo_output import add_site_option, add_start_utc_option
+    from fieldvane.io.options import add_site_option, add_start_utc_option
     from fieldvane.io.options import add_force, add_input_format
 
     parser.add_argument("estimates", nargs="?", metavar="EST.csv",

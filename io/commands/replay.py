@@ -65,7 +65,7 @@ def add_arguments(parser) -> None:
                         help="binary wire frames or recording-CSV lines: a capture's format when it does not record it")
     parser.add_argument("--force", action="store_true", help="replace existing output files (never an input)")
     parser.add_argument("--no-progress", action="store_true", help="no progress bar")
-    from fieldvane.io.geo_output import add_site_option, add_start_utc_option
+    from fieldvane.io.options import add_site_option, add_start_utc_option
 
     add_site_option(parser)
     add_start_utc_option(parser, "the recording's '# start_utc:' line; a capture's host clock")

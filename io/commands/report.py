@@ -56,7 +56,7 @@ def add_arguments(parser) -> None:
     parser.add_argument("--channels", type=int, default=None, metavar="N",
                         help="lock-in channels (NIS degrees of freedom = 2 N) when the file has no "
                              "nis_dof column (default: from the phase_* columns, else 4)")
-    from fieldvane.io.geo_output import add_site_option, add_start_utc_option
+    from fieldvane.io.options import add_site_option, add_start_utc_option
 
     add_site_option(parser)
     add_start_utc_option(parser, "the estimates' utc column or '# start_utc:' line")

@@ -77,7 +77,7 @@ def add_arguments(parser) -> None:
                         help="no status line (messages and the final counters are still printed)")
     parser.add_argument("--link-timeout", type=float, default=30.0, metavar="S",
                         help="give up (exit 3) if the port never opens within this many seconds (default 30)")
-    from fieldvane.io.geo_output import add_site_option
+    from fieldvane.io.options import add_site_option
 
     add_site_option(parser)
 
