@@ -45,7 +45,7 @@ BLOCK_ROWS = 65536
 def add_arguments(parser) -> None:
     """Register export's options."""
     from fieldvane.io.options import add_site_option, add_start_utc_option
-    from fieldvane.io.options import add_force, add_input_format
+    from fieldvane.io.options import add_force, add_input_format, add_renamed
 
     parser.add_argument("estimates", nargs="?", metavar="EST.csv",
                         help="estimates CSV to export (docs/estimates_columns.md); not with --raw")
@@ -54,6 +54,9 @@ def add_arguments(parser) -> None:
                              "CSV file to write")
     parser.add_argument("--file-format", choices=FORMATS, default="iaga2002",
                         help="exchange format of the estimates (default iaga2002, the only one so far)")
+    # `--format iaga2002` reads naturally here; elsewhere --format is an old spelling of a stream's
+    # format, so it stays a hidden alias that names its new spelling.
+    add_renamed(parser, "--format", "--file-format", "file_format", choices=FORMATS)
     parser.add_argument("--interval", choices=tuple(INTERVALS), default="both",
                         help="one-second values, one-minute values, or both (default both)")
     add_site_option(parser)
