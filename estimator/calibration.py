@@ -17,6 +17,7 @@ from dataclasses import dataclass, field
 import numpy as np
 
 from fieldvane.estimator.constants import CELL_PAIRS, gamma_hz_per_nt, identify_isotope
+from fieldvane.estimator.folds import scan_point_folds
 from fieldvane.estimator.harmonics import harmonics, n_harmonics
 from fieldvane.estimator.magnitude_basis import MagnitudeBasis
 from fieldvane.estimator.magnitude_error import MagnitudeCheck, check_magnitudes, scan_levels
@@ -291,7 +292,7 @@ def _one_standard_error(heldout: dict, whiten: np.ndarray) -> int:
     return min(d for d, v in mse.items() if v <= limit)
 
 
-def _fit_corrections(u, s_basis, resid, nearest_knot, max_degree, folds, ridge, seed, whiten, stepped):
+def _fit_corrections(u, s_basis, resid, nearest_knot, max_degree, folds, ridge, seed, whiten, stepped, b_nT):
     """Return (degrees per knot (K,), scores by degree, held-out residual (N, C), corrections (C, K, J)).
 
     Each candidate degree's corrections are scored by k-fold held-out residual and the smallest
@@ -302,8 +303,7 @@ def _fit_corrections(u, s_basis, resid, nearest_knot, max_degree, folds, ridge, 
     """
     n, c_n = resid.shape
     k_n = s_basis.shape[1]
-    rng = np.random.default_rng(seed)
-    fold_of = rng.permutation(np.arange(n) % folds)
+    fold_of = scan_point_folds(u, b_nT, folds, np.random.default_rng(seed))
     groups = [np.flatnonzero(nearest_knot == k) for k in range(k_n)] if stepped else [np.arange(n)]
     chosen = np.full(k_n, -1)
     heldout_all = resid.copy()
@@ -502,7 +502,7 @@ def _fit_inliers(u, b_nT, z, s_basis, knots, basis, nearest_knot, channels, nois
 
     stepped = scan_levels(b_nT, knots)[2]
     per_level, scores, heldout, corr = _fit_corrections(u, s_basis, resid, nearest_knot, max_correction_degree,
-                                                        folds, ridge, seed, 1.0 / pfit.noise_std, stepped)
+                                                        folds, ridge, seed, 1.0 / pfit.noise_std, stepped, b_nT)
     chosen = int(per_level.max())
     noise = np.maximum(np.sqrt(np.mean(np.abs(heldout) ** 2, axis=0) / 2), 1e-300)
 

@@ -46,6 +46,7 @@ from dataclasses import dataclass, field
 
 import numpy as np
 
+from fieldvane.estimator.folds import scan_point_folds
 from fieldvane.estimator.harmonics import harmonics, harmonics_and_gradient, n_harmonics
 
 
@@ -179,8 +180,7 @@ class IsotopeFit:
 def _fit_isotope(names, u, b_nT, delta, reference_nT, candidates, seed) -> tuple[IsotopeFit, np.ndarray]:
     """Fit one isotope's delta (N,) nT at one of the candidate degrees; return (IsotopeFit, residual (N,) nT, nan where rejected)."""
     n = u.shape[0]
-    rng = np.random.default_rng(seed)
-    fold_of = rng.permutation(np.arange(n) % FOLDS)
+    fold_of = scan_point_folds(u, b_nT, FOLDS, np.random.default_rng(seed))
     n_env = len(names)
     feasible = [d for d in candidates
                 if n_env * n_harmonics(d) * MIN_ROWS_PER_PARAMETER <= n * (FOLDS - 1) / FOLDS]

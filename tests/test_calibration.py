@@ -123,3 +123,16 @@ def test_magnitude_check_of_stepped_and_continuous_scans():
     cal3 = fit_calibration(u3, b3, z3, f3, sensor.channels)
     r3 = cal3.model_error_ratio(np.array([5000.0, 5200.0, 8000.0]))
     assert np.all(r3[:2] == 0) and np.all(np.isinf(r3[2]))
+
+
+def test_samples_of_one_scan_point_share_a_fold():
+    from fieldvane.estimator.folds import scan_point_folds
+
+    rng = np.random.default_rng(0)
+    u = np.repeat(fibonacci_sphere(40), 8, axis=0)           # 40 coil settings, 8 samples recorded at each
+    b = np.full(u.shape[0], 20000.0)
+    fold = scan_point_folds(u, b, 5, rng)
+    assert np.all(fold.reshape(40, 8) == fold[::8, None])     # a point's samples never straddle folds
+    assert np.bincount(fold).tolist() == [64] * 5             # points spread evenly over the folds
+    sweep = scan_point_folds(fibonacci_sphere(50), np.full(50, 1e4), 5, rng)   # every row its own point
+    assert np.bincount(sweep).tolist() == [10] * 5
