@@ -17,7 +17,7 @@ from dataclasses import dataclass, field
 import numpy as np
 
 from fieldvane.estimator.constants import CELL_PAIRS, gamma_hz_per_nt, identify_isotope
-from fieldvane.estimator.folds import scan_point_folds
+from fieldvane.estimator.folds import scan_point_folds, scan_points
 from fieldvane.estimator.harmonics import harmonics, n_harmonics
 from fieldvane.estimator.magnitude_basis import MagnitudeBasis
 from fieldvane.estimator.magnitude_error import MagnitudeCheck, check_magnitudes, scan_levels
@@ -493,7 +493,8 @@ def _fit_inliers(u, b_nT, z, s_basis, knots, basis, nearest_knot, channels, nois
         level = nearest_knot == _choose_start_level(b_nT, knots, nearest_knot)
         pump0, probe0 = _init_axes_from_quadratic(u[level], z[level], channels)
     try:
-        pfit = fit_physics(u, s_basis, knots, z, channels, pump0, probe0, noise0, fit_efficiency, fit_detuning)
+        pfit = fit_physics(u, s_basis, knots, z, channels, pump0, probe0, noise0, fit_efficiency, fit_detuning,
+                           points=scan_points(u, b_nT))
     except PhysicsFitError as exc:
         raise CalibrationError(str(exc)) from None
     phys = pfit.params

@@ -14,12 +14,17 @@ def scan_point_folds(u: np.ndarray, b_nT: np.ndarray, folds: int, rng: np.random
     Keeping each point's samples together makes the held-out residual honest; a scan whose rows all
     differ (a continuous sweep) gets per-row folds as before.
     """
+    point = scan_points(u, b_nT)
+    n_points = int(point[-1]) + 1 if point.size else 0
+    return rng.permutation(np.arange(n_points) % folds)[point]
+
+
+def scan_points(u: np.ndarray, b_nT: np.ndarray) -> np.ndarray:
+    """Return the scan point (N,) int of each row: a new point wherever the applied field (u (N, 3), |B| (N,) nT) changes."""
     field = np.asarray(u, float) * np.asarray(b_nT, float)[:, None]
     n = field.shape[0]
     if n == 0:
         return np.zeros(0, int)
     new_point = np.ones(n, bool)
     new_point[1:] = np.any(field[1:] != field[:-1], axis=1)
-    point = np.cumsum(new_point) - 1
-    n_points = int(point[-1]) + 1
-    return rng.permutation(np.arange(n_points) % folds)[point]
+    return np.cumsum(new_point) - 1

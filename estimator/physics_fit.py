@@ -424,6 +424,23 @@ def _handedness_from(phys: PhysicsParameters) -> np.ndarray:
     return np.where(im > 0, -1.0, 1.0)
 
 
+def _correlation_inflation(resid_w: np.ndarray, points: np.ndarray | None) -> float:
+    """Return the covariance factor (>= 1) for correlated rows: the design effect of scan points, else the lag-1 law.
+
+    Rows of one scan point share their regressors, so a least-squares estimate's variance grows by
+    sum over points of (sum of the point's whitened residuals)^2 over their sum of squares: the
+    design effect of cluster sampling (L. Kish, 'Survey Sampling', 1965; it is 1 + (m - 1) rho for
+    m rows of equal correlation rho), measured here from the residuals themselves.
+    """
+    if points is None or points.size != resid_w.shape[0] or points.size == 0 or points[-1] + 1 == points.size:
+        return _lag1_inflation(resid_w)
+    a = np.concatenate([resid_w.real, resid_w.imag], axis=1)
+    sums = np.zeros((int(points[-1]) + 1, a.shape[1]))
+    np.add.at(sums, points, a)
+    den = float(np.sum(a * a))
+    return max(float(np.sum(sums * sums)) / den, 1.0) if den > 0 else 1.0
+
+
 def _lag1_inflation(resid_w: np.ndarray) -> float:
     """Return (1 + rho) / (1 - rho) for the lag-1 correlation rho of whitened residuals in row order, >= 1.
 
@@ -446,8 +463,12 @@ def _lag1_inflation(resid_w: np.ndarray) -> float:
 
 def fit_physics(u: np.ndarray, s_basis: np.ndarray, knots_nT: np.ndarray, z: np.ndarray, channels,
                 pump0: np.ndarray, probe0: np.ndarray, noise_std: np.ndarray, fit_efficiency: bool = True,
-                fit_detuning: bool = True, max_iterations: int = 60) -> PhysicsFit:
+                fit_detuning: bool = True, max_iterations: int = 60, points: np.ndarray | None = None) -> PhysicsFit:
     """Return the PhysicsFit of rows u (N,3), magnitude weights s_basis (N,K) at knots_nT (K,), values z (N,C) V.
+
+    points (N,) int: the scan point of each row (estimator/folds.scan_points); rows recorded at one
+    coil setting are correlated through a lock-in, and the covariance is inflated by their design
+    effect (without points, or with one row per point, by the lag-1 correlation in row order).
 
     pump0 (2,3), probe0 (P,3): starting axes (within a few degrees); noise_std (C,): starting
     whitening std per channel, V (re-estimated from the residual before the final pass). The s'
@@ -512,8 +533,10 @@ def fit_physics(u: np.ndarray, s_basis: np.ndarray, knots_nT: np.ndarray, z: np.
     frames = prob.frames(phys)
     jac = prob.jacobian(phys, terms, qs, frames)
     cov = _inverse_psd(gram(jac) + np.diag(prob.prior ** 2))
-    inflation = _lag1_inflation(resid * prob.w)
+    inflation = _correlation_inflation(resid * prob.w, points)
     jack = _level_jackknife(prob, jac, resid) if prob.blocks is not None and k >= JACKKNIFE_MIN_LEVELS else None
+    if jack is not None:
+        jack = jack / inflation     # the levels' shifts carry the same correlation as every other estimate
     terms_used = {"efficiency": prob.fit_efficiency, "detuning": prob.fit_detuning, "leak_terms": prob.leak_terms,
                   "full_linear": prob.full_linear}
     return PhysicsFit(phys, cov * inflation, frames, resid, 1.0 / prob.w, iterations, inflation, jack, terms_used)

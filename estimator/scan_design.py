@@ -187,6 +187,8 @@ class ScanPlan:
     reached: bool
     path_nT: float                    # sum of the coil steps |B_i+1 - B_i|
     max_step_nT: float
+    bound_rows: float = float("nan")        # rows a continuous optimal design with the same base rows needs
+    bound_rows_lower: float = float("nan")  # certified: no design over the candidates needs fewer
 
     @property
     def n_rows(self) -> int:
@@ -219,9 +221,330 @@ def uniform_directions(n: int, level: int) -> np.ndarray:
     return fibonacci_sphere(n) @ rot.T
 
 
+# ----- rows with weights: the information of a (continuous or counted) design -----------------------------
+
+class _Pool:
+    """Whitened model terms of every row a plan may use, per level: the fixed base rows first, then the candidates.
+
+    a[k] (2C, M, 4): the level's linear columns (c, s, c', 1), real, once for the real and once for
+    the imaginary part of every channel; d[k] (2C, M, n): the real parts, then the imaginary parts,
+    of the derivatives by the global parameters. All divided by the channel's noise std.
+    """
+
+    def __init__(self, guess: SensorGuess, levels: np.ndarray, base: list[np.ndarray], cand: np.ndarray):
+        u_all = np.vstack([cand] + base)
+        geo = _Geometry(guess, u_all, levels.size, levels, _leak_term(levels))
+        self.n_beams, self.n = geo.n_beams, geo.n_global
+        self.u = [np.vstack([b, cand]) for b in base]
+        self.n_fixed = np.array([b.shape[0] for b in base])
+        self.n_cand = cand.shape[0]
+        w = 1.0 / guess.noise_std
+        self.a, self.d = [], []
+        start = cand.shape[0]
+        for k, b in enumerate(base):
+            idx = np.concatenate([start + np.arange(b.shape[0]), np.arange(cand.shape[0])])
+            start += b.shape[0]
+            a, d = geo.rows(idx, k)
+            a = a.real * w[:, None, None]
+            d = d * w[:, None, None]
+            self.a.append(np.ascontiguousarray(np.concatenate([a, a])))
+            self.d.append(np.ascontiguousarray(np.concatenate([d.real, d.imag])))
+
+    def fixed_weights(self) -> list[np.ndarray]:
+        """Return per level the weights of the base rows alone (1 each, 0 on the candidates)."""
+        return [np.concatenate([np.ones(f), np.zeros(self.n_cand)]) for f in self.n_fixed]
+
+    def information(self, weights: list[np.ndarray]):
+        """Return (information (n, n) of the global parameters, per level (projection H (2C, 4, n), inverse gram) or None)."""
+        info = np.zeros((self.n, self.n))
+        proj = []
+        for k, wk in enumerate(weights):
+            use = wk > 0
+            if not np.any(use):
+                proj.append(None)
+                continue
+            a, d = self.a[k], self.d[k]
+            if not np.all(use):
+                a, d, wk = a[:, use], d[:, use], wk[use]
+            aw = a * wk[None, :, None]
+            gram_a = np.swapaxes(aw, 1, 2) @ a                                # (2C, 4, 4)
+            gram_a += np.eye(4) * (1e-12 * np.trace(gram_a, axis1=1, axis2=2))[:, None, None]
+            b = np.swapaxes(aw, 1, 2) @ d                                     # (2C, 4, n)
+            h = np.linalg.solve(gram_a, b)
+            info += np.tensordot(d * wk[None, :, None], d, axes=([0, 1], [0, 1]))
+            info -= np.tensordot(b, h, axes=([0, 1], [0, 1]))
+            proj.append((h, np.linalg.inv(gram_a)))
+        return 0.5 * (info + info.T), proj
+
+    def projected(self, k: int, proj, rows=None, cols=None) -> np.ndarray:
+        """Return the rows' derivatives with the level's linear terms projected out, (M, 2C, n) real (times cols)."""
+        h = proj[0]
+        sl = slice(None) if rows is None else rows
+        d = self.d[k][:, sl]
+        if cols is not None:
+            d, h = d @ cols, h @ cols
+        return np.swapaxes(d - self.a[k][:, sl] @ h, 0, 1)
+
+    def leverage(self, k: int, proj, rows=None) -> np.ndarray:
+        """Return each row's leverage on its level's linear terms per channel and part, (M, 2C): a^T (sum w a a^T)^-1 a."""
+        sl = slice(None) if rows is None else rows
+        a = self.a[k][:, sl]
+        return np.einsum("cmi,cij,cmj->mc", a, proj[1], a)
+
+
+def _beam_variances(cov: np.ndarray, n_beams: int) -> np.ndarray:
+    """Return each beam's trace of its 2x2 angle covariance (rad^2)."""
+    d = np.diag(cov)[:2 * n_beams]
+    return d[0::2] + d[1::2]
+
+
+# ----- the continuous optimal design --------------------------------------------------------------------
+
+DESIGN_ITERATIONS = 600     # most multiplicative steps of the continuous design
+DESIGN_TOLERANCE = 0.01     # stop when the certified bound is within this fraction of the achieved design
+POWER = 1.0
+PRICE_STEP = 0.3            # step of the beams' price (mirror ascent on the dual's beam weights)
+
+
+@dataclass
+class ContinuousDesign:
+    """Weights of a continuous design over the candidates (rows per level and direction) and what it reaches.
+
+    The criterion is the worst beam's axis variance (rad^2, sum of its two angle variances). With a
+    target it is met with the fewest free rows: n_free is what the design uses (its worst variance is
+    the target within the tolerance), n_free_lower what any design over the candidates needs at least.
+    Without a target the free rows are one (a design measure) and worst_lower bounds the criterion.
+    """
+
+    weights: list            # per level (M_k,), the rows of every pool row (fixed ones included)
+    n_free: float
+    n_free_lower: float      # nan without a target
+    axis_var: np.ndarray     # (n_beams,) rad^2
+    worst_lower: float       # certified lower bound of the worst variance at this n_free
+    beam_price: np.ndarray   # (n_beams,) the dual weights: which beams bind
+    iterations: int
+
+
+def continuous_design(pool: _Pool, n_free: float = 1.0, target_var: float | None = None,
+                      iterations: int = DESIGN_ITERATIONS, tolerance: float = DESIGN_TOLERANCE) -> ContinuousDesign:
+    """Return the ContinuousDesign minimizing the worst beam's axis variance (rad^2) over the pool's candidates.
+
+    Multiplicative weight updates for the weighted A-criterion sum_b w_b v_b (Silvey, Titterington and
+    Torsney, Commun. Stat. A 7, 1978; power 1/2 as in Yu, Ann. Stat. 38, 2010) with the beam weights
+    w_b moved by mirror ascent toward the binding beams (min-max = max-min over the weights). Each
+    step certifies a bound: for a design of information M, N = M^-1 W M^-1 and any other design A of
+    the same candidates, tr(W A^-1) >= tr(W M^-1)^2 / tr(N A) (Cauchy-Schwarz on W^1/2 A^-1/2 and
+    A^1/2 M^-1 W^1/2), and tr(N A) is at most the fixed rows' part plus the free rows times the
+    largest sensitivity f^T N f over the candidates; the worst beam's variance is at least tr(W A^-1).
+    With a target the free rows are rescaled every step so the worst variance meets it.
+    """
+    nb = pool.n_beams
+    fixed = pool.fixed_weights()
+    n_fixed = float(pool.n_fixed.sum())
+    m_total = pool.n_cand * len(fixed)
+    free = [np.full(pool.n_cand, n_free / m_total) for _ in fixed]
+    price = np.full(nb, 1.0 / nb)
+    best_lower, best_n_lower = 0.0, 0.0
+    v = np.full(nb, np.inf)
+    it = 0
+    for it in range(1, iterations + 1):
+        weights = [np.concatenate([f[:nf], x]) for f, x, nf in zip(fixed, free, pool.n_fixed)]
+        info, proj = pool.information(weights)
+        cov = _covariance(info)
+        v = _beam_variances(cov, nb)
+        price = price * np.exp(PRICE_STEP * (v / v.max() - 1.0))
+        price /= price.sum()
+        cols = cov[:, :2 * nb] * np.sqrt(np.repeat(price, 2))[None, :]
+        fixed_part, mean_part, sens = 0.0, 0.0, []
+        for k in range(len(fixed)):
+            s = np.sum(pool.projected(k, proj[k], cols=cols) ** 2, axis=(1, 2))
+            fixed_part += float(np.sum(s[:pool.n_fixed[k]]))
+            sens.append(s[pool.n_fixed[k]:])
+            mean_part += float(np.sum(weights[k][pool.n_fixed[k]:] * s[pool.n_fixed[k]:]))
+        phi = float(price @ v)
+        d_max = max(float(s.max()) for s in sens)
+        best_lower = max(best_lower, phi ** 2 / (fixed_part + n_free * d_max))
+        if target_var is not None:
+            best_n_lower = max(best_n_lower, (phi ** 2 / target_var - fixed_part) / d_max)
+            gap = n_free / max(best_n_lower, 1e-300) - 1.0
+            converged = gap <= tolerance and abs(v.max() / target_var - 1.0) <= tolerance / 4
+        else:
+            converged = v.max() / best_lower - 1.0 <= tolerance
+        if converged:
+            break
+        mean = mean_part / n_free
+        free = [x * (s / mean) ** POWER for x, s in zip(free, sens)]
+        total = sum(float(x.sum()) for x in free)
+        if target_var is not None:
+            # The worst variance falls about as 1 / rows: rescale the free rows toward the target.
+            n_free = max((n_free + n_fixed) * float(v.max()) / target_var - n_fixed, 1e-3 * (n_fixed + 1.0))
+        free = [x * (n_free / total) for x in free]
+    weights = [np.concatenate([f[:nf], x]) for f, x, nf in zip(fixed, free, pool.n_fixed)]
+    return ContinuousDesign(weights, float(n_free), float(best_n_lower) if target_var is not None else float("nan"),
+                            v, float(best_lower), price, it)
+
+
+@dataclass
+class DesignBound:
+    """Rows a continuous optimal design needs for a uniform scan's worst axis, as a fraction of the uniform rows."""
+
+    uniform_rows: int
+    uniform_worst_deg: float
+    ratio: float             # rows of the continuous design reaching the same worst axis / uniform_rows
+    ratio_lower: float       # certified: no design over the candidates (with the same base rows) needs fewer
+    rows_per_level: np.ndarray   # the continuous design's rows per level
+
+
+def design_bound(guess: SensorGuess, levels_nT, uniform_rows_per_level: int, candidates: int = CANDIDATES_PER_LEVEL,
+                 base_rows: int = 0, iterations: int = DESIGN_ITERATIONS,
+                 tolerance: float = DESIGN_TOLERANCE) -> DesignBound:
+    """Return the DesignBound: rows a continuous design needs for the worst axis of a uniform scan (fraction of its rows).
+
+    The uniform scan has uniform_rows_per_level near-uniform directions at every level; the design
+    chooses among `candidates` directions at every level, on top of base_rows near-uniform rows per level.
+    """
+    levels = np.sort(np.asarray(levels_nT, float))
+    uniform = [uniform_directions(uniform_rows_per_level, k) for k in range(levels.size)]
+    worst = float(np.max(expected_axis_std(guess, uniform, levels)))
+    base = [uniform_directions(base_rows, k) for k in range(levels.size)]
+    pool = _Pool(guess, levels, base, fibonacci_sphere(candidates))
+    n_uniform = uniform_rows_per_level * levels.size
+    if base_rows == 0:
+        res = continuous_design(pool, 1.0, None, iterations, tolerance)
+        target = np.radians(worst) ** 2
+        ratio = float(res.axis_var.max()) / target / n_uniform
+        lower = res.worst_lower / target / n_uniform
+        per_level = np.array([w.sum() for w in res.weights]) * ratio * n_uniform
+    else:
+        res = continuous_design(pool, 0.5 * n_uniform, np.radians(worst) ** 2, iterations, tolerance)
+        total = res.n_free + base_rows * levels.size
+        ratio = total * float(res.axis_var.max()) / np.radians(worst) ** 2 / n_uniform
+        lower = (res.n_free_lower + base_rows * levels.size) / n_uniform
+        per_level = np.array([w.sum() for w in res.weights])
+    return DesignBound(n_uniform, worst, float(ratio), float(lower), per_level)
+
+
+# ----- counted designs: rounding, completion, trimming -----------------------------------------------------
+
+def _round_counts(pool: _Pool, design: ContinuousDesign) -> list[np.ndarray]:
+    """Return integer rows per pool row: base rows once, candidates by largest remainder of their weights."""
+    free = np.concatenate([w[nf:] for w, nf in zip(design.weights, pool.n_fixed)])
+    total = int(round(free.sum()))
+    counts = np.floor(free).astype(int)
+    short = total - int(counts.sum())
+    if short > 0:
+        counts[np.argsort(free - counts)[::-1][:short]] += 1
+    out, start = [], 0
+    for nf in pool.n_fixed:
+        out.append(np.concatenate([np.ones(nf, int), counts[start:start + pool.n_cand]]))
+        start += pool.n_cand
+    return out
+
+
+def _row_changes(pool: _Pool, counts: list[np.ndarray], cov: np.ndarray, proj, sign: float):
+    """Return per level (rows, (M, n_beams) change of each beam's variance (rad^2) if one copy of the row were added
+    (sign +1: every candidate) or removed (sign -1: the candidates in the design)), exactly by Woodbury on the full
+    parameters (the level's linear terms included)."""
+    nb = pool.n_beams
+    out = []
+    for k, c in enumerate(counts):
+        if proj[k] is None:
+            out.append((np.zeros(0, int), np.zeros((0, nb))))
+            continue
+        rows = np.arange(pool.n_fixed[k], c.size)
+        if sign < 0:
+            rows = rows[c[rows] > 0]
+        g = pool.projected(k, proj[k], rows)                       # (M, 2C, n)
+        lev = pool.leverage(k, proj[k], rows)                      # (M, 2C)
+        gc = g @ cov                                               # (M, 2C, n)
+        s = gc @ np.swapaxes(g, 1, 2)                              # (M, 2C, 2C)
+        diag = lev
+        s = sign * s + sign * diag[:, :, None] * np.eye(s.shape[1])[None]
+        s += np.eye(s.shape[1])[None]
+        y = gc[:, :, :2 * nb]                                      # (M, 2C, 2 nb)
+        with np.errstate(all="ignore"):
+            z = np.linalg.solve(s, y)
+        change = -sign * np.einsum("mij,mij->mj", y, z)            # (M, 2 nb)
+        change = change[:, 0::2] + change[:, 1::2]
+        if sign < 0:
+            # A row the level cannot lose (its removal leaves a linear term undetermined) never leaves.
+            change[~np.all(np.isfinite(change), axis=1) | (np.max(diag, axis=1) >= 1.0 - 1e-9)] = np.inf
+        out.append((rows, change))
+    return out
+
+
+def _complete(pool: _Pool, counts: list[np.ndarray], target_var: float, max_rows: int) -> list[np.ndarray]:
+    """Return counts with candidate rows added (greedy, batches) until every beam reaches target_var or max_rows."""
+    while True:
+        info, proj = pool.information(counts)
+        cov = _covariance(info)
+        v = _beam_variances(cov, pool.n_beams)
+        total = int(sum(c.sum() for c in counts))
+        if np.all(v <= target_var) or total >= max_rows:
+            return counts
+        # Rows still needed if the worst variance fell as 1 / rows; add about half of them at a time.
+        need = total * (float(v.max()) / target_var - 1.0)
+        batch = int(min(max(1, np.ceil(0.5 * need)), max_rows - total))
+        weight = np.where(v > target_var, (v / target_var) ** 8, 0.0)
+        gains = []
+        for k, (rows, change) in enumerate(_row_changes(pool, counts, cov, proj, +1.0)):
+            gains.append((k, rows, -(change / target_var) @ weight))
+        lev = np.concatenate([np.full(r.size, k) for k, r, _ in gains])
+        row = np.concatenate([r for _, r, _ in gains])
+        gain = np.concatenate([g for _, _, g in gains])
+        for i in np.argsort(gain)[::-1][:batch]:
+            counts[lev[i]][row[i]] += 1
+
+
+def _trim(pool: _Pool, counts: list[np.ndarray], target_var: float, rounds: int = 60) -> list[np.ndarray]:
+    """Return counts with candidate rows removed while every beam stays within target_var (base rows stay)."""
+    batch_cap = None
+    for _ in range(rounds):
+        info, proj = pool.information(counts)
+        cov = _covariance(info)
+        v = _beam_variances(cov, pool.n_beams)
+        slack = target_var - v
+        if np.any(slack < 0):
+            return counts
+        entries = []
+        for k, (rows, change) in enumerate(_row_changes(pool, counts, cov, proj, -1.0)):
+            for r, ch in zip(rows, change):
+                entries.append((float(np.max((v + ch) / target_var)), k, int(r), ch))
+        entries = [e for e in entries if e[0] <= 1.0]
+        if not entries:
+            return counts
+        entries.sort(key=lambda e: e[0])
+        used = np.zeros_like(v)
+        chosen = []
+        for score, k, r, ch in entries:
+            if np.all(used + ch <= slack):
+                used += ch
+                chosen.append((k, r))
+                if batch_cap is not None and len(chosen) >= batch_cap:
+                    break
+        if not chosen:
+            return counts
+        trial = [c.copy() for c in counts]
+        for k, r in chosen:
+            trial[k][r] -= 1
+        info_t, _ = pool.information(trial)
+        if np.all(_beam_variances(_covariance(info_t), pool.n_beams) <= target_var):
+            counts, batch_cap = trial, None
+        elif len(chosen) == 1:
+            return counts
+        else:
+            batch_cap = max(1, len(chosen) // 2)     # the changes add up to more than one at a time: fewer
+    return counts
+
+
 def plan_scan(guess: SensorGuess, levels_nT, target_deg: float, base_rows: int = BASE_ROWS_PER_LEVEL,
               candidates: int = CANDIDATES_PER_LEVEL, max_rows: int = MAX_ROWS) -> ScanPlan:
-    """Return a ScanPlan whose every beam axis reaches target_deg (1 sigma, deg) with as few rows as the greedy design finds."""
+    """Return a ScanPlan whose every beam axis reaches target_deg (1 sigma, deg) with few rows.
+
+    Base rows (base_rows near-uniform directions per level) stay; the continuous optimal design on
+    top of them is found for the target (continuous_design), rounded to whole rows, completed
+    greedily where rounding fell short and trimmed of rows the target does not need.
+    """
     levels = np.sort(np.asarray(levels_nT, float))
     if levels.size == 0 or np.any(~np.isfinite(levels)) or np.any(levels <= 0):
         raise PlanError("magnitudes must be positive numbers of nT")
@@ -230,68 +553,43 @@ def plan_scan(guess: SensorGuess, levels_nT, target_deg: float, base_rows: int =
     if not (np.isfinite(target_deg) and target_deg > 0):
         raise PlanError(f"the target axis accuracy must be a positive number of degrees, got {target_deg}")
     k_n = levels.size
-    cand = fibonacci_sphere(candidates)
     base = [uniform_directions(base_rows, k) for k in range(k_n)]
-    u_all = np.vstack([cand] + base)
-    geo = _Geometry(guess, u_all, k_n, levels, _leak_term(levels))
-    cand_idx = np.arange(candidates)
-    design = [candidates + k * base_rows + np.arange(base_rows) for k in range(k_n)]
+    pool = _Pool(guess, levels, base, fibonacci_sphere(candidates))
     target_var = np.radians(target_deg) ** 2
-    reached = False
-    while True:
-        info, pieces = design_information(geo, design)
-        cov = _covariance(info)
-        std = axis_std_deg(cov, geo.n_beams)
-        if np.all(std <= target_deg):
-            reached = True
-            break
-        total = sum(d.size for d in design)
-        if total >= max_rows:
-            break
-        # Weight each beam's angles by how far its variance is above the target.
-        weights = np.zeros(cov.shape[0])
-        for b in range(geo.n_beams):
-            var = cov[2 * b, 2 * b] + cov[2 * b + 1, 2 * b + 1]
-            weights[2 * b:2 * b + 2] = max(var / target_var, 1e-3)
-        gains = np.array([_candidate_gains(geo, cand_idx, k, pieces[k], cov, weights) for k in range(k_n)])
-        batch = max(k_n, int(BATCH_FRACTION * total))
-        batch = min(batch, max_rows - total)
-        best = np.argsort(gains, axis=None)[::-1][:batch]
-        lev, which = np.unravel_index(best, gains.shape)
-        for k in range(k_n):
-            add = cand_idx[which[lev == k]]
-            if add.size:
-                design[k] = np.concatenate([design[k], add])
-    uniform = expected_axis_std(guess, [uniform_directions(d.size, k) for k, d in enumerate(design)], levels)
+    n_base = base_rows * k_n
+    v_base = _beam_variances(_covariance(pool.information(pool.fixed_weights())[0]), pool.n_beams)
+    bound_rows = bound_lower = float(n_base)
+    if np.all(v_base <= target_var):
+        counts = [w.astype(int) for w in pool.fixed_weights()]
+    else:
+        cont = continuous_design(pool, max(n_base * (float(v_base.max()) / target_var - 1.0), 1.0), target_var)
+        bound_rows = n_base + cont.n_free * float(cont.axis_var.max()) / target_var
+        bound_lower = n_base + cont.n_free_lower
+        if cont.n_free + n_base > max_rows:
+            cont.weights = [np.concatenate([w[:nf], w[nf:] * (max_rows - n_base) / cont.n_free])
+                            for w, nf in zip(cont.weights, pool.n_fixed)]
+        counts = _round_counts(pool, cont)
+        counts = _complete(pool, counts, target_var, max_rows)
+        counts = _trim(pool, counts, target_var)
+    info, _ = pool.information(counts)
+    v = _beam_variances(_covariance(info), pool.n_beams)
+    std = np.degrees(np.sqrt(v))
+    reached = bool(np.all(std <= target_deg * (1 + 1e-9)))
+    per_level = [c.sum() for c in counts]
+    uniform = expected_axis_std(guess, [uniform_directions(int(n), k) for k, n in enumerate(per_level)], levels)
     order_u, order_level = [], []
     last = None
-    for k, d in enumerate(design):
-        pts = u_all[d]
-        idx = tour(pts, None if last is None else last)
-        order_u.append(pts[idx] * levels[k])
-        order_level.append(np.full(idx.size, k))
+    for k, c in enumerate(counts):
+        rows = np.flatnonzero(c)
+        pts = pool.u[k][rows]
+        idx = tour(pts, last)
+        order_u.append(np.repeat(pts[idx], c[rows][idx], axis=0) * levels[k])
+        order_level.append(np.full(int(c.sum()), k))
         last = pts[idx[-1]]
     field = np.vstack(order_u)
     steps = np.linalg.norm(np.diff(field, axis=0), axis=1)
     return ScanPlan(field, np.concatenate(order_level), levels, std, uniform, float(target_deg), reached,
-                    float(steps.sum()), float(steps.max() if steps.size else 0.0))
-
-
-def _candidate_gains(geo: _Geometry, idx: np.ndarray, level: int, pieces: list, cov: np.ndarray,
-                     weights: np.ndarray) -> np.ndarray:
-    """Return, per candidate direction at a level, the fall of sum(weights * axis variances) if it were added."""
-    a, d = geo.rows(idx, level)
-    w = 1.0 / geo.guess.noise_std
-    rows = []
-    for ch in range(a.shape[0]):
-        proj = (d[ch] - a[ch] @ pieces[ch]) * w[ch]              # (M, n_theta) complex
-        rows.extend([proj.real, proj.imag])
-    g = np.stack(rows, axis=1)                                    # (M, 2C, n_theta)
-    x = g @ cov                                                   # (M, 2C, n_theta)
-    s = np.eye(g.shape[1])[None] + x @ np.swapaxes(g, 1, 2)       # (M, 2C, 2C)
-    y = x * weights[None, None, :]
-    # Woodbury: the new covariance is cov - X^T S^-1 X; its weighted trace falls by tr(S^-1 X W X^T).
-    return np.einsum("mij,mji->m", np.linalg.inv(s), y @ np.swapaxes(x, 1, 2))
+                    float(steps.sum()), float(steps.max() if steps.size else 0.0), float(bound_rows), float(bound_lower))
 
 
 def tour(points: np.ndarray, start: np.ndarray | None = None, passes: int = 3) -> np.ndarray:
