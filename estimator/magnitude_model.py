@@ -166,6 +166,19 @@ def _kfold_residual(design: np.ndarray, target: np.ndarray, fold_of: np.ndarray,
     return out
 
 
+def _reject(design: np.ndarray, delta: np.ndarray, keep: np.ndarray, limit: float, rounds: int) -> np.ndarray:
+    """Return the kept rows (N,) bool: within `limit` robust sigmas of the fit to the kept rows, refitted until stable."""
+    for _ in range(rounds):
+        sol = _least_squares(design[keep], delta[keep])
+        r = delta - design @ sol
+        scale = max(_robust_std(r[keep]), IMMATERIAL_NT)
+        new_keep = np.isfinite(delta) & (np.abs(r) <= limit * scale)
+        if np.array_equal(new_keep, keep):
+            break
+        keep = new_keep
+    return keep
+
+
 @dataclass
 class IsotopeFit:
     """One isotope's fitted frequency error: degree, coefficients (n_env, (L+1)^2) nT, diagnostics."""
@@ -191,16 +204,7 @@ def _fit_isotope(names, u, b_nT, delta, reference_nT, candidates, seed) -> tuple
     # reject rows beyond a family-wise normal limit of the MAD scale, and repeat.
     start = min(feasible[-1], 3)
     limit = float(_stats().norm.isf(FAMILY_ALPHA / (2 * n)))
-    keep = np.isfinite(delta)
-    design_start = _design(names, start, u, b_nT, reference_nT)
-    for _ in range(5):
-        sol = _least_squares(design_start[keep], delta[keep])
-        r = delta - design_start @ sol
-        scale = max(_robust_std(r[keep]), IMMATERIAL_NT)
-        new_keep = np.isfinite(delta) & (np.abs(r) <= limit * scale)
-        if np.array_equal(new_keep, keep):
-            break
-        keep = new_keep
+    keep = _reject(_design(names, start, u, b_nT, reference_nT), delta, np.isfinite(delta), limit, rounds=5)
     scores: dict[int, float] = {}
     for d in feasible:
         design = _design(names, d, u, b_nT, reference_nT)
@@ -210,14 +214,7 @@ def _fit_isotope(names, u, b_nT, delta, reference_nT, candidates, seed) -> tuple
     chosen = min(d for d, s in scores.items() if s <= max(best * (1 + DEGREE_TOLERANCE), best + IMMATERIAL_NT))
     design = _design(names, chosen, u, b_nT, reference_nT)
     # Final rejection against the chosen model (rows the start model's lower degree misjudged come back).
-    for _ in range(3):
-        sol = _least_squares(design[keep], delta[keep])
-        r = delta - design @ sol
-        scale = max(_robust_std(r[keep]), IMMATERIAL_NT)
-        new_keep = np.isfinite(delta) & (np.abs(r) <= limit * scale)
-        if np.array_equal(new_keep, keep):
-            break
-        keep = new_keep
+    keep = _reject(design, delta, keep, limit, rounds=3)
     a = design[keep]
     gram = a.T @ a
     sol = _solve_normal(gram, a.T @ delta[keep])
@@ -496,22 +493,14 @@ class MagnitudeModel:
         if not isinstance(degrees, list) or len(degrees) != 2 or \
                 any(isinstance(d, bool) or not isinstance(d, int) or not 0 <= d <= 10 for d in degrees):
             raise ValueError(f"magnitude_model.degrees: expected two integers 0..10, got {degrees!r}")
-        coef = doc["coefficients_nT"]
-        if not isinstance(coef, list) or len(coef) != 2:
-            raise ValueError("magnitude_model.coefficients_nT: expected one table per isotope (2)")
         tables = []
-        for i, c in enumerate(coef):
-            arr = _number_array(c, f"coefficients_nT[{i}]")
+        for i, arr in enumerate(_isotope_arrays(doc, "coefficients_nT", "table")):
             want = (len(envelopes), n_harmonics(degrees[i]))
             if arr.shape != want:
                 raise ValueError(f"magnitude_model.coefficients_nT[{i}]: expected shape {want}, got {arr.shape}")
             tables.append(arr)
-        packed = doc["unit_covariance_upper"]
-        if not isinstance(packed, list) or len(packed) != 2:
-            raise ValueError("magnitude_model.unit_covariance_upper: expected one list per isotope (2)")
         covs = []
-        for i, c in enumerate(packed):
-            arr = _number_array(c, f"unit_covariance_upper[{i}]")
+        for i, arr in enumerate(_isotope_arrays(doc, "unit_covariance_upper", "list")):
             p = tables[i].size
             if arr.shape != (p * (p + 1) // 2,):
                 raise ValueError(f"magnitude_model.unit_covariance_upper[{i}]: expected {p * (p + 1) // 2} "
@@ -549,6 +538,15 @@ def _number(value, key: str) -> float:
     if isinstance(value, bool) or not isinstance(value, (int, float)) or not math.isfinite(value):
         raise ValueError(f"magnitude_model.{key}: expected a finite number, got {value!r}")
     return float(value)
+
+
+def _isotope_arrays(doc: dict, key: str, what: str):
+    """Yield doc[key]'s two arrays of numbers (one per isotope), each checked when reached; ValueError naming the key."""
+    value = doc[key]
+    if not isinstance(value, list) or len(value) != 2:
+        raise ValueError(f"magnitude_model.{key}: expected one {what} per isotope (2)")
+    for i, c in enumerate(value):
+        yield _number_array(c, f"{key}[{i}]")
 
 
 def _number_array(value, key: str) -> np.ndarray:

@@ -100,6 +100,12 @@ def _pow5_factor(v):
     return count
 
 
+@njit(cache=True, inline="always")
+def _drop_digit(vr, vp, vm, vr_tz, last):
+    """Return (vr, vp, vm, vr_tz, last) with one decimal digit dropped (vr_tz: the digits before `last` were all 0)."""
+    return vr // _U10, vp // _U10, vm // _U10, vr_tz and last == _U0, vr % _U10
+
+
 @njit(cache=True)
 def _shortest(ieee_m, ieee_e):
     """Return (digits, exponent) with digits * 10**exponent the shortest round-trip decimal of a finite nonzero double."""
@@ -154,19 +160,11 @@ def _shortest(ieee_m, ieee_e):
         # Rare general case: exact trailing zeros decide the rounding.
         while vp // _U10 > vm // _U10:
             vm_tz = vm_tz and (vm % _U10 == _U0)
-            vr_tz = vr_tz and (last == _U0)
-            last = vr % _U10
-            vr = vr // _U10
-            vp = vp // _U10
-            vm = vm // _U10
+            vr, vp, vm, vr_tz, last = _drop_digit(vr, vp, vm, vr_tz, last)
             removed += 1
         if vm_tz:
             while vm % _U10 == _U0:
-                vr_tz = vr_tz and (last == _U0)
-                last = vr % _U10
-                vr = vr // _U10
-                vp = vp // _U10
-                vm = vm // _U10
+                vr, vp, vm, vr_tz, last = _drop_digit(vr, vp, vm, vr_tz, last)
                 removed += 1
         if vr_tz and last == _U5 and vr % _U2 == _U0:
             last = np.uint64(4)          # exactly ...50..0: round half to even

@@ -23,8 +23,7 @@ from dataclasses import dataclass, field
 
 from fieldvane import __version__
 from fieldvane.estimator.samples import Sample
-from fieldvane.io.capture import (EVENT_DATA, EVENT_LINK_OPEN, EVENT_LOST, CaptureReader,
-                                  CaptureWriter, capture_files, capture_runs)
+from fieldvane.io.capture import EVENT_DATA, EVENT_LOST, CaptureReader, CaptureWriter, capture_files
 from fieldvane.io.capture_thread import DEFAULT_CAPTURE_BUFFER_BYTES, CaptureThread
 from fieldvane.io.csv_lines import CsvLineDecoder
 from fieldvane.io.errors import EXIT_CAPTURE_LOST, EXIT_FAILURE, EXIT_INTERRUPTED, InputError
@@ -314,16 +313,11 @@ class LiveLoop:
             self._estimate_batches(samples, host_ns)
             return
         for i, sample in enumerate(samples):
-            if self._must_pause():
-                self._leftover.extend(samples[i:])
-                self._leftover_ns.extend(host_ns[i:])
+            if self._paused_at(samples, host_ns, i):
                 return
             self.sample_host_times_ns = host_ns[i:i + 1]
             self.samples += 1
-            if sample.restarted:
-                self.restarts += 1
-                self.log(f"fieldvane live: the sensor restarted (sequence reset) at t={sample.t!r}; "
-                         "tracking starts afresh")
+            self._note_restart(sample)
             try:
                 record = self.estimate(sample)
             except Exception as exc:          # one bad sample must not end a days-long run
@@ -331,28 +325,18 @@ class LiveLoop:
                 if self.estimate_errors <= self.max_logged_errors:
                     self.log(f"fieldvane live: estimate failed at t={sample.t!r}: {exc!r}")
                 continue
-            if record is None:
-                continue
-            self.records += 1
-            self.last_record = record
-            for sink in self.sinks:
-                sink.emit(record)
+            self._deliver(record)
 
     def _estimate_batches(self, samples: list[Sample], host_ns: list[int], size: int = 512) -> None:
         """Estimate samples a batch at a time (the pause is checked between batches)."""
         for start in range(0, len(samples), size):
-            if self._must_pause():
-                self._leftover.extend(samples[start:])
-                self._leftover_ns.extend(host_ns[start:])
+            if self._paused_at(samples, host_ns, start):
                 return
             batch = samples[start:start + size]
             self.sample_host_times_ns = host_ns[start:start + size]
             self.samples += len(batch)
             for sample in batch:
-                if sample.restarted:
-                    self.restarts += 1
-                    self.log(f"fieldvane live: the sensor restarted (sequence reset) at t={sample.t!r}; "
-                             "tracking starts afresh")
+                self._note_restart(sample)
             try:
                 records = self.estimate_batch(batch)
             except Exception as exc:          # a bad batch must not end a days-long run
@@ -361,12 +345,31 @@ class LiveLoop:
                     self.log(f"fieldvane live: estimate failed at t={batch[0].t!r}..{batch[-1].t!r}: {exc!r}")
                 continue
             for record in records:
-                if record is None:
-                    continue
-                self.records += 1
-                self.last_record = record
-                for sink in self.sinks:
-                    sink.emit(record)
+                self._deliver(record)
+
+    def _paused_at(self, samples: list[Sample], host_ns: list[int], i: int) -> bool:
+        """Return True (samples[i:] kept for later) when the loop must pause before sample i."""
+        if not self._must_pause():
+            return False
+        self._leftover.extend(samples[i:])
+        self._leftover_ns.extend(host_ns[i:])
+        return True
+
+    def _note_restart(self, sample: Sample) -> None:
+        """Count and log a sensor restart (the decoder marks the first sample after a sequence reset)."""
+        if sample.restarted:
+            self.restarts += 1
+            self.log(f"fieldvane live: the sensor restarted (sequence reset) at t={sample.t!r}; "
+                     "tracking starts afresh")
+
+    def _deliver(self, record) -> None:
+        """Count an estimate record and hand it to every sink (None: the sample gave no estimate)."""
+        if record is None:
+            return
+        self.records += 1
+        self.last_record = record
+        for sink in self.sinks:
+            sink.emit(record)
 
     # -- reporting problems at once (from this thread only)
 

@@ -60,21 +60,8 @@ def _partial_name(path: Path) -> Path:
 @contextmanager
 def atomic_file(path: str | os.PathLike) -> Iterator[Path]:
     """Yield a temporary path beside `path`; on success rename it over `path`, on failure delete it."""
-    final = Path(path)
-    try:
-        final.parent.mkdir(parents=True, exist_ok=True)
-    except OSError as exc:
-        raise InputError(f"cannot create the output's folder: {exc.strerror}", str(final.parent)) from None
-    tmp = _partial_name(final)
-    try:
+    with atomic_files([path]) as (tmp,):
         yield tmp
-        os.replace(tmp, final)
-    except BaseException:
-        try:
-            tmp.unlink()
-        except OSError:
-            pass
-        raise
 
 
 @contextmanager
@@ -82,7 +69,10 @@ def atomic_files(paths: Iterable[str | os.PathLike]) -> Iterator[list[Path]]:
     """Yield temporary paths for several outputs that succeed or fail together (e.g. CAL.json + CAL.npz)."""
     finals = [Path(p) for p in paths]
     for p in finals:
-        p.parent.mkdir(parents=True, exist_ok=True)
+        try:
+            p.parent.mkdir(parents=True, exist_ok=True)
+        except OSError as exc:
+            raise InputError(f"cannot create the output's folder: {exc.strerror}", str(p.parent)) from None
     tmps = [_partial_name(p) for p in finals]
     try:
         yield tmps

@@ -401,12 +401,28 @@ def plot_magnitudes(path, est: dict, truth: dict | None = None) -> Path:
         if k == 0 or ylabel.startswith("minus"):
             handles, _ = ax.get_legend_handles_labels()
             if handles:
-                ax.legend(loc="lower center", bbox_to_anchor=(0.5, 1.0), ncol=4, fontsize=8, frameon=False)
+                legend_above(ax, ncol=4)
     axes[-1].set_xlabel(tlabel)
     if notes:
         fig.supxlabel("\n".join(notes), fontsize=8, x=0.02, ha="left")
     fig.suptitle(title, fontsize=10)
     return save(fig, path)
+
+
+def _panel_column(n: int):
+    """Return (figure, list of n axes stacked in one column) for the still-stretch noise figures."""
+    fig = new_figure(8.5, 1.6 + 3.0 * n)
+    return fig, list(fig.subplots(n, 1, squeeze=False)[:, 0])
+
+
+def _finish_log_axes(ax, xlabel: str, ylabel: str, ncol: int) -> None:
+    """Label log-log axes with plain numbers, grid them and put the legend above."""
+    ax.set_xlabel(xlabel)
+    ax.set_ylabel(ylabel)
+    plain_ticks(ax.xaxis, log=True)
+    plain_ticks(ax.yaxis, log=True)
+    ax.grid(alpha=0.3, which="both")
+    legend_above(ax, ncol=ncol)
 
 
 def plot_allan(path, still) -> Path:
@@ -417,8 +433,7 @@ def plot_allan(path, still) -> Path:
     panels = [("direction", still.dir_adev, "deg")]
     if still.b_adev is not None:
         panels.append(("|B|", still.b_adev, "nT"))
-    fig = new_figure(8.5, 1.6 + 3.0 * len(panels))
-    axes = list(fig.subplots(len(panels), 1, squeeze=False)[:, 0])
+    fig, axes = _panel_column(len(panels))
     for ax, (name, adev, unit) in zip(axes, panels):
         ax.loglog(adev.tau_s, adev.adev, "o-", color="tab:blue", markersize=4, linewidth=1.2,
                   label=f"overlapping Allan deviation of {name}")
@@ -428,12 +443,7 @@ def plot_allan(path, still) -> Path:
             # White samples with the single-sample bound as std: ADEV = bound / sqrt(tau fs).
             ax.loglog(adev.tau_s, still.bound_median_deg / np.sqrt(adev.tau_s * still.rate_hz), "--",
                       color="tab:red", linewidth=1.0, label="single-sample Cramer-Rao bound, averaged as white")
-        ax.set_xlabel("averaging time tau (s)")
-        ax.set_ylabel(f"Allan deviation ({unit})")
-        plain_ticks(ax.xaxis, log=True)
-        plain_ticks(ax.yaxis, log=True)
-        ax.grid(alpha=0.3, which="both")
-        ax.legend(loc="lower center", bbox_to_anchor=(0.5, 1.0), ncol=2, fontsize=8, frameon=False)
+        _finish_log_axes(ax, "averaging time tau (s)", f"Allan deviation ({unit})", ncol=2)
     fig.suptitle(f"Allan deviation of the static stretch {still.start_s:.6g} to {still.end_s:.6g} s ({still.samples} samples at "
                  f"{still.rate_hz:.6g} Hz, {still.source})" +
                  (f"\n{still.b_note}" if still.b_note else ""), fontsize=10)
@@ -445,8 +455,7 @@ def plot_spectrum(path, still) -> Path:
     panels = [("direction", still.dir_spec, still.dir_white, "deg")]
     if still.b_spec is not None:
         panels.append(("|B|", still.b_spec, still.b_white, "nT"))
-    fig = new_figure(8.5, 1.6 + 3.0 * len(panels))
-    axes = list(fig.subplots(len(panels), 1, squeeze=False)[:, 0])
+    fig, axes = _panel_column(len(panels))
     lo, hi = still.band_hz
     for ax, (name, spec, level, unit) in zip(axes, panels):
         f, asd = spec.freq_hz[1:], spec.asd[1:]               # the DC bin has no place on a log axis
@@ -457,12 +466,7 @@ def plot_spectrum(path, still) -> Path:
         if name == "direction" and math.isfinite(still.bound_density_deg):
             ax.axhline(still.bound_density_deg, color="tab:red", linestyle="--", linewidth=1.0,
                        label=f"single-sample Cramer-Rao bound x sqrt(2/fs) = {still.bound_density_deg:.3g}")
-        ax.set_xlabel("frequency (Hz)")
-        ax.set_ylabel(f"{unit}/sqrt(Hz)")
-        plain_ticks(ax.xaxis, log=True)
-        plain_ticks(ax.yaxis, log=True)
-        ax.grid(alpha=0.3, which="both")
-        ax.legend(loc="lower center", bbox_to_anchor=(0.5, 1.0), ncol=1, fontsize=8, frameon=False)
+        _finish_log_axes(ax, "frequency (Hz)", f"{unit}/sqrt(Hz)", ncol=1)
     fig.suptitle(f"Noise spectrum of the static stretch {still.start_s:.6g} to {still.end_s:.6g} s "
                  f"(one-sided amplitude density)" + (f"\n{still.b_note}" if still.b_note else ""), fontsize=10)
     return save(fig, path)

@@ -22,20 +22,22 @@ def shipped_dir(kind: str) -> Path | None:
     return None
 
 
-def example_scenarios() -> dict[str, Path]:
-    """Return the shipped example scenarios, name (file stem) -> path, sorted by name."""
-    folder = shipped_dir("examples")
+def _shipped_files(kind: str, pattern: str) -> dict[str, Path]:
+    """Return the files of a shipped folder matching a glob pattern, name (file stem) -> path, sorted by name."""
+    folder = shipped_dir(kind)
     if folder is None:
         return {}
-    return {p.stem: p for p in sorted(folder.glob("*.toml"))}
+    return {p.stem: p for p in sorted(folder.glob(pattern))}
+
+
+def example_scenarios() -> dict[str, Path]:
+    """Return the shipped example scenarios, name (file stem) -> path, sorted by name."""
+    return _shipped_files("examples", "*.toml")
 
 
 def documents() -> dict[str, Path]:
     """Return the shipped documents, name (file stem) -> path, sorted by name."""
-    folder = shipped_dir("docs")
-    if folder is None:
-        return {}
-    return {p.stem: p for p in sorted(folder.glob("*.md"))}
+    return _shipped_files("docs", "*.md")
 
 
 def first_line_matching(path: Path, pattern: str) -> str:
@@ -47,3 +49,9 @@ def first_line_matching(path: Path, pattern: str) -> str:
             if m:
                 return m.group(1).strip()
     return ""
+
+
+def listing_lines(files: dict[str, Path], pattern: str) -> list[str]:
+    """Return one line per file, '  name  text' with the names aligned, the text being first_line_matching's."""
+    width = max((len(n) for n in files), default=0)
+    return [f"  {name:<{width}}  {first_line_matching(path, pattern)}" for name, path in files.items()]

@@ -9,7 +9,6 @@ from __future__ import annotations
 
 import math
 import re
-import sys
 from dataclasses import dataclass
 from datetime import datetime, timedelta, timezone
 from pathlib import Path
@@ -19,11 +18,7 @@ import numpy as np
 from fieldvane.estimator.geomagnetic import (attitude_matrix, checked_rotation, mounting_from_rotation_deg,
                                              slerp_attitude)
 from fieldvane.io.errors import InputError
-
-if sys.version_info >= (3, 11):
-    import tomllib
-else:  # pragma: no cover
-    import tomli as tomllib
+from fieldvane.io.tomlfile import TomlDoc, read_text
 
 SITE_VERSION = 1
 TEXT_WIDTH = 45                # IAGA-2002 header descriptions fill columns 25-69
@@ -79,60 +74,7 @@ def format_utc(seconds: float, decimals: int = 3) -> str:
 
 # ------------------------------------------------------------------------------------ TOML helpers
 
-def _read_text(path: Path) -> str:
-    """Return a file's text, refusing a missing file or bytes that are not UTF-8 (naming the line)."""
-    try:
-        data = path.read_bytes()
-    except OSError as exc:
-        raise InputError(f"cannot read: {exc.strerror}", str(path)) from None
-    try:
-        return data.decode("utf-8")
-    except UnicodeDecodeError as exc:
-        line = data[:exc.start].count(b"\n") + 1
-        raise InputError(f"not UTF-8 text (byte 0x{data[exc.start]:02x})", str(path), line) from None
-
-
-def _key_lines(text: str) -> dict[tuple[str, str], int]:
-    """Return {(section, key): line} for the simple 'key = value' lines of a TOML text (section '' at top)."""
-    out: dict[tuple[str, str], int] = {}
-    section = ""
-    for number, raw in enumerate(text.splitlines(), start=1):
-        line = raw.strip()
-        m = re.match(r"^\[\s*([^\[\]]+?)\s*\]\s*(#.*)?$", line)
-        if m:
-            section = m.group(1).strip().strip('"')
-            out.setdefault((section, ""), number)
-            continue
-        m = re.match(r'^("?)([A-Za-z0-9_\-]+)\1\s*=', line)
-        if m:
-            out.setdefault((section, m.group(2)), number)
-    return out
-
-
-class _Doc:
-    """A parsed TOML file with the line of each key, for error messages."""
-
-    def __init__(self, path: str, data: dict, lines: dict[tuple[str, str], int]):
-        self.path, self.data, self.lines = path, data, lines
-
-    @classmethod
-    def read(cls, path: Path) -> "_Doc":
-        """Return the parsed file, or raise InputError (not UTF-8, not TOML) naming the line."""
-        text = _read_text(path)
-        try:
-            data = tomllib.loads(text)
-        except tomllib.TOMLDecodeError as exc:
-            m = re.search(r"line (\d+)", str(exc))
-            raise InputError(f"not valid TOML: {exc}", str(path), int(m.group(1)) if m else None) from None
-        return cls(str(path), data, _key_lines(text))
-
-    def error(self, message: str, section: str, key: str = "") -> InputError:
-        line = self.lines.get((section, key)) or self.lines.get((section, ""))
-        name = f"{section}.{key}" if section and key else (key or section)
-        return InputError(message, self.path, line, name, kind="key")
-
-
-def _number(doc: _Doc, section: str, key: str, value, lo: float, hi: float) -> float:
+def _number(doc: TomlDoc, section: str, key: str, value, lo: float, hi: float) -> float:
     """Return a finite number within [lo, hi] or raise naming the key."""
     if isinstance(value, bool) or not isinstance(value, (int, float)):
         raise doc.error(f"expected a number, got {type(value).__name__}", section, key)
@@ -142,7 +84,7 @@ def _number(doc: _Doc, section: str, key: str, value, lo: float, hi: float) -> f
     return v
 
 
-def _text(doc: _Doc, section: str, key: str, value, width: int = TEXT_WIDTH) -> str:
+def _text(doc: TomlDoc, section: str, key: str, value, width: int = TEXT_WIDTH) -> str:
     """Return a non-empty one-line printable ASCII string of at most `width` characters."""
     if not isinstance(value, str):
         raise doc.error(f"expected a string, got {type(value).__name__}", section, key)
@@ -156,20 +98,20 @@ def _text(doc: _Doc, section: str, key: str, value, width: int = TEXT_WIDTH) -> 
     return v
 
 
-def _table(doc: _Doc, name: str) -> dict:
+def _table(doc: TomlDoc, name: str) -> dict:
     value = doc.data.get(name)
     if not isinstance(value, dict):
         raise doc.error(f"needs a [{name}] table", name)
     return value
 
 
-def _refuse_unknown(doc: _Doc, section: str, table: dict, allowed: set[str]) -> None:
+def _refuse_unknown(doc: TomlDoc, section: str, table: dict, allowed: set[str]) -> None:
     for key in table:
         if key not in allowed:
             raise doc.error(f"unknown key (allowed: {', '.join(sorted(allowed))})", section, key)
 
 
-def _matrix(doc: _Doc, section: str, key: str, value) -> np.ndarray:
+def _matrix(doc: TomlDoc, section: str, key: str, value) -> np.ndarray:
     """Return the proper rotation written as rows [[...], [...], [...]] or raise naming the key."""
     ok = (isinstance(value, list) and len(value) == 3
           and all(isinstance(r, list) and len(r) == 3 for r in value)
@@ -190,7 +132,7 @@ def mounting_from_table(mount, path: str | Path, lines: dict[tuple[str, str], in
     Accepts `rotation_deg = [rx, ry, rz]` (rotate about x, then y, then z) or `matrix = [[...], [...],
     [...]]` (rows of the rotation taking sensor-frame vectors to platform-frame vectors), not both.
     """
-    doc = _Doc(str(path), {}, lines or {})
+    doc = TomlDoc(str(path), {}, lines or {})
     if mount is None:
         return np.eye(3)
     if not isinstance(mount, dict):
@@ -211,7 +153,7 @@ def mounting_from_table(mount, path: str | Path, lines: dict[tuple[str, str], in
 
 def read_mounting(path: str | Path) -> np.ndarray:
     """Return the sensor -> platform rotation (3, 3) of a sensor TOML file's [mounting] table, errors with lines."""
-    doc = _Doc.read(Path(path))
+    doc = TomlDoc.read(Path(path))
     return mounting_from_table(doc.data.get("mounting"), path, doc.lines)
 
 
@@ -244,7 +186,7 @@ class Attitude:
 def read_attitude_csv(path: str | Path) -> tuple[np.ndarray, np.ndarray]:
     """Return (t (K,) s, platform -> NED matrices (K, 3, 3)) of a CSV with t, heading_deg, pitch_deg, roll_deg."""
     path = Path(path)
-    text = _read_text(path)
+    text = read_text(path)
     header: list[str] | None = None
     header_line = 0
     rows: list[tuple[float, float, float, float]] = []
@@ -292,7 +234,7 @@ def read_attitude_csv(path: str | Path) -> tuple[np.ndarray, np.ndarray]:
     return a[:, 0], attitude_matrix(a[:, 1], a[:, 2], a[:, 3])
 
 
-def _attitude(doc: _Doc, base: Path) -> Attitude:
+def _attitude(doc: TomlDoc, base: Path) -> Attitude:
     if "attitude" not in doc.data:
         raise doc.error("needs an [attitude] table: heading/pitch/roll, a matrix or a file", "attitude")
     table = _table(doc, "attitude")
@@ -351,7 +293,7 @@ class Site:
 def read_site_file(path: str | Path) -> Site:
     """Return the Site of a site TOML file, or raise InputError naming the file, line and key."""
     path = Path(path)
-    doc = _Doc.read(path)
+    doc = TomlDoc.read(path)
     for key in doc.data:
         if key not in ("version", "site", "attitude"):
             kind = "section" if isinstance(doc.data[key], dict) else "key"

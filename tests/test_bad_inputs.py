@@ -16,21 +16,14 @@ from pathlib import Path
 import numpy as np
 import pytest
 
-from fieldvane.io.cli import main
+from cli_helpers import MINIMAL_SENSOR, make_small_bench, run_cli, write_still_estimates
 from fieldvane.io.capture import MAGIC, CaptureWriter
 from fieldvane.io.wire import Frame, encode_frame
 
 ROOT = Path(__file__).resolve().parent.parent
 EX = ROOT / "examples"
 
-SENSOR = """version = 1
-[pumps.a]
-axis = [1, 0, 0]
-[pumps.b]
-axis = [0, 1, 0]
-[probes.1]
-axis = [0, 0, 1]
-[probes.2]
+SENSOR = MINIMAL_SENSOR + """[probes.2]
 axis = [0.6, 0.3, 0.74]
 """
 FILTER = "version = 1\n[filter]\nmax_gap_s = 2\n"
@@ -40,14 +33,8 @@ FILTER = "version = 1\n[filter]\nmax_gap_s = 2\n"
 def bench(tmp_path_factory):
     """A small bench: calibration, a short recording, an estimates file, a capture, config files."""
     d = tmp_path_factory.mktemp("bad_inputs")
-    # The shortest scan that calibrates (one magnitude, enough of the sphere): keeps this file fast.
-    assert main(["simulate", str(EX / "calibration_scan_single.toml"), "-o", str(d / "scan.csv"),
-                 "--duration", "9"]) == 0
-    assert main(["calibrate", str(d / "scan.csv"), "-o", str(d / "cal.json")]) == 0
-    assert main(["simulate", str(EX / "static.toml"), "-o", str(d / "rec.csv"), "--duration", "1"]) == 0
-    # An estimates CSV written by hand (columns of DESIGN section 4): a still field along +z.
-    rows = [f"{0.005 * i!r},0.0,0.0,1.0,20000.0,0.0,0.0,20000.0,0.1,1" for i in range(400)]
-    (d / "est.csv").write_text("t,ux,uy,uz,b_nT,bx_nT,by_nT,bz_nT,sigma_deg,flags\n" + "\n".join(rows) + "\n")
+    make_small_bench(d, still_s=1)
+    write_still_estimates(d / "est.csv", b_nT=20000)
     # A capture of the recording's samples as wire frames.
     from fieldvane.io.recording import read_recording
     block, _ = read_recording(d / "rec.csv")
@@ -99,16 +86,6 @@ def bench(tmp_path_factory):
     (d / "report_done").mkdir()
     (d / "report_done" / "summary.md").write_text("old report\n", encoding="utf-8")
     return d
-
-
-def cli(argv, capsys):
-    """Return (exit code, stdout, stderr) of `fieldvane argv` run in-process."""
-    try:
-        code = main([str(a) for a in argv])
-    except SystemExit as exc:               # argparse's own errors (usage, exit 2)
-        code = exc.code
-    out, err = capsys.readouterr()
-    return code, out, err
 
 
 # (id, argv with {d} for the bench folder, exit code, regex the error line must match)
@@ -268,7 +245,7 @@ def _argv(row_argv, d):
 def test_bad_input_gets_one_line_and_exit_code(bench, capsys, name, argv, code, pattern):
     (bench / "scen.toml").write_text((EX / "static.toml").read_text())
     before = sorted(p.name for p in bench.iterdir())
-    got, out, err = cli(_argv(argv, bench), capsys)
+    got, out, err = run_cli(_argv(argv, bench), capsys)
     text = out + err
     assert "Traceback" not in text
     assert got == code, text[-1500:]
@@ -284,19 +261,19 @@ def test_force_replaces_outputs_but_never_inputs(bench, capsys):
     d = bench
     out = d / "forced.csv"
     out.write_text("old\n")
-    assert cli(["simulate", EX / "static.toml", "-o", out, "--duration", "0.5", "--force"], capsys)[0] == 0
+    assert run_cli(["simulate", EX / "static.toml", "-o", out, "--duration", "0.5", "--force"], capsys)[0] == 0
     assert out.read_text().startswith("#")
-    assert cli(["emit", EX / "static.toml", "--to", f"file:{out}", "--duration", "0.5", "--force"], capsys)[0] == 0
+    assert run_cli(["emit", EX / "static.toml", "--to", f"file:{out}", "--duration", "0.5", "--force"], capsys)[0] == 0
     assert out.read_bytes()[:1] == b"\x00"                # binary frames now
     m = d / "map_forced"
-    assert cli(["map", "-c", d / "cal.json", "--no-png", "--points", "100", "-o", m], capsys)[0] == 0
-    code, _, err = cli(["map", "-c", d / "cal.json", "--no-png", "--points", "100", "-o", m], capsys)
+    assert run_cli(["map", "-c", d / "cal.json", "--no-png", "--points", "100", "-o", m], capsys)[0] == 0
+    code, _, err = run_cli(["map", "-c", d / "cal.json", "--no-png", "--points", "100", "-o", m], capsys)
     assert code == 2 and "output file exists" in err
-    assert cli(["map", "-c", d / "cal.json", "--no-png", "--points", "100", "-o", m, "--force"], capsys)[0] == 0
+    assert run_cli(["map", "-c", d / "cal.json", "--no-png", "--points", "100", "-o", m, "--force"], capsys)[0] == 0
     r = d / "report_forced"
-    assert cli(["report", d / "est.csv", "-o", r], capsys)[0] == 0
-    assert cli(["report", d / "est.csv", "-o", r], capsys)[0] == 2
-    assert cli(["report", d / "est.csv", "-o", r, "--force"], capsys)[0] == 0
+    assert run_cli(["report", d / "est.csv", "-o", r], capsys)[0] == 0
+    assert run_cli(["report", d / "est.csv", "-o", r], capsys)[0] == 2
+    assert run_cli(["report", d / "est.csv", "-o", r, "--force"], capsys)[0] == 0
     # The temporary names never outlive the command.
     assert not [p for p in d.rglob(".*partial*")]
 
@@ -307,7 +284,7 @@ def test_run_refuses_a_read_only_capture_folder_before_opening_the_port(bench, c
     def refuse(*a, **k):
         raise OSError(errno.EROFS, os.strerror(errno.EROFS))
     monkeypatch.setattr(capture_module, "_os_open", refuse)
-    code, out, err = cli(["run", "--port", bench / "no-port", "-c", bench / "cal.json", "--out", bench / "o3.csv",
+    code, out, err = run_cli(["run", "--port", bench / "no-port", "-c", bench / "cal.json", "--out", bench / "o3.csv",
                           "--capture", bench / "ro_cap"], capsys)
     assert code == 2 and "Traceback" not in err
     assert "ro_cap: option '--capture': cannot write capture files here: Read-only file system" in err
@@ -315,7 +292,7 @@ def test_run_refuses_a_read_only_capture_folder_before_opening_the_port(bench, c
 
 
 def test_truncated_capture_replays_with_a_warning(bench, capsys):
-    code, out, err = cli(["replay", bench / "cap_cut", "-c", bench / "cal.json", "-o", bench / "cut.csv"], capsys)
+    code, out, err = run_cli(["replay", bench / "cap_cut", "-c", bench / "cal.json", "-o", bench / "cut.csv"], capsys)
     assert code == 0 and "Traceback" not in err
     assert "file ends inside the record at byte" in err
 

@@ -13,6 +13,7 @@ import numpy as np
 import pytest
 from scipy.spatial.transform import Rotation
 
+from cli_helpers import make_small_bench, run_cli, write_still_estimates
 from fieldvane.firmware_sim.scenario import ScenarioError, loads_scenario, simulate
 from fieldvane.io.capture import Chunk, CaptureWriter
 from fieldvane.io.cli import main
@@ -85,10 +86,7 @@ def test_reader_names_the_line_of_a_bad_utc(tmp_path):
 def bench(tmp_path_factory):
     """A small calibration, a short still recording, and a capture of it whose chunks carry known host times."""
     d = tmp_path_factory.mktemp("geo_commands")
-    assert main(["simulate", str(EX / "calibration_scan_single.toml"), "-o", str(d / "scan.csv"),
-                 "--duration", "9"]) == 0
-    assert main(["calibrate", str(d / "scan.csv"), "-o", str(d / "cal.json")]) == 0
-    assert main(["simulate", str(EX / "static.toml"), "-o", str(d / "rec.csv"), "--duration", "2"]) == 0
+    make_small_bench(d, still_s=2)
     block, _ = read_recording(d / "rec.csv")
     host0 = 1796207370_000_000_000
     chunk_times = []
@@ -271,9 +269,7 @@ def bad_files(bench):
     (d / "bad_att.csv").write_text("t,heading_deg,pitch_deg,roll_deg\n0,10,0,0\n1,11,95,0\n", encoding="utf-8")
     (d / "good_att.csv").write_text("t,heading_deg,pitch_deg,roll_deg\n0,10,0,0\n1e10,11,0,0\n", encoding="utf-8")
     (d / "bad_start.csv").write_text("# start_utc: 2026-13-02T00:00:00Z\n" + (d / "rec.csv").read_text(), "utf-8")
-    (d / "est_plain.csv").write_text("t,ux,uy,uz,b_nT,bx_nT,by_nT,bz_nT,sigma_deg,flags\n"
-                                     + "".join(f"{0.005 * i!r},0.0,0.0,1.0,48000.0,0.0,0.0,48000.0,0.1,1\n"
-                                               for i in range(400)), encoding="utf-8")
+    write_still_estimates(d / "est_plain.csv", b_nT=48000)
     return d
 
 
@@ -315,11 +311,7 @@ ROWS = [
 def test_bad_geographic_input_gets_one_line_and_exit_2(bad_files, capsys, name, argv, pattern):
     d = bad_files
     before = sorted(p.name for p in d.iterdir())
-    try:
-        code = main([a.replace("{d}", str(d)) for a in argv])
-    except SystemExit as exc:
-        code = exc.code
-    out, err = capsys.readouterr()
+    code, out, err = run_cli([a.replace("{d}", str(d)) for a in argv], capsys)
     assert "Traceback" not in out + err
     assert code == 2, out + err
     lines = [x for x in err.splitlines() if "error" in x]

@@ -196,6 +196,15 @@ def _pty(path):
     return master, slave
 
 
+def _end_child(proc, master, slave):
+    """Kill the child if it is still running and close both ends of its pty."""
+    if proc.poll() is None:
+        proc.kill()
+        proc.wait(TIMEOUT)
+    os.close(master)
+    os.close(slave)
+
+
 def test_pty_port_vanishes_mid_run_and_returns(tmp_path):
     path = str(tmp_path / "sensor")
     master, slave = _pty(path)
@@ -316,11 +325,7 @@ def test_sigterm_flushes_sinks_and_prints_summary(tmp_path):
         proc.send_signal(signal.SIGTERM)
         rest_out, rest_err = proc.communicate(timeout=TIMEOUT)
     finally:
-        if proc.poll() is None:
-            proc.kill()
-            proc.wait(TIMEOUT)
-        os.close(master)
-        os.close(slave)
+        _end_child(proc, master, slave)
     assert proc.returncode == 130
     records = [json.loads(x) for x in (out + rest_out).splitlines()]
     assert [r["t"] for r in records] == [f.t_ns / 1e9 for f in frames]
@@ -619,11 +624,7 @@ def test_sigterm_under_a_full_backlog_stops_at_once_and_keeps_every_byte(tmp_pat
         _, rest = proc.communicate(timeout=TIMEOUT)
         stop_s = time.monotonic() - sent_at      # reported, not asserted (benchmarks measure speed)
     finally:
-        if proc.poll() is None:
-            proc.kill()
-            proc.wait(TIMEOUT)
-        os.close(master)
-        os.close(slave)
+        _end_child(proc, master, slave)
     text = (err + rest).decode()
     print(f"\nSIGTERM to exit under a backlog of {len(frames)} frames: {stop_s:.2f} s")
     assert proc.returncode == 130, text[-2000:]
@@ -645,11 +646,7 @@ def test_second_ctrl_c_abandons_a_slow_capture_and_counts_what_it_lost(tmp_path)
         proc.send_signal(signal.SIGINT)
         _, rest = proc.communicate(timeout=TIMEOUT)
     finally:
-        if proc.poll() is None:
-            proc.kill()
-            proc.wait(TIMEOUT)
-        os.close(master)
-        os.close(slave)
+        _end_child(proc, master, slave)
     text = (err + rest).decode()
     assert proc.returncode == EXIT_CAPTURE_LOST, text[-2000:]
     assert "RAW BYTES LOST" in text and "Traceback" not in text

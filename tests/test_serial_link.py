@@ -93,12 +93,18 @@ def test_pty_vanishes_and_returns(tmp_path):
         os.close(slave)
 
 
-def test_socket_url_server_restart():
+def _listen(port):
+    """Return a TCP server socket listening on 127.0.0.1:port (0: any free port), accepts timing out after TIMEOUT."""
     server = socket.socket()
-    server.setsockopt(socket.SOL_SOCKET, socket.SO_REUSEADDR, 1)
-    server.bind(("127.0.0.1", 0))
+    server.setsockopt(socket.SOL_SOCKET, socket.SO_REUSEADDR, 1)   # the restart binds the same port again
+    server.bind(("127.0.0.1", port))
     server.listen(1)
     server.settimeout(TIMEOUT)
+    return server
+
+
+def test_socket_url_server_restart():
+    server = _listen(0)
     port = server.getsockname()[1]
     link = SerialLink(f"socket://127.0.0.1:{port}", reconnect_min_s=0.01,
                       reconnect_max_s=0.05).start()
@@ -112,11 +118,7 @@ def test_socket_url_server_restart():
         server.close()                     # the port vanishes entirely (connections refused)
         assert link.wait_for(lambda l: l.disconnects == 1, TIMEOUT)
         assert link.wait_for(lambda l: l.open_failures >= 1, TIMEOUT)
-        server = socket.socket()
-        server.setsockopt(socket.SOL_SOCKET, socket.SO_REUSEADDR, 1)
-        server.bind(("127.0.0.1", port))
-        server.listen(1)
-        server.settimeout(TIMEOUT)
+        server = _listen(port)
         conn, _ = server.accept()
         assert link.wait_for(lambda l: l.opens == 2, TIMEOUT)
         conn.sendall(b"two" * 1000)
@@ -167,10 +169,7 @@ def test_bytes_waiting_before_the_open_are_kept(tmp_path):
 
 
 def test_socket_bytes_sent_at_connect_are_kept():
-    server = socket.socket()
-    server.bind(("127.0.0.1", 0))
-    server.listen(1)
-    server.settimeout(TIMEOUT)
+    server = _listen(0)
     burst = bytes(random.Random(9).randrange(256) for _ in range(50000))
     link = SerialLink(f"socket://127.0.0.1:{server.getsockname()[1]}").start()
     try:

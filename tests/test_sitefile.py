@@ -7,6 +7,7 @@ from datetime import datetime, timezone
 import numpy as np
 import pytest
 
+from cli_helpers import MINIMAL_SENSOR
 from fieldvane.estimator.geomagnetic import attitude_matrix, mounting_from_rotation_deg
 from fieldvane.io.errors import InputError
 from fieldvane.io.sensorfile import read_sensor_file
@@ -148,14 +149,7 @@ def test_attitude_csv_reads_in_any_column_order(tmp_path):
     np.testing.assert_allclose(mats[1], attitude_matrix(6, 5, 4))
 
 
-SENSOR = """\
-version = 1
-[pumps.a]
-axis = [1, 0, 0]
-[pumps.b]
-axis = [0, 1, 0]
-[probes.1]
-axis = [0, 0, 1]
+SENSOR = MINIMAL_SENSOR + """\
 [mounting]
 {mounting}
 """

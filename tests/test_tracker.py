@@ -283,6 +283,23 @@ def _predicted(tracker, dt):
     return p, fs[3:6].copy(), fs[6:9].copy()
 
 
+def _filterpy_update(cal, p_prior, u0, z, e1, e2, gain_states=False):
+    """Return filterpy's ExtendedKalmanFilter after one update of x = 0 with covariance p_prior, the calibrated R
+    and H = [dh/dd, dh/dg (with gain_states), 0] at u0 in the tangent basis (e1, e2)."""
+    n = p_prior.shape[0]
+    ekf = ExtendedKalmanFilter(dim_x=n, dim_z=8)
+    ekf.x = np.zeros((n, 1))
+    ekf.P = p_prior
+    ekf.R = np.diag(cal.model.measurement_noise() ** 2)
+    zh, dz = cal.model.h_and_jacobian(u0, B0)
+    h = np.zeros((8, n))
+    h[:, 0], h[:, 1] = to_real(dz[0] @ e1), to_real(dz[0] @ e2)
+    if gain_states:
+        h[:4, 2], h[4:, 3] = to_real(zh)[0][:4], to_real(zh)[0][4:]          # dZ/d(log gain) = Z per probe
+    ekf.update(to_real(z[None])[0][:, None], lambda x: h, lambda x: to_real(zh)[0][:, None] + h @ x)
+    return ekf
+
+
 def test_update_matches_filterpy_extended_kalman_filter(two_probe):
     """One tracker update equals filterpy's ExtendedKalmanFilter.update (Joseph form) with the same H, R, P."""
     sensor, cal, sigma = two_probe
@@ -297,14 +314,7 @@ def test_update_matches_filterpy_extended_kalman_filter(two_probe):
     p_prior, e1, e2 = _predicted(tracker, 1e-9)
     est = tracker.step(Sample(1e-9, *sensor.frequencies(np.array([B0]))[0], z, sensor.channels))
 
-    ekf = ExtendedKalmanFilter(dim_x=5, dim_z=8)
-    ekf.x = np.zeros((5, 1))
-    ekf.P = p_prior
-    ekf.R = np.diag(cal.model.measurement_noise() ** 2)
-    zh, dz = cal.model.h_and_jacobian(u0, B0)
-    h = np.zeros((8, 5))
-    h[:, 0], h[:, 1] = to_real(dz[0] @ e1), to_real(dz[0] @ e2)
-    ekf.update(to_real(z[None])[0][:, None], lambda x: h, lambda x: to_real(zh)[0][:, None] + h @ x)
+    ekf = _filterpy_update(cal, p_prior, u0, z, e1, e2)
     step = log_map(u0, est.u)
     assert np.allclose([step @ e1, step @ e2], ekf.x[:2, 0], rtol=1e-6, atol=1e-12)
     # After the update the tracker moves its chart to the new u: the error component perpendicular
@@ -336,15 +346,7 @@ def test_update_with_gain_states_matches_filterpy(two_probe):
     assert tracker.layout.size == 7
     p_prior, e1, e2 = _predicted(tracker, 1e-9)
     est = tracker.step(Sample(1e-9, *f, z, sensor.channels))
-    ekf = ExtendedKalmanFilter(dim_x=7, dim_z=8)
-    ekf.x = np.zeros((7, 1))
-    ekf.P = p_prior
-    ekf.R = np.diag(cal.model.measurement_noise() ** 2)
-    zh, dz = cal.model.h_and_jacobian(u0, B0)
-    h = np.zeros((8, 7))
-    h[:, 0], h[:, 1] = to_real(dz[0] @ e1), to_real(dz[0] @ e2)
-    h[:4, 2], h[4:, 3] = to_real(zh)[0][:4], to_real(zh)[0][4:]          # dZ/d(log gain) = Z per probe
-    ekf.update(to_real(z[None])[0][:, None], lambda x: h, lambda x: to_real(zh)[0][:, None] + h @ x)
+    ekf = _filterpy_update(cal, p_prior, u0, z, e1, e2, gain_states=True)
     step = log_map(u0, est.u)
     assert np.allclose([step @ e1, step @ e2], ekf.x[:2, 0], rtol=1e-6, atol=1e-12)
     assert np.allclose(tracker.drifts["gain"], ekf.x[2:4, 0], rtol=1e-6, atol=1e-12)
@@ -441,7 +443,7 @@ def test_nis_inside_chi_square_band(turning, n_probes):
     # The filter's equations alone, with the model that made the stream: calibrated noise given (not learned: its
     # own test is below) and no gain states (this stream has no drift; with the default gain states the filter
     # allows for a drift that is not there and its NIS reads a little low, checked at the end).
-    sensor, cal, sigma = r["sensor"], r["cal"], r["sigma"]
+    cal = r["cal"]
     exact = FilterSettings(noise_baseline_ratio=1.0, gain_drift=False)
     rec = Tracker(cal, exact, GridInitiator(cal.model)).run_arrays(r["block"])
     nis = rec.nis[r["keep"]]

@@ -24,16 +24,14 @@ def add_arguments(parser) -> None:
 def run(args) -> int:
     """List the documents or print one; returns the exit code."""
     from fieldvane.io.errors import InputError, JobError
-    from fieldvane.io.resources import documents, first_line_matching, shipped_dir
+    from fieldvane.io.resources import documents, listing_lines, shipped_dir
 
     docs = documents()
     if not docs:
         raise JobError("this installation has no documentation folder (reinstall fieldvane)")
     if args.name is None:
         print(f"documentation: {shipped_dir('docs')}/")
-        width = max(len(n) for n in docs)
-        for name, path in docs.items():
-            print(f"  {name:<{width}}  {first_line_matching(path, TITLE_LINE)}")
+        print("\n".join(listing_lines(docs, TITLE_LINE)))
         print("print one with `fieldvane docs NAME`")
         return 0
     name = args.name[:-3] if args.name.endswith(".md") else args.name

@@ -33,16 +33,14 @@ def run(args) -> int:
 
     from fieldvane.io.errors import JobError
     from fieldvane.io.outputs import atomic_folder, check_folder_outputs, check_output
-    from fieldvane.io.resources import example_scenarios, first_line_matching, shipped_dir
+    from fieldvane.io.resources import example_scenarios, listing_lines, shipped_dir
 
     scenarios = example_scenarios()
     if not scenarios:
         raise JobError("this installation has no example scenarios (reinstall fieldvane)")
     if args.output is None:
         print(f"example scenarios in {shipped_dir('examples')}/ (use a name wherever a scenario file is asked for):")
-        width = max(len(n) for n in scenarios)
-        for name, path in scenarios.items():
-            print(f"  {name:<{width}}  {first_line_matching(path, DESCRIPTION_LINE)}")
+        print("\n".join(listing_lines(scenarios, DESCRIPTION_LINE)))
         print("copy them with `fieldvane examples -o DIR`")
         return 0
     check_output(args.output, folder=True, force=True, option="--output")     # a file there: refused
