@@ -510,7 +510,7 @@ class LiveLoop:
     _signalled = False   # kept for callers that looked at it
 
     def install_signal_handlers(self) -> Callable[[], None]:
-        """Make SIGINT/SIGTERM stop the loop cleanly (a second one forces); return a restorer."""
+        """Make SIGINT/SIGTERM (and SIGHUP unless ignored) stop the loop cleanly (a second one forces); return a restorer."""
         if threading.current_thread() is not threading.main_thread():
             return lambda: None
         old = {}
@@ -525,6 +525,10 @@ class LiveLoop:
 
         for sig in (signal.SIGINT, signal.SIGTERM):
             old[sig] = signal.signal(sig, _handler)
+        # A closed terminal (an ssh session dropping) stops the run cleanly too, unless the user asked to
+        # outlive it (nohup leaves SIGHUP ignored: that choice stands).
+        if hasattr(signal, "SIGHUP") and signal.getsignal(signal.SIGHUP) is signal.SIG_DFL:
+            old[signal.SIGHUP] = signal.signal(signal.SIGHUP, _handler)
         if hasattr(signal, "SIGUSR1"):                   # `kill -USR1 PID`: the counters now (POSIX only)
             def _asked(signum, frame):
                 self._counters_asked += 1

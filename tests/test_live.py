@@ -308,7 +308,9 @@ def _read_until(fd, predicate, buf):
     raise AssertionError("too many reads")
 
 
-def test_sigterm_flushes_sinks_and_prints_summary(tmp_path):
+@pytest.mark.parametrize("signum", [signal.SIGTERM, signal.SIGHUP], ids=["SIGTERM", "SIGHUP"])
+def test_sigterm_flushes_sinks_and_prints_summary(tmp_path, signum):
+    # SIGHUP: the terminal closed (an ssh session dropped) stops the run as cleanly as SIGTERM.
     path = str(tmp_path / "sensor")
     master, slave = _pty(path)
     script = tmp_path / "live_child.py"
@@ -322,7 +324,7 @@ def test_sigterm_flushes_sinks_and_prints_summary(tmp_path):
         sent = b"".join(encode_frame(f) for f in frames)
         os.write(master, sent)
         out = _read_until(proc.stdout.fileno(), lambda b: b.count(b"\n") >= 100, b"")
-        proc.send_signal(signal.SIGTERM)
+        proc.send_signal(signum)
         rest_out, rest_err = proc.communicate(timeout=TIMEOUT)
     finally:
         _end_child(proc, master, slave)
