@@ -106,6 +106,9 @@ MIN_MOVE_LOGLIK = 0.5 * TIE_LOGLIK  # a compass move must gain this much (smalle
 CAUTIOUS_STEP = 0.25       # the cautious ladder's step (decades) ...
 CAUTIOUS_STEPS = 3         # ... and its length
 OUTCLASSED_PER_SAMPLE = 1.0  # a set this much log-likelihood per sample behind another stops early
+TRACK_CHECK_FRACTIONS = (0.25, 0.5, 0.75, 1.0)   # log10 steps of the motion noise toward the settings before
+TRACK_CHECK_GIVE_UP = 20     # a replay that has lost the track this many more times than before stops counting
+TRACK_CHECK_CHUNK = 50_000   # samples per tracker call in the whole-input replays
 DECORRELATED = 0.1         # search samples at least this decorrelated (lock-in autocorrelation at the step)
 MIN_SEARCH_RATE_HZ = 10.0  # ... but never decimated below this rate
 MIN_SEARCH_SAMPLES = 1000  # ... nor to fewer samples than this
@@ -328,6 +331,70 @@ class SetResult:
 
 
 @dataclass
+class TrackCheck:
+    """Whole-input track keeping: losses (lost after gating or on the NIS average) before and after, and any raise."""
+
+    lost_before: int
+    lost_likelihood: int          # with the likelihood's choice of motion noise
+    lost_after: int               # with the settings written
+    fraction: float               # how far (in log10) the motion noise was moved toward the settings before: 0..1
+    raised: dict                  # knob -> (likelihood's value, value written), for the knobs that moved
+
+
+def track_losses(calibration: Calibration, block: SampleBlock, settings: FilterSettings, initiator,
+                 rate_hz: float | None = None, give_up_after: int | None = None) -> int:
+    """Return how often the tracker with `settings` loses the track over the whole block (not counting time faults)."""
+    tracker = Tracker(calibration, settings, initiator, sample_rate_hz=rate_hz)
+    lost = 0
+    for s in range(0, len(block), TRACK_CHECK_CHUNK):
+        sl = slice(s, s + TRACK_CHECK_CHUNK)
+        tracker.run_arrays(SampleBlock(block.t[sl], block.f[sl], block.z[sl], block.channels))
+        c = tracker.counters
+        lost = c.lost_gated + c.lost_nis + c.covariance_faults
+        if give_up_after is not None and lost > give_up_after:
+            break
+    return lost
+
+
+def keep_the_track(calibration: Calibration, block: SampleBlock, tuned: FilterSettings, before: FilterSettings,
+                   initiator, rate_hz: float | None = None,
+                   lower: dict[str, float] | None = None) -> tuple[FilterSettings, TrackCheck]:
+    """Return (settings, TrackCheck): tuned, with its motion noise moved toward `before`'s (log10, in quarters;
+    the rate random walk first, then also the angle random walk, never below `lower`) until the whole input
+    loses the track no more often than with `before`.
+
+    The likelihood is dominated by the many samples of smooth motion; a single change of turning rate (a
+    rotation stage switching axis) is a few samples of it, and a filter tuned to the smooth part can lose
+    the track there. The settings before are the user's (or the defaults) and held the track as they did.
+    """
+    lower = lower or {}
+
+    def losses(settings, limit):
+        return track_losses(calibration, block, settings, initiator, rate_hz, give_up_after=limit)
+
+    lost_before = losses(before, TRACK_CHECK_GIVE_UP)
+    lost_tuned = losses(tuned, lost_before + TRACK_CHECK_GIVE_UP)
+    if lost_tuned <= lost_before:
+        return tuned, TrackCheck(lost_before, lost_tuned, lost_tuned, 0.0, {})
+    settings, lost, fraction = tuned, lost_tuned, 0.0
+    for knobs in (MOTION_KNOBS[1:], MOTION_KNOBS):          # the rate random walk alone, then both
+        for fraction in TRACK_CHECK_FRACTIONS:
+            changes = {}
+            for k in knobs:
+                a, b = math.log10(max(getattr(tuned, k), 1e-12)), math.log10(max(getattr(before, k), 1e-12))
+                changes[k] = max(float(f"{10 ** (a + fraction * (b - a)):.4g}"), lower.get(k, 0.0))
+            settings = tuned.replace(**changes)
+            lost = losses(settings, lost_before + TRACK_CHECK_GIVE_UP)
+            if lost <= lost_before:
+                break
+        if lost <= lost_before:
+            break
+    raised = {k: (getattr(tuned, k), getattr(settings, k)) for k in MOTION_KNOBS
+              if getattr(settings, k) != getattr(tuned, k)}
+    return settings, TrackCheck(lost_before, lost_tuned, lost, fraction, raised)
+
+
+@dataclass
 class TuneResult:
     """Tuned filter settings: the chosen state set, all sets compared, the noise fit and the accuracy floor."""
 
@@ -346,6 +413,7 @@ class TuneResult:
     allowance: float = 0.0        # model-error allowance (log-likelihood) a richer state set had to beat
     calibrated_std_V: np.ndarray | None = None  # (C,) the calibration's noise std per channel
     error_ratio: float = 0.0      # calibration_error_ratio: the floor over the bound at the calibrated noise
+    track_check: TrackCheck | None = None       # the likelihood's choice against the settings before, whole input
 
 
 class _Search:
@@ -627,7 +695,8 @@ def state_set_of(settings: FilterSettings) -> str:
 
 def tune(calibration: Calibration, block: SampleBlock, initiator, base: FilterSettings | None = None,
          state_sets: Sequence[str] = SET_ORDER, max_samples: int | None = DEFAULT_MAX_SAMPLES,
-         floor_deg: float | None = None, fit_lockin: bool = True, progress: Progress | None = None) -> TuneResult:
+         floor_deg: float | None = None, fit_lockin: bool = True, progress: Progress | None = None,
+         check_track: bool = True) -> TuneResult:
     """Return tuned FilterSettings: noise from second differences, state set and process noise by likelihood.
 
     base: the settings to start from, completed with the stream's lock-in when it is known (its
@@ -635,7 +704,9 @@ def tune(calibration: Calibration, block: SampleBlock, initiator, base: FilterSe
     initiator: acquires every candidate's track (the snapshot solver's `initiate`). state_sets: the sets
     compared ('none', 'gain', 'gain+phase'). max_samples: the search's samples at most (decimated).
     floor_deg: the calibration accuracy floor (deg, 1-sigma total; None: calibration_error_ratio times
-    the median single-sample bound at the calibrated noise; 0: none).
+    the median single-sample bound at the calibrated noise; 0: none). check_track: replay the whole input
+    and raise the motion noise where the likelihood's choice loses the track more often than `base`
+    (keep_the_track).
     """
     base = base if base is not None else FilterSettings()
     unknown = [s for s in state_sets if s not in STATE_SETS]
@@ -667,7 +738,14 @@ def tune(calibration: Calibration, block: SampleBlock, initiator, base: FilterSe
     results, reference = search_state_sets(calibration, used, start, initiator, state_sets, lower, progress,
                                            reference=base, allowance=allowance)
     chosen = choose_state_set(results, allowance)
-    return TuneResult(results[chosen].settings, chosen, {n: results[n] for n in SET_ORDER if n in results}, noise,
+    settings, check = results[chosen].settings, None
+    if check_track:
+        if progress is not None:
+            progress(0, 1, "track check")
+        settings, check = keep_the_track(calibration, block, settings, start, initiator, rate, lower)
+        if progress is not None:
+            progress(1, 1, "track check")
+    return TuneResult(settings, chosen, {n: results[n] for n in SET_ORDER if n in results}, noise,
                       k, len(used), floor_deg, floor_arw, bound_cal, bound_stream, reference,
                       sum(len(r.table) for r in results.values()), allowance,
-                      np.asarray(model.noise_std, float).copy(), calibration_error_ratio(calibration))
+                      np.asarray(model.noise_std, float).copy(), calibration_error_ratio(calibration), check)

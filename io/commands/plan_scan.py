@@ -9,11 +9,15 @@ DESCRIPTION = """Propose a calibration scan: the field vectors (sensor frame) to
 From the sensor file's nominal beam axes and the stated lock-in noise, the Fisher information of
 the calibration's parameters says how well each pump and probe axis will be fitted. Every
 magnitude level gets a near-uniform base set of directions (for the model's smooth corrections and
-its sphere coverage); then the directions and levels that improve the worst axes most are added
-until every axis reaches the target (1 sigma: sqrt of the trace of its 2x2 covariance). Rows are
-ordered level by level, ascending |B|, along a short tour so the coils step little. Output: a CSV
-with columns bx_nT, by_nT, bz_nT (comment lines above them record the plan). Check the field
-values against your coil driver's limits before running it.
+its sphere coverage); on top of them the optimal design for the worst axis (the continuous optimal
+design over a grid of directions at every level, rounded to whole rows, completed and trimmed)
+gives every axis the target (1 sigma: sqrt of the trace of its 2x2 covariance) with few rows. The
+summary says how many rows the continuous optimal design needs and how few any design could need.
+Rows are ordered level by level, ascending |B|, along a short tour so the coils step little. A
+field vector may repeat on consecutive lines: each copy is one independent measurement (let the
+lock-in settle for several time constants between them). Output: a CSV with columns bx_nT, by_nT,
+bz_nT (comment lines above them record the plan). Check the field values against your coil
+driver's limits before running it.
 
 example:
   fieldvane plan-scan --sensor sensor.toml --target-axis-deg 0.005 --snr 2000 \\
@@ -100,6 +104,8 @@ def run(args) -> int:
               f"# levels_nT: {', '.join(f'{b:g}' for b in plan.levels_nT)}",
               f"# rows_per_level: {', '.join(str(int(n)) for n in np.bincount(plan.level, minlength=len(plan.levels_nT)))}",
               "# expected_axis_std_deg: " + ", ".join(f"{n} {s:.5f}" for n, s in zip(beams, plan.expected_std_deg)),
+              f"# continuous_design_rows: {plan.bound_rows:.0f} "
+              f"(no design needs fewer than {plan.bound_rows_lower:.0f})",
               "bx_nT,by_nT,bz_nT"]
     body = "\n".join(",".join(f"{x:.3f}" for x in row) for row in plan.field_nT)
     with atomic_file(out) as tmp:
@@ -113,6 +119,11 @@ def run(args) -> int:
     print(f"expected axis accuracy (1 sigma), target {args.target_axis_deg:g} deg {status}:")
     for name, s, su in zip(beams, plan.expected_std_deg, plan.uniform_std_deg):
         print(f"  {name:8s} {s:.5f} deg   (a near-uniform scan with as many rows per level: {su:.5f} deg)")
+    print(f"continuous optimal design with the same base rows: {plan.bound_rows:.0f} rows "
+          f"(with them, no design over the direction grid needs fewer than {plan.bound_rows_lower:.0f})")
+    repeats = plan.n_rows - len(np.unique(plan.field_nT, axis=0))
+    if repeats:
+        print(f"{repeats} rows repeat a field vector of the plan: each copy is a separate measurement")
     print(f"coil path: {plan.path_nT:.0f} nT in all, largest step {plan.max_step_nT:.0f} nT")
     print(f"wrote {out}")
     print("note: check the field values against the coil driver's limits before running the scan")

@@ -406,6 +406,9 @@ def _report(args, block, result, seconds: float, summaries: dict, lockin_source:
     if ref is not None and np.isfinite(ref.loglik[0]):
         best = result.sets[result.chosen].loglik
         lines.append(f"  log-likelihood {best:.6g} ({best - float(ref.loglik[0]):+.4g} over the settings before)")
+    track = track_check_line(result.track_check)
+    if track:
+        lines.append(track)
     b, a = summaries["before"], summaries["after"]
     rows = [("NIS/dof mean", "nis_per_dof_mean", "1"),
             ("NIS inside 95% band", "nis_inside_95_band", "0.95"),
@@ -426,6 +429,20 @@ def _report(args, block, result, seconds: float, summaries: dict, lockin_source:
     for note in notes:
         lines.append(f"note: {note}")
     return "\n".join(lines)
+
+
+def track_check_line(check) -> str:
+    """Return the line saying how the whole input's track keeping shaped the motion noise ('' if not checked)."""
+    if check is None:
+        return ""
+    if not check.raised and check.lost_likelihood <= check.lost_before:
+        return (f"track check (whole input): the likelihood's choice lost the track {check.lost_likelihood} time(s), "
+                f"the settings before {check.lost_before}: kept")
+    moved = ", ".join(f"{k} {old:.3g} -> {new:.3g}" for k, (old, new) in check.raised.items())
+    held = "now as often as before" if check.lost_after <= check.lost_before else "still more often"
+    return (f"track check (whole input): the likelihood's choice lost the track {check.lost_likelihood} time(s) where "
+            f"the settings before lost it {check.lost_before}: motion noise moved {check.fraction:.2g} of the way "
+            f"(log) toward theirs ({moved}); it loses it {check.lost_after} time(s), {held}")
 
 
 def _comments(args, block, result, summaries: dict, lockin_source: str, verdict, before) -> list[str]:
@@ -455,6 +472,9 @@ def _comments(args, block, result, summaries: dict, lockin_source: str, verdict,
              + ", ".join(f"{k} {v:.3g}" for k, v in chosen.values().items()),
              f"calibration accuracy floor {result.floor_deg:.3g} deg -> angle_random_walk_deg_rt_s >= "
              f"{result.floor_arw_deg_rt_s:.3g}"]
+    track = track_check_line(result.track_check)
+    if track:
+        lines.append(track)
     a = summaries["after"]
     lines.append(f"replay: NIS/dof mean {_fmt(a.get('nis_per_dof_mean'))}, inside 95% band "
                  f"{_fmt(a.get('nis_inside_95_band'))}")
