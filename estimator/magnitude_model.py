@@ -37,6 +37,8 @@ the fused value's variance is w^T S w with S the isotopes' 2 x 2 error covarianc
 and prediction error (independent) plus the direction uncertainty through d(delta)/du (shared, so
 correlated). Where the
 direction is unknown the sphere mean of delta is used and its spread over the sphere is the error.
+This evaluation, per sample, is compiled in estimator/magnitude_core.py (the live loop corrects a few
+samples per call).
 """
 
 from __future__ import annotations
@@ -47,7 +49,8 @@ from dataclasses import dataclass, field
 import numpy as np
 
 from fieldvane.estimator.folds import scan_point_folds
-from fieldvane.estimator.harmonics import harmonics, harmonics_and_gradient, n_harmonics
+from fieldvane.estimator.harmonics import harmonics, monomial_coefficients, n_harmonics
+from fieldvane.estimator.monomials import exponents as monomial_exponents
 
 
 def _stats():
@@ -271,6 +274,7 @@ class MagnitudeModel:
     n_rows: int = 0
     rejected_rows: tuple[int, int] = (0, 0)
     degree_scores: tuple[dict, dict] = field(default_factory=lambda: ({}, {}))
+    _core: tuple | None = field(default=None, init=False, repr=False, compare=False)   # estimate()'s kernel arrays
 
     def __post_init__(self) -> None:
         self.gammas_hz_per_nt = np.asarray(self.gammas_hz_per_nt, float)
@@ -313,34 +317,6 @@ class MagnitudeModel:
             out[:, i] = np.interp(x, lv, self.noise_nT[:, i])
         return out
 
-    def _isotope_terms(self, i: int, y: np.ndarray, gy: np.ndarray, u: np.ndarray, known_u: np.ndarray,
-                       b_nT: np.ndarray, full: bool = True):
-        """Return isotope i's (delta (N,) nT, d delta/d|B| (N,), tangent gradient (N, 3) nT/rad, sphere variance (N,) nT^2,
-        prediction variance per unit noise variance (N,)); y, gy: harmonics and gradients at the known directions."""
-        env, denv = _envelope_values(self.envelopes, b_nT, self.reference_nT)
-        c, dc = env @ self.coef[i], denv @ self.coef[i]
-        n = b_nT.shape[0]
-        d = np.empty(n)
-        dd = np.empty(n)
-        y00 = 1.0 / math.sqrt(4 * math.pi)
-        # Unknown direction: the sphere mean (the Y_00 term) and the l >= 1 power as the error.
-        d[~known_u] = c[~known_u, 0] * y00
-        dd[~known_u] = dc[~known_u, 0] * y00
-        d[known_u] = np.sum(y * c[known_u], axis=1)
-        dd[known_u] = np.sum(y * dc[known_u], axis=1)
-        if not full:
-            return d, dd
-        grad = np.zeros((n, 3))
-        pred = np.zeros(n)
-        spread = np.where(known_u, 0.0, np.sum(c[:, 1:] ** 2, axis=1) / (4 * math.pi))
-        if known_u.any():
-            g = np.einsum("nk,nkc->nc", c[known_u], gy)
-            uk = u[known_u]
-            grad[known_u] = g - np.sum(g * uk, axis=1, keepdims=True) * uk
-            x = (env[known_u, :, None] * y[:, None, :]).reshape(y.shape[0], -1)
-            pred[known_u] = np.sum((x @ self.unit_covariance[i]) * x, axis=1)
-        return d, dd, grad, spread, pred
-
     def estimate(self, f_hz: np.ndarray, u: np.ndarray, u_cov=None) -> MagnitudeEstimate:
         """Return the MagnitudeEstimate from frequencies f_hz (N, 2) Hz and directions u (N, 3), sensor frame.
 
@@ -350,83 +326,45 @@ class MagnitudeModel:
         (only the tangent part matters). Rows with a non-finite u or uncertainty use the
         sphere-mean correction, with the correction's spread over the sphere as its error.
         """
+        from fieldvane.estimator import magnitude_core as core   # numba: loaded only where |B| is corrected
+
         f = np.atleast_2d(np.asarray(f_hz, float))
         n = f.shape[0]
-        u = np.asarray(u, float).reshape(n, 3)
-        with np.errstate(invalid="ignore"):
-            norm_u = np.linalg.norm(u, axis=1)
-        known_u = np.isfinite(norm_u) & (norm_u > 0)
-        u = np.where(known_u[:, None], u / np.where(known_u, norm_u, 1.0)[:, None], 0.0)
-        cov, unknown_cov = _direction_covariance(u_cov, u, n)
-        known_u &= ~unknown_cov
-        with np.errstate(invalid="ignore", divide="ignore"):
-            m = f / self.gammas_hz_per_nt[None, :]
-        ok = np.isfinite(m) & (m > 0)
-        b_iso = np.full((n, 2), np.nan)
-        var_f = np.full((n, 2), np.inf)
-        grads = np.zeros((n, 2, 3))
-        spreads = np.zeros((n, 2))
-        deltas = np.zeros((n, 2))
-        for i in range(2):
-            rows = np.flatnonzero(ok[:, i])
-            if rows.size == 0:
-                continue
-            b = m[rows, i].copy()
-            known = known_u[rows]
-            y, gy = harmonics_and_gradient(self.degrees[i], u[rows][known])
-            for _ in range(NEWTON_STEPS):
-                d, dd = self._isotope_terms(i, y, gy, u[rows], known, b, full=False)
-                b = b - (b + d - m[rows, i]) / (1.0 + dd)
-            d, dd, g, spread, pred = self._isotope_terms(i, y, gy, u[rows], known, b)
-            slope = 1.0 + dd
-            b_iso[rows, i] = b
-            deltas[rows, i] = d
-            # b_i = m_i - delta_i(u, b_i): an error e in m_i or in delta_i moves b_i by e / slope.
-            # Frequency noise, plus the fitted delta's own error (ordinary least-squares prediction variance).
-            var_f[rows, i] = self.noise(b)[:, i] ** 2 * (1.0 + pred) / slope ** 2
-            grads[rows, i] = g / slope[:, None]
-            spreads[rows, i] = spread / slope ** 2
-        # S = diag(frequency noise) + G C G^T + the sphere covariance where the direction is unknown.
-        s = np.zeros((n, 2, 2))
-        s[:, 0, 0], s[:, 1, 1] = var_f[:, 0], var_f[:, 1]
-        if cov is not None:
-            s += np.einsum("nic,ncd,njd->nij", grads, cov, grads)
-        unknown = ~known_u & ok.all(axis=1)
-        if unknown.any():
-            s[unknown] += self._sphere_covariance(b_iso[unknown])
-        s[:, 0, 0] += np.where(~known_u & ok[:, 0] & ~ok[:, 1], spreads[:, 0], 0.0)
-        s[:, 1, 1] += np.where(~known_u & ok[:, 1] & ~ok[:, 0], spreads[:, 1], 0.0)
-        var_iso = np.stack([s[:, 0, 0], s[:, 1, 1]], axis=1)
-        with np.errstate(divide="ignore", invalid="ignore"):
-            inv = np.where(ok, 1.0 / np.maximum(var_iso, 1e-300), 0.0)
-            total = inv.sum(axis=1, keepdims=True)
-            w = np.where(total > 0, inv / np.where(total > 0, total, 1.0), 0.0)
-        fused = np.where(ok.any(axis=1), np.nansum(w * np.where(ok, b_iso, 0.0), axis=1), np.nan)
-        s_safe = np.where(np.isfinite(s), s, 0.0)
-        var_b = np.einsum("ni,nij,nj->n", w, s_safe, w)
-        var_d = s_safe[:, 0, 0] + s_safe[:, 1, 1] - 2 * s_safe[:, 0, 1]
-        sigma_iso = np.where(ok, np.sqrt(np.where(ok, var_iso, np.nan)), np.nan)
-        return MagnitudeEstimate(
-            b_nT=fused, b_per_isotope=b_iso,
-            sigma_b_nT=np.where(ok.any(axis=1), np.sqrt(var_b), np.nan),
-            sigma_per_isotope=sigma_iso,
-            sigma_difference_nT=np.where(ok.all(axis=1), np.sqrt(var_d), np.nan), weights=w)
+        if f.shape != (n, 2):
+            raise ValueError(f"f_hz: expected (N, 2) frequencies (Hz), got shape {f.shape}")
+        u = np.require(np.asarray(u, float).reshape(n, 3), np.float64, "CW")
+        kind, sigma, cov = core.direction_uncertainty(u_cov, n)
+        if self._core is None:
+            self._core = self._core_arrays()
+        out = core.estimate_rows(np.require(f, np.float64, "CW"), u, kind, sigma, cov, *self._core)
+        return MagnitudeEstimate(b_nT=out[:, core.OUT_B], b_per_isotope=out[:, core.OUT_B_ISO:core.OUT_B_ISO + 2],
+                                 sigma_b_nT=out[:, core.OUT_SIGMA_B],
+                                 sigma_per_isotope=out[:, core.OUT_SIGMA_ISO:core.OUT_SIGMA_ISO + 2],
+                                 sigma_difference_nT=out[:, core.OUT_SIGMA_DIFF],
+                                 weights=out[:, core.OUT_W:core.OUT_W + 2])
 
     def correct(self, f_hz: np.ndarray, u: np.ndarray, u_cov=None) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
         """Return (|B| (N,) nT, per-isotope |B| (N, 2) nT, 1-sigma of |B| (N,) nT); arguments as in estimate()."""
         est = self.estimate(f_hz, u, u_cov)
         return est.b_nT, est.b_per_isotope, est.sigma_b_nT
 
-    def _sphere_covariance(self, b_iso: np.ndarray) -> np.ndarray:
-        """Return (N, 2, 2): covariance over the sphere of the two isotopes' delta at their |B| (N, 2), nT^2."""
-        k = min(n_harmonics(d) for d in self.degrees)
-        c0 = self._coef_at(0, b_iso[:, 0])
-        c1 = self._coef_at(1, b_iso[:, 1])
-        out = np.empty((b_iso.shape[0], 2, 2))
-        out[:, 0, 0] = np.sum(c0[:, 1:] ** 2, axis=1)
-        out[:, 1, 1] = np.sum(c1[:, 1:] ** 2, axis=1)
-        out[:, 0, 1] = out[:, 1, 0] = np.sum(c0[:, 1:k] * c1[:, 1:k], axis=1)
-        return out / (4 * math.pi)
+    def _core_arrays(self) -> tuple:
+        """Return the model as the arrays magnitude_core.estimate_rows takes (zero-padded per isotope)."""
+        k = [n_harmonics(d) for d in self.degrees]
+        n_env = len(self.envelopes)
+        exps = np.array(monomial_exponents(max(self.degrees)))
+        coef = np.zeros((2, n_env, max(k)))
+        unit_cov = np.zeros((2, n_env * max(k), n_env * max(k)))
+        to_harm = np.zeros((2, exps.shape[0], max(k)))
+        for i, d in enumerate(self.degrees):
+            e_i, t_i = monomial_coefficients(d)
+            to_harm[i, :len(e_i), :k[i]] = t_i
+            coef[i, :, :k[i]] = self.coef[i]
+            unit_cov[i, :n_env * k[i], :n_env * k[i]] = self.unit_covariance[i]
+        codes = np.array([ENVELOPES.index(e) for e in self.envelopes], np.int64)
+        return (np.array(self.gammas_hz_per_nt, float), codes, float(self.reference_nT),
+                np.array(self.degrees, np.int64), coef, unit_cov, exps, to_harm, np.log(self.noise_levels_nT),
+                np.array(self.noise_nT, float), NEWTON_STEPS)
 
     # ---------------------------------------------------------------------------------- reporting
     def effect_sizes(self) -> list[dict]:
@@ -594,28 +532,6 @@ def _validate(model: MagnitudeModel) -> None:
     lo, hi = model.range_nT
     if not (0 < lo <= hi):
         raise ValueError(f"magnitude_model.range_nT: expected 0 < low <= high, got {model.range_nT!r}")
-
-
-def _direction_covariance(u_cov, u: np.ndarray, n: int) -> tuple[np.ndarray | None, np.ndarray]:
-    """Return ((N, 3, 3) tangent covariances rad^2 or None, (N,) rows whose uncertainty is unknown) from u_cov.
-
-    u_cov: None, a total angular sigma (rad), (N,) sigmas or (N, 3, 3) covariances; a non-finite
-    entry means the direction's uncertainty is unknown on that row.
-    """
-    if u_cov is None:
-        return None, np.zeros(n, bool)
-    c = np.asarray(u_cov, float)
-    if c.ndim == 0 or c.shape == (n,):
-        sigma = np.broadcast_to(c, (n,))
-        if np.any(sigma < 0):
-            raise ValueError("u_cov: angular sigma must be >= 0 rad")
-        unknown = ~np.isfinite(sigma)
-        tangent = np.eye(3)[None] - u[:, :, None] * u[:, None, :]
-        return np.where(unknown, 0.0, sigma ** 2 / 2)[:, None, None] * tangent, unknown
-    if c.shape == (n, 3, 3):
-        unknown = ~np.all(np.isfinite(c), axis=(1, 2))
-        return np.where(unknown[:, None, None], 0.0, c), unknown
-    raise ValueError(f"u_cov: expected None, a sigma (rad), ({n},) sigmas or ({n}, 3, 3) covariances, got shape {c.shape}")
 
 
 # ------------------------------------------------------------------------------------------ fitting

@@ -312,7 +312,7 @@ def _put_int(buf, p, v):
     return p + n
 
 
-@njit(cache=True)
+@njit(cache=True, nogil=True)        # nogil: replay formats one block while the next is estimated
 def _format_rows(n, fbits, ivals, kinds, src, buf):
     """Write n CSV lines into buf from float bits (F, n) and ints (I, n) per column kind; return the length."""
     p = 0

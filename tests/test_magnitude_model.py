@@ -326,6 +326,106 @@ def test_missing_isotope_uses_the_other_one(realistic_model):
     assert np.all(np.isnan(none.b_nT)) and np.all(np.isnan(none.sigma_b_nT))
 
 
+def _reference_estimate(model, f, u, sigma):
+    """Row by row, the module docstring's formulas with outside tools: scipy.optimize.brentq for the root of
+    b + delta(u, b) = f / gamma, scipy.special's spherical harmonics (harmonics.real_sph_harm_reference), central
+    differences along the sphere for the direction gradient, and a Gauss-Legendre x uniform-azimuth product rule
+    (numpy.polynomial.legendre.leggauss; exact for these polynomial degrees) for the sphere's mean and covariances."""
+    from numpy.polynomial.legendre import leggauss
+    from scipy.optimize import brentq
+
+    from fieldvane.estimator.harmonics import real_sph_harm_reference
+
+    ref = model.reference_nT
+    laws = {"inverse": (lambda x: 1 / x, lambda x: -1 / (x * x * ref)), "constant": (lambda x: 1.0, lambda x: 0.0),
+            "square": (lambda x: x * x, lambda x: 2 * x / ref)}
+    env = lambda b: np.array([laws[e][0](b / ref) for e in model.envelopes])
+    denv = lambda b: np.array([laws[e][1](b / ref) for e in model.envelopes])
+    nodes, wn = leggauss(8)
+    phi = 2 * np.pi * np.arange(18) / 18
+    z, az = np.meshgrid(nodes, phi, indexing="ij")
+    rho = np.sqrt(1 - z ** 2)
+    grid = np.column_stack([(rho * np.cos(az)).ravel(), (rho * np.sin(az)).ravel(), z.ravel()])
+    wq = np.repeat(wn, 18) * (2 * np.pi / 18) / (4 * np.pi)            # sums to 1: the sphere mean
+    harm = lambda i, v: real_sph_harm_reference(model.degrees[i], v)
+    n = f.shape[0]
+    out = {k: np.full((n, 2), np.nan) for k in ("b_per_isotope", "sigma_per_isotope", "weights")}
+    out.update({k: np.full(n, np.nan) for k in ("b_nT", "sigma_b_nT", "sigma_difference_nT")})
+    for r in range(n):
+        known = np.all(np.isfinite(u[r])) and np.isfinite(sigma[r])
+        m = f[r] / model.gammas_hz_per_nt
+        ok = np.isfinite(m) & (m > 0)
+        y = [harm(i, u[r][None])[0] if known else harm(i, grid).T @ wq for i in range(2)]   # Y(u), or its mean
+        s = np.diag([np.inf, np.inf])
+        grads = np.zeros((2, 2))
+        dev = np.zeros((2, grid.shape[0]))
+        slope = np.ones(2)
+        for i in np.flatnonzero(ok):
+            b = brentq(lambda bb: bb + env(bb) @ model.coef[i] @ y[i] - m[i], 0.5 * m[i], 2 * m[i],
+                       xtol=1e-9, rtol=1e-15)
+            slope[i] = 1 + denv(b) @ model.coef[i] @ y[i]
+            x = np.kron(env(b), y[i])
+            pred = x @ model.unit_covariance[i] @ x if known else 0.0
+            noise = np.interp(np.log(b), np.log(model.noise_levels_nT), model.noise_nT[:, i])
+            s[i, i] = noise ** 2 * (1 + pred) / slope[i] ** 2
+            out["b_per_isotope"][r, i] = b
+            if known:
+                h = 1e-5
+                for a, e in enumerate(tangent_basis(u[r][None])):
+                    up, um = exp_map(u[r][None], h * e), exp_map(u[r][None], -h * e)
+                    grads[i, a] = env(b) @ model.coef[i] @ (harm(i, up)[0] - harm(i, um)[0]) / (2 * h) / slope[i]
+            else:
+                vals = harm(i, grid) @ (env(b) @ model.coef[i])
+                dev[i] = vals - wq @ vals
+        if known:
+            s += sigma[r] ** 2 / 2 * grads @ grads.T        # isotropic tangent covariance, total sigma
+        elif ok.all():
+            s += (dev * wq) @ dev.T                           # covariance of the two corrections over the sphere
+        elif ok.any():
+            i = int(np.flatnonzero(ok)[0])
+            s[i, i] += wq @ dev[i] ** 2 / slope[i] ** 2
+        inv = np.where(ok, 1 / np.diag(s), 0.0)
+        w = inv / inv.sum() if inv.sum() > 0 else np.zeros(2)
+        fin = np.where(np.isfinite(s), s, 0.0)
+        out["weights"][r] = w
+        out["sigma_per_isotope"][r] = np.where(ok, np.sqrt(np.diag(s)), np.nan)
+        if ok.any():
+            out["b_nT"][r] = w @ np.where(ok, out["b_per_isotope"][r], 0.0)
+            out["sigma_b_nT"][r] = np.sqrt(w @ fin @ w)
+        if ok.all():
+            out["sigma_difference_nT"][r] = np.sqrt(fin[0, 0] + fin[1, 1] - 2 * fin[0, 1])
+    return out
+
+
+def test_compiled_estimate_matches_a_row_by_row_reference(realistic_model):
+    model = realistic_model
+    assert min(model.degrees) > 0 and len(model.envelopes) == 3
+    rng = np.random.default_rng(120)
+    n = 40
+    u = _sphere(n, 121)
+    b = np.exp(rng.uniform(np.log(600.0), np.log(80000.0), n))     # across and beyond the scanned 1-50 uT
+    f = model.frequencies(u, b) * (1 + 1e-4 * rng.normal(size=(n, 2)))
+    sigma = rng.uniform(0.0, 0.01, n)
+    u[30:36] = np.nan                   # unknown directions: both isotopes, then one missing
+    f[34, 0] = f[35, 1] = np.nan
+    sigma[36] = np.nan                  # unknown uncertainty: treated as an unknown direction
+    f[37, 0], f[38, 1], f[39] = -1.0, np.nan, np.nan
+    est = model.estimate(f, u, sigma)
+    ref = _reference_estimate(model, f, u, sigma)
+    assert np.allclose(est.b_per_isotope, ref["b_per_isotope"], rtol=1e-12, atol=0, equal_nan=True)
+    assert np.allclose(est.b_nT, ref["b_nT"], rtol=1e-12, atol=0, equal_nan=True)
+    assert np.allclose(est.weights, ref["weights"], rtol=1e-6, atol=1e-12, equal_nan=True)
+    for key in ("sigma_per_isotope", "sigma_b_nT", "sigma_difference_nT"):
+        # (the reference's direction gradient is a central difference: relative error about 1e-9)
+        assert np.allclose(getattr(est, key), ref[key], rtol=1e-6, atol=0, equal_nan=True), key
+    # The same uncertainty as (N, 3, 3) covariances, sigma^2 / 2 on the tangent plane, gives the same estimate.
+    uk = np.where(np.isfinite(u), u, 0.0)
+    cov = (sigma ** 2 / 2)[:, None, None] * (np.eye(3) - uk[:, :, None] * uk[:, None, :])
+    again = model.estimate(f, u, cov)
+    for a, c in zip(dataclasses.astuple(est), dataclasses.astuple(again)):
+        assert np.allclose(a, c, rtol=1e-12, atol=0, equal_nan=True)
+
+
 # ----------------------------------------------------------------------------------------- storage
 def test_round_trip_through_json_is_exact(realistic_model):
     model = realistic_model

@@ -142,3 +142,31 @@ def test_single_magnitude_calibration_flags_replay_far_from_it(tmp_path, capsys)
     near = np.abs(est["b_nT"] / 20000 - 1) < 0.09
     assert far.any() and near.any()
     assert outside[far].all() and not outside[near].any()
+
+
+def test_replay_writes_blocks_in_order_behind_the_estimator_and_hands_on_a_write_error():
+    from fieldvane.io.commands.replay import _WriteBehind
+
+    written = []
+
+    def slow_write(k):
+        time.sleep(0.01 * (k % 3))            # later blocks may finish sooner if they ran in parallel
+        written.append(k)
+
+    behind = _WriteBehind()
+    for k in range(12):
+        behind.submit(slow_write, k)
+    behind.finish()
+    assert written == list(range(12))
+
+    def failing_write(k):
+        if k == 2:
+            raise OSError(28, "No space left on device")
+        written.append(k)
+
+    written.clear()
+    with pytest.raises(OSError, match="No space left"):
+        for k in range(6):
+            behind.submit(failing_write, k)
+        behind.finish()
+    assert written == [0, 1]                  # the error stops the replay at the next block, nothing after it

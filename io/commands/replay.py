@@ -243,6 +243,7 @@ def run(args) -> int:
             reader = RecordingReader(args.input)
             tracker = None
             geo_ready = False
+            behind = _WriteBehind()
             for block in _progress(reader, "chunks", args.no_progress):
                 if not geo_ready:             # the metadata lines are read with the first block
                     geo.take_metadata(reader.metadata, args.input)
@@ -258,15 +259,18 @@ def run(args) -> int:
                     _check_channels(block.channels, cal, args.input, reader)
                 if track:
                     rec = tracker.run_arrays(block)
-                    outputs.write_record(rec, geo.for_record(rec))
+                    behind.submit(outputs.write_record, rec, geo.for_record(rec))
                     note(rec.flags, rec.probes_used)
                 else:
                     ests = solve_block(solver, block)
-                    outputs.write_estimates(ests, geo.for_estimates(ests))
+                    behind.submit(outputs.write_estimates, ests, geo.for_estimates(ests))
                     note(_flags_of(ests), _probes_of(ests))
+            behind.finish()
             warnings += reader.warnings
         ok = True
     finally:
+        if not ok and "behind" in locals():
+            behind.finish(raise_error=False)     # the block being written ends before the file is dropped
         outputs.close(ok)
     seconds = time.perf_counter() - start
     rows = sum(flag_words.values())
@@ -292,6 +296,41 @@ def run(args) -> int:
         for w in health_warnings(tracker.counters, tracker.counters.samples):
             print(f"warning: {w}", file=sys.stderr)
     return 0
+
+
+class _WriteBehind:
+    """Writes one block while the next is read and estimated (the compiled core and the text formatter release
+    Python's lock, so the two overlap on two cores); at most one block waits, and blocks are written in order."""
+
+    def __init__(self):
+        import threading
+
+        self._thread: threading.Thread | None = None
+        self._error: BaseException | None = None
+
+    def submit(self, write, *args) -> None:
+        """Wait for the previous block's write (raising its error), then start write(*args) in the background."""
+        import threading
+
+        self.finish()
+
+        def _run():
+            try:
+                write(*args)
+            except BaseException as exc:       # handed to the main thread at its next submit or finish
+                self._error = exc
+
+        self._thread = threading.Thread(target=_run, name="fieldvane-write", daemon=True)
+        self._thread.start()
+
+    def finish(self, raise_error: bool = True) -> None:
+        """Wait for the block being written; raise the error it met (when raise_error)."""
+        if self._thread is not None:
+            self._thread.join()
+            self._thread = None
+        error, self._error = self._error, None
+        if error is not None and raise_error:
+            raise error
 
 
 def _check_channels(channels, cal, path, reader) -> None:
