@@ -597,6 +597,10 @@ def make_report(estimates_path, truth_path, out_dir, channels: int | None = None
                      "overlapping estimator, NIST SP 1065 (2008)")
         if still.b_note:
             notes.append(still.b_note)
+    if summary.get("b_error_std_nT") == 0.0 and "b_within_1sigma" in summary:
+        notes.append(f"the |B| error is one constant offset ({summary['b_error_mean_nT']:.3g} nT, no spread within "
+                     "float resolution): the stream's Larmor frequencies carry no noise (a noise-free simulation), "
+                     "so b_within_1sigma compares that offset with sigma_b_nT and says nothing about its honesty")
     sources = {"estimates": str(estimates_path)}
     if truth_path is not None:
         sources["truth"] = str(truth_path)

@@ -439,6 +439,7 @@ def test_static_stretch_noise_matches_white_noise_closed_forms(static_files, tmp
     err = np.abs(est["b_nT"] - truth["true_b_nT"])
     assert table["b_within_1sigma"] == pytest.approx(np.mean(err <= S_B), abs=1e-6)
     assert abs(table["b_within_1sigma"] - 0.6827) < 0.03
+    assert "says nothing about its honesty" not in notes
 
 
 def test_static_stretch_found_without_truth_and_chosen_by_option(static_files, tmp_path, capsys, monkeypatch):
@@ -503,6 +504,19 @@ def test_float_noise_is_stated_not_plotted(tmp_path, monkeypatch):
     assert out.summary["b_a_std_nT"] == 0.0 and out.summary["b_ratio_std"] == 0.0
     assert any("b_nT is constant within float resolution" in n for n in out.notes)
     assert "allan.png" in figures and "spectrum.png" in figures
+
+
+def test_a_constant_magnitude_offset_is_not_judged_against_sigma(tmp_path):
+    # Noise-free simulated frequencies leave |B| off the truth by one constant (the calibration's
+    # rounding); the share within sigma_b_nT of that offset is 0 or 1 and says nothing about honesty.
+    est, truth = make_static_run(seed=23, moving_s=0.0, still_s=8.0)
+    est["b_nT"] = np.full(est["t"].size, 20000.0000026)
+    est["sigma_b_nT"] = np.full(est["t"].size, 1.9e-6)
+    truth["true_b_nT"] = np.full(truth["t"].size, 20000.0)
+    path = write_estimates(tmp_path / "exact.csv", est, extras=("sigma_b_nT",))
+    out = make_report(path, write_truth(tmp_path / "rec.csv", truth), tmp_path / "r", figures=False)
+    assert out.summary["b_error_std_nT"] == 0.0 and out.summary["b_within_1sigma"] == 0.0
+    assert any("one constant offset" in n and "says nothing about its honesty" in n for n in out.notes)
 
 
 def test_sigma_figure_explains_error_below_the_bound(static_files, tmp_path):
