@@ -537,7 +537,7 @@ def _fit_inliers(u, b_nT, z, s_basis, knots, basis, nearest_knot, channels, nois
         col += 8
     if pfit.terms and pfit.terms["detuning"]:
         fit_info["detuning_law_std"] = std[col:col + 8].reshape(2, 2, 2).tolist()
-        fit_info["detuning_shape_std"] = std[col + 8:col + 12].reshape(2, 2).tolist()
+        fit_info["detuning_shape_std"] = std[col + 8:col + 16].reshape(2, 2, 2).tolist()
     params_per_knot = N_LINEAR_TERMS + np.array([n_harmonics(d) if d >= 0 else 0 for d in per_level])
     check = check_magnitudes(coef, knots, noise, b_nT, params_per_knot)
     names = ["pump a", "pump b"] + [f"probe {i + 1}" for i in range(phys.probe_axes.shape[0])]

@@ -26,8 +26,11 @@ Channel (probe q, pump p, other pump p'), field direction u, at magnitude knot k
   shared by its channels and every magnitude.
 * x_k is a detuning, relative to the line width, that follows the longitudinal polarization (a
   combination of the pumps' longitudinal drives L): the nonlinear-Zeeman heading shift at
-  Earth-field magnitudes. L's even factor (v) carries the pumps' efficiency and line width versus
-  the pump-field angle, which the polarization and the width follow. The coefficients t follow
+  Earth-field magnitudes. Each path (resonance j, pump m) has its own even factor
+  1 + sum_n v[j, m, n] (p_n.u)^2: the polarization reaches resonance j from pump m through the
+  exchange-coupled spins and j's own line width, each following the pumps' efficiency versus the
+  pump-field angle, so the four paths differ (a factor shared by the pumps and one per resonance,
+  multiplied, could not follow them and biased the pump axes at Earth field by most of their sigma). The coefficients t follow
   t_0 + t_2 (|B| / 50 uT)^2: the
   nonlinear Zeeman splitting grows as f_L^2 (docs/references.md, 2 f_L^2 / f_hfs), a light shift adds a
   constant; four pairs (t_0, t_2) in all, whatever the number of knots.
@@ -99,7 +102,8 @@ class PhysicsParameters:
     the magnitude knots (for the 1/B of the s' leak); efficiency (2,2) complex: e [pump of the channel, pump whose
     (p.u)^2 it follows]; detuning (2,2,K) real: t [pump of the channel, pump whose p.u it follows,
     knot]; detuning_law (2,2,2): its (t_0, t_2), from which a fit sets `detuning`; detuning_shape
-    (2,2): v [pump m of L_m, pump whose (p.u)^2 it follows]. Omitted terms take their ideal values.
+    (2,2,2): v [resonance j, pump m of the path, pump whose (p.u)^2 it follows]. Omitted terms take their
+    ideal values.
     """
 
     pump_axes: np.ndarray      # (2, 3) unit vectors: pump a, pump b
@@ -116,7 +120,6 @@ class PhysicsParameters:
     knots_nT: np.ndarray | None = None
     detuning_law: np.ndarray | None = None
     detuning_shape: np.ndarray | None = None
-    detuning_width_shape: np.ndarray | None = None
 
     def __post_init__(self):
         self.pump_axes = np.asarray(self.pump_axes, float)
@@ -143,12 +146,10 @@ class PhysicsParameters:
                            else np.asarray(self.efficiency, complex))
         self.detuning_law = (np.zeros((2, 2, 2)) if self.detuning_law is None
                              else np.asarray(self.detuning_law, float))
-        self.detuning_shape = (np.zeros((2, 2)) if self.detuning_shape is None
+        self.detuning_shape = (np.zeros((2, 2, 2)) if self.detuning_shape is None
                                else np.asarray(self.detuning_shape, float))
-        self.detuning_width_shape = (np.zeros((2, 2)) if self.detuning_width_shape is None
-                                     else np.asarray(self.detuning_width_shape, float))
-        if self.detuning_law.shape != (2, 2, 2) or self.detuning_shape.shape != (2, 2):
-            raise ValueError("physics detuning_law must have shape (2, 2, 2) and detuning_shape (2, 2)")
+        if self.detuning_law.shape != (2, 2, 2) or self.detuning_shape.shape != (2, 2, 2):
+            raise ValueError("physics detuning_law and detuning_shape must have shape (2, 2, 2)")
         self.detuning = (detuning_from_law(self.detuning_law, self.knots_nT) if self.detuning is None
                          else np.asarray(self.detuning, float))
         if self.efficiency.shape != (2, 2) or self.detuning.shape != (2, 2, shape[1]):
@@ -184,24 +185,21 @@ class PhysicsParameters:
         return {"pu": pu, "qu": qu, "c": c, "s": s, "c_leak": cx, "s_leak": sx}
 
     def longitudinal(self, pu: np.ndarray) -> np.ndarray:
-        """Return L (N, 2): each pump's longitudinal drive (p_m.u)(1 + sum_m' v[m, m'] (p_m'.u)^2) from p.u (N,2)."""
-        return pu * (1.0 + (pu ** 2) @ self.detuning_shape.T)
+        """Return L (N, 2 [j], 2 [m]): pump m's longitudinal drive as resonance j feels it, (p_m.u)(1 + sum_n v[j, m, n] (p_n.u)^2)."""
+        return pu[:, None, :] * (1.0 + np.einsum("nk,jmk->njm", pu ** 2, self.detuning_shape))
 
     def longitudinal_gradient(self, pu: np.ndarray) -> np.ndarray:
-        """Return dL_m/d(p_n.u) (N, 2 [m], 2 [n]) from p.u (N,2)."""
+        """Return dL[j, m]/d(p_n.u) (N, 2 [j], 2 [m], 2 [n]) from p.u (N,2)."""
         v = self.detuning_shape
-        out = 2.0 * pu[:, :, None] * v[None, :, :] * pu[:, None, :]          # pu_m * 2 v[m,n] pu_n
+        out = 2.0 * pu[:, None, :, None] * v[None] * pu[:, None, None, :]     # p_m * 2 v[j,m,n] p_n
+        base = 1.0 + np.einsum("nk,jmk->njm", pu ** 2, v)
         for m in range(2):
-            out[:, m, m] += 1.0 + (pu ** 2) @ v[m]
+            out[:, :, m, m] += base[:, :, m]
         return out
-
-    def detuning_width(self, pu: np.ndarray) -> np.ndarray:
-        """Return (N, 2): the even factor 1 + sum_m y[j, m] (p_m.u)^2 of each pump j's detuning (its line width)."""
-        return 1.0 + (pu ** 2) @ self.detuning_width_shape.T
 
     def detuning_terms(self, pu: np.ndarray) -> np.ndarray:
         """Return x (N, 2, K): each pump's relative detuning at every knot, from p.u (N,2)."""
-        return np.einsum("nm,jmk->njk", self.longitudinal(pu), self.detuning) * self.detuning_width(pu)[:, :, None]
+        return np.einsum("njm,jmk->njk", self.longitudinal(pu), self.detuning)
 
     def efficiency_factor(self, pu: np.ndarray) -> np.ndarray:
         """Return eta (N, C): each channel's efficiency factor 1 + sum_m e[pump, m] (p_m.u)^2 from p.u (N,2)."""

@@ -264,8 +264,7 @@ class _Problem:
             col += 8
         if self.fit_detuning:
             out[col:col + 8] = phys.detuning_law.ravel()
-            out[col + 8:col + 12] = phys.detuning_shape.ravel()
-            out[col + 12:col + 16] = phys.detuning_width_shape.ravel()
+            out[col + 8:col + 16] = phys.detuning_shape.ravel()
         return out
 
     def cost(self, resid, phys: PhysicsParameters) -> float:
@@ -303,11 +302,10 @@ class _Problem:
         inner = (rot * own + leak * geo["c_leak"][:, :, None] + sleak * geo["s_leak"][:, :, None]
                  + self.at_rows(phys.offset))
         drdx = -1j * hand / (1.0 + 1j * hand * x) ** 2                       # dR/dx (N, C, Ke)
-        longi = phys.longitudinal(pu)                                         # (N, 2)
-        dlong_dpu = phys.longitudinal_gradient(pu)                            # (N, 2 [m], 2 [n])
-        width = phys.detuning_width(pu)                                       # (N, 2)
+        longi = phys.longitudinal(pu)                                         # (N, 2 [j], 2 [m])
+        dlong_dpu = phys.longitudinal_gradient(pu)                            # (N, 2 [j], 2 [m], 2 [n])
         t_rows = self.at_rows(phys.detuning)                                  # (N or 1, 2, 2, Ke)
-        xraw = np.einsum("nm,njmk->njk", longi, np.broadcast_to(t_rows, (n,) + t_rows.shape[1:]))
+        t_all = np.broadcast_to(t_rows, (n,) + t_rows.shape[1:])              # (N, 2 [j], 2 [m], Ke)
         ee = eta[:, :, None]
         p_own, p_oth, q_all = phys.pump_axes[pj], phys.pump_axes[1 - pj], phys.probe_axes[qi]
         d = np.zeros((n, c_n, self.n_theta), complex)                        # d(prediction)/d(theta)
@@ -317,9 +315,7 @@ class _Problem:
                 ue = u @ e
                 if beam < 2:                                  # pump `beam` turns along e
                     m = beam
-                    dx_pump = (np.einsum("nm,njmk->njk", dlong_dpu[:, :, m] * ue[:, None],
-                                         np.broadcast_to(t_rows, (n,) + t_rows.shape[1:])) * width[:, :, None]
-                               + xraw * (2.0 * phys.detuning_width_shape[:, m][None, :] * (pu[:, m] * ue)[:, None])[:, :, None])
+                    dx_pump = np.einsum("njq,njqk->njk", dlong_dpu[:, :, :, m] * ue[:, None, None], t_all)
                     dr = drdx * dx_pump[:, pj, :]
                     d_eta = 2.0 * phys.efficiency[pj, m][None, :] * (pu[:, m] * ue)[:, None]      # (N, C)
                     dcq = e @ q_all.T - ue[:, None] * qu[:, qi]                                    # dc or dc'
@@ -352,21 +348,16 @@ class _Problem:
             for j in range(2):
                 for m in range(2):
                     for r in range(2):
-                        v = lead * (longi[:, m] * width[:, j])[:, None, None] * law[:, r, None, :]
+                        v = lead * longi[:, pj, m][:, :, None] * law[:, r, None, :]
                         d[:, :, col] = np.sum(s * v, axis=2) * (pj == j)[None, :]
                         col += 1
-            t_ch = np.broadcast_to(t_rows, (n,) + t_rows.shape[1:])[:, pj]    # (N, C, 2 [m], Ke)
-            for m in range(2):
-                for mm in range(2):
-                    dl = pu[:, m] * pu[:, mm] ** 2                              # dL_m / dv[m, mm]
-                    dx = dl[:, None, None] * t_ch[:, :, m, :] * width[:, pj][:, :, None]
-                    d[:, :, col] = np.sum(s * lead * dx, axis=2)
-                    col += 1
+            # The paths' even shapes detuning_shape[j, m, n], in that (row-major) order.
             for j in range(2):
                 for m in range(2):
-                    dx = xraw[:, pj, :] * (pu[:, m] ** 2)[:, None, None]
-                    d[:, :, col] = np.sum(s * lead * dx, axis=2) * (pj == j)[None, :]
-                    col += 1
+                    for nn in range(2):
+                        dx = (pu[:, m] * pu[:, nn] ** 2)[:, None, None] * t_all[:, pj, m, :]
+                        d[:, :, col] = np.sum(s * lead * dx, axis=2) * (pj == j)[None, :]
+                        col += 1
         jac = np.empty((2, n, c_n, self.n_theta))
         for ch in range(c_n):
             proj = qs[ch].project(d[:, ch, :])
@@ -392,7 +383,7 @@ class _Problem:
                                 phys.handedness.copy(), phys.channels, phys.quadrature.copy(),
                                 phys.leak.copy(), phys.offset.copy(), phys.efficiency.copy(),
                                 phys.detuning.copy(), phys.leak_quadrature.copy(), phys.knots_nT.copy(),
-                                phys.detuning_law.copy(), phys.detuning_shape.copy(), phys.detuning_width_shape.copy())
+                                phys.detuning_law.copy(), phys.detuning_shape.copy())
         for beam in range(self.n_beams):
             e1, e2 = frames[beam]
             v = delta[2 * beam] * e1 + delta[2 * beam + 1] * e2
@@ -408,8 +399,7 @@ class _Problem:
         if self.fit_detuning:
             out.detuning_law = out.detuning_law + delta[col:col + 8].reshape(2, 2, 2)
             out.detuning = detuning_from_law(out.detuning_law, self.knots_nT)
-            out.detuning_shape = out.detuning_shape + delta[col + 8:col + 12].reshape(2, 2)
-            out.detuning_width_shape = out.detuning_width_shape + delta[col + 12:col + 16].reshape(2, 2)
+            out.detuning_shape = out.detuning_shape + delta[col + 8:col + 16].reshape(2, 2, 2)
         return out
 
     def frames(self, phys: PhysicsParameters) -> list:

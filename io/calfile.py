@@ -55,7 +55,6 @@ def _table_arrays(cal: Calibration) -> dict[str, np.ndarray]:
     out["detuning"] = np.asarray(ph.detuning, float)
     out["detuning_law"] = np.asarray(ph.detuning_law, float)
     out["detuning_shape"] = np.asarray(ph.detuning_shape, float)
-    out["detuning_width_shape"] = np.asarray(ph.detuning_width_shape, float)
     return out
 
 
@@ -372,8 +371,7 @@ def _build(rd: _Reader, path: Path, doc: dict, version: int) -> Calibration:
               for name in ("quadrature", "leak", "offset")}
     leak_q = _complex(arrays, "leak_quadrature", (c_n, len(LEAK_POWERS)), npz_path, required=version >= 2)
     efficiency = _complex(arrays, "efficiency", (2, 2), npz_path, required=version >= 2)
-    shapes = {"detuning": (2, 2, k_n), "detuning_law": (2, 2, 2), "detuning_shape": (2, 2),
-              "detuning_width_shape": (2, 2)}
+    shapes = {"detuning": (2, 2, k_n), "detuning_law": (2, 2, 2), "detuning_shape": (2, 2, 2)}
     extra_real = {}
     for name, shape in shapes.items():
         v = arrays.get(name)
@@ -386,8 +384,7 @@ def _build(rd: _Reader, path: Path, doc: dict, version: int) -> Calibration:
     model = ResponseModel(channels, degree, knots, coef, noise)
     phys = PhysicsParameters(pump_axes, probe_axes, gains, hand, channels, extras["quadrature"], extras["leak"],
                              extras["offset"], efficiency, extra_real["detuning"], leak_q, knots,
-                             extra_real["detuning_law"], extra_real["detuning_shape"],
-                             extra_real["detuning_width_shape"])
+                             extra_real["detuning_law"], extra_real["detuning_shape"])
     reports = [ChannelReport(c, float(noise[i]),
                              rd.number(cd.get("heldout_phase_deg", 0.0), f"channels[{i}].heldout_phase_deg"),
                              rd.number(cd.get("heldout_amplitude_pct", 0.0), f"channels[{i}].heldout_amplitude_pct"))
