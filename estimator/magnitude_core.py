@@ -246,25 +246,8 @@ def estimate_rows(f, u_in, mode, sigma, cov_in, gammas, codes, reference, degree
                 spread[i] = power / FOUR_PI / slope ** 2
             lb = math.log(b) if (math.isfinite(b) and b > 0) else log_levels[0]
             # b_i = m_i - delta_i(u, b_i): an error e in m_i or in delta_i moves b_i by e / slope.
-            # The frequency noise at b: numpy.interp in ln|B| (clamped at the ends).
-            last = log_levels.shape[0] - 1
-            if lb >= log_levels[last]:
-                level_noise = noise[last, i]
-            elif lb < log_levels[0]:
-                level_noise = noise[0, i]
-            else:
-                lo, hi = 0, last
-                while hi - lo > 1:
-                    mid = (lo + hi) // 2
-                    if log_levels[mid] <= lb:
-                        lo = mid
-                    else:
-                        hi = mid
-                if lb == log_levels[lo]:
-                    level_noise = noise[lo, i]
-                else:
-                    rise = (noise[lo + 1, i] - noise[lo, i]) / (log_levels[lo + 1] - log_levels[lo])
-                    level_noise = rise * (lb - log_levels[lo]) + noise[lo, i]
+            # The frequency noise at b, interpolated in ln|B| (clamped at the ends) as MagnitudeModel.noise does.
+            level_noise = np.interp(lb, log_levels, noise[:, i])
             var_f[i] = level_noise ** 2 * (1.0 + pred) / slope ** 2
         # S = diag(frequency noise) + G C G^T + the sphere covariance where the direction is unknown.
         s[0, 0] = var_f[0]

@@ -202,6 +202,7 @@ def run(args) -> int:
     capture_lines: list[str] = []
     warnings: list[str] = []
     outputs = _Outputs(out, args.out, args.force)
+    behind = _WriteBehind()               # a recording's blocks are written one behind the estimator
     ok = False
     try:
         def note(flags, probes):
@@ -243,7 +244,6 @@ def run(args) -> int:
             reader = RecordingReader(args.input)
             tracker = None
             geo_ready = False
-            behind = _WriteBehind()
             for block in _progress(reader, "chunks", args.no_progress):
                 if not geo_ready:             # the metadata lines are read with the first block
                     geo.take_metadata(reader.metadata, args.input)
@@ -269,7 +269,7 @@ def run(args) -> int:
             warnings += reader.warnings
         ok = True
     finally:
-        if not ok and "behind" in locals():
+        if not ok:
             behind.finish(raise_error=False)     # the block being written ends before the file is dropped
         outputs.close(ok)
     seconds = time.perf_counter() - start
