@@ -5,8 +5,8 @@ segment, input flags) and writes one output row per sample. It stops early, retu
 index, when the track must be (re)started: the Python side (estimator/tracker.py) asks the
 initiator (the lookup-table inverse) and calls `finish_acquisition`, then resumes. Everything else
 (prediction, measurement model, drift states, information-form update, chi-square gating per probe,
-adaptive noise with a learned baseline, health flags, reset rules) happens here, compiled by numba
-and cached on disk.
+adaptive noise with a learned baseline, health flags, reset rules) happens here, compiled by numba: ahead of time at install, or
+by its JIT where that module is missing (fieldvane/kernels.py).
 
 Equations (the error-state EKF on the sphere of estimator/tracker.py's docstring). Error state:
 direction error (2, tangent basis e1, e2), optional per-probe log-gain and per-channel phase drifts,
@@ -29,7 +29,7 @@ from __future__ import annotations
 import math
 
 import numpy as np
-from numba import njit
+from fieldvane.kernels import entry, helper
 
 # ---- reasons for a (re)start, stored in the int state and returned to Python
 R_NONE, R_START, R_GATED, R_NIS, R_GAP, R_FAULT, R_RESTART, R_BACKWARDS, R_BAD_TIME = range(9)
@@ -153,7 +153,7 @@ class FilterArrays:
 
 
 # ============================================================================== small dense algebra
-@njit(cache=True, nogil=True)
+@helper(cache=True, nogil=True)
 def _solve(a, b, n, k):
     """Solve a[:n,:n] X = b[:n,:k] in place (b becomes X) by elimination with partial pivoting.
 
@@ -198,7 +198,7 @@ def _solve(a, b, n, k):
     return True, logdet
 
 
-@njit(cache=True, nogil=True)
+@helper(cache=True, nogil=True)
 def _positive_definite(p, n, l):
     """Return True when the symmetric p[:n,:n] is finite and positive definite (Cholesky pivots > 0); l: scratch."""
     for j in range(n):
@@ -218,7 +218,7 @@ def _positive_definite(p, n, l):
 
 
 # ============================================================================== geometry
-@njit(cache=True, nogil=True)
+@helper(cache=True, nogil=True)
 def _set_frame(fs, ux, uy, uz, ax, ay, az):
     """Store u and e1 renormalized against rounding (u unit, e1 unit and orthogonal), e2 = u x e1."""
     nu = math.sqrt(ux * ux + uy * uy + uz * uz)
@@ -232,7 +232,7 @@ def _set_frame(fs, ux, uy, uz, ax, ay, az):
     fs[S_E2], fs[S_E2 + 1], fs[S_E2 + 2] = uy * az - uz * ay, uz * ax - ux * az, ux * ay - uy * ax
 
 
-@njit(cache=True, nogil=True)
+@helper(cache=True, nogil=True)
 def _turn(fs, wx, wy, wz):
     """Rotate u and its basis by the rotation vector (wx, wy, wz) (rad, sensor frame; Rodrigues)."""
     th = math.sqrt(wx * wx + wy * wy + wz * wz)
@@ -253,7 +253,7 @@ def _turn(fs, wx, wy, wz):
     _set_frame(fs, ux, uy, uz, ax, ay, az)
 
 
-@njit(cache=True, nogil=True)
+@helper(cache=True, nogil=True)
 def _move(fs, a1, a2):
     """Move u along the great circle a1*e1 + a2*e2 (rad), parallel-transport (e1, e2); return the angle."""
     th = math.hypot(a1, a2)
@@ -272,7 +272,7 @@ def _move(fs, a1, a2):
 
 
 # ============================================================================== model
-@njit(cache=True, nogil=True, fastmath=True)      # finite inputs only; lets the sums vectorize
+@helper(cache=True, nogil=True, fastmath=True)      # finite inputs only; lets the sums vectorize
 def _model_rows(fs, istate, icfg, w_table, exps, weff, seg, segt, rows, pw):
     """Write rows (4, 2C): whitened h(u, |B|) and its ambient gradient d/d(x, y, z) at the current u."""
     nmono = icfg[I_NMONO]
@@ -308,7 +308,7 @@ def _model_rows(fs, istate, icfg, w_table, exps, weff, seg, segt, rows, pw):
             flat[c] += v * wrow[c]
 
 
-@njit(cache=True, nogil=True)
+@helper(cache=True, nogil=True)
 def _measurement(fs, x, icfg, comp_probe, chan_probe, rows, h, ht):
     """Apply the drift states to the model rows; write h (2C) and H_o^T (no, 2C) (whitened)."""
     n_gain, n_phase = icfg[I_NGAIN], icfg[I_NPHASE]
@@ -353,7 +353,7 @@ def _measurement(fs, x, icfg, comp_probe, chan_probe, rows, h, ht):
 
 
 # ============================================================================== noise level
-@njit(cache=True, nogil=True)
+@helper(cache=True, nogil=True)
 def _ring_push(ring, ordered, pos, cnt, value):
     """Put value into a ring buffer (replacing its oldest entry when full) and its sorted twin; return (pos, cnt)."""
     size = ring.shape[0]
@@ -372,7 +372,7 @@ def _ring_push(ring, ordered, pos, cnt, value):
     return (pos + 1) % size, min(cnt + 1, size)
 
 
-@njit(cache=True, nogil=True)
+@helper(cache=True, nogil=True)
 def _sorted_median(ordered, cnt):
     """Return the median of the first cnt entries of a sorted array."""
     if cnt % 2:
@@ -380,7 +380,7 @@ def _sorted_median(ordered, cnt):
     return 0.5 * (ordered[cnt // 2 - 1] + ordered[cnt // 2])
 
 
-@njit(cache=True, nogil=True)
+@helper(cache=True, nogil=True)
 def _push_noise(p, value, learning, short_ring, short_sorted, long_ring, long_sorted, ring_pos, baseline, ratio, cfg,
                 t, fs, probe_state):
     """Add one noise value (variance ratio) of probe p; refresh its short level, baseline and ratio.
@@ -419,7 +419,7 @@ def _push_noise(p, value, learning, short_ring, short_sorted, long_ring, long_so
 
 
 # ============================================================================== the filter
-@njit(cache=True, nogil=True)
+@helper(cache=True, nogil=True)
 def _predict(fs, x, p, cfg, n, ng, no, dt):
     """Propagate P and the nominal direction over dt (s): F = I + dt [[0, B], [0, 0]] on (direction, rate)."""
     arw, rrw = cfg[C_ARW], cfg[C_RRW]
@@ -466,7 +466,7 @@ def _predict(fs, x, p, cfg, n, ng, no, dt):
     _turn(fs, x[r0] * dt, x[r0 + 1] * dt, x[r0 + 2] * dt)
 
 
-@njit(cache=True, nogil=True)
+@helper(cache=True, nogil=True)
 def _write_output(fout, iout, i, fs, p, flags, nis, dof, bound2, noise, probes, t, floor2, loglik):
     """Write sample i's output row: u (nan without estimate), sigma (deg), NIS, bound^2, noise factor, flags."""
     if flags & NO_ESTIMATE:
@@ -485,7 +485,7 @@ def _write_output(fout, iout, i, fs, p, flags, nis, dof, bound2, noise, probes, 
     iout[i, J_PROBES] = probes
 
 
-@njit(cache=True, nogil=True)
+@helper(cache=True, nogil=True)
 def _subset_info(mask, jp, bp, yyp, n_probes, no, j, b):
     """Sum per-probe information j (no, no), b (no) and y^T R^-1 y over the probes in bitmask `mask`."""
     yy = 0.0
@@ -503,7 +503,7 @@ def _subset_info(mask, jp, bp, yyp, n_probes, no, j, b):
     return yy
 
 
-@njit(cache=True, nogil=True)
+@helper(cache=True, nogil=True)
 def _gain(p, no, n, j, b, yy, work_a, work_b, dx):
     """Write M^T = (I + P_oo J)^-1 P_o into work_b (no, n) and dx = M b; return (ok, log det(I + P_oo J), NIS)."""
     for r in range(no):
@@ -528,7 +528,7 @@ def _gain(p, no, n, j, b, yy, work_a, work_b, dx):
     return True, logdet, nis
 
 
-@njit(cache=True, nogil=True)
+@helper(cache=True, nogil=True)
 def _gain_weakly_separable(j, no, n_probes, use):
     """Return True when eliminating the used probe's log-gain leaves less than half the direction information
     (the determinant of the Schur complement of J over that of J's direction block)."""
@@ -546,7 +546,7 @@ def _gain_weakly_separable(j, no, n_probes, use):
     return not (det_d > 0.0 and s00 * s11 - s01 * s01 > 0.5 * det_d)
 
 
-@njit(cache=True, nogil=True)
+@helper(cache=True, nogil=True)
 def _marginal_nis(p, no, j, b, yy, work_a, work_b):
     """Return y^T (H P H^T + R)^-1 y = yy - b^T (I + P_oo J)^-1 P_oo b (information identity), or inf."""
     for r in range(no):
@@ -567,7 +567,12 @@ def _marginal_nis(p, no, j, b, yy, work_a, work_b):
     return nis
 
 
-@njit(cache=True, nogil=True)
+@entry("i8(f8[::1], i8[::1], f8[:, :, ::1], i8[:, ::1], i8[::1], i8[::1], f8[::1], f8[::1], f8[::1], i8[::1], "
+       "i8[::1], f8[::1], f8[:, ::1], f8[::1], f8[::1], f8[:, ::1], f8[:, ::1], f8[:, ::1], f8[:, ::1], "
+       "i8[:, ::1], f8[:, ::1], i8[::1], i8[:, ::1], f8[::1], f8[:, ::1], f8[::1], f8[:, ::1], i8[::1], "
+       "f8[::1], i8[::1], i8[::1], f8[::1], f8[::1], f8[:, ::1], i8[:, ::1], i8, i8, i8, b1, f8[::1], f8[::1], "
+       "f8[:, ::1], f8[::1])",
+       cache=True, nogil=True)
 def run_filter(cfg, icfg, w_table, exps, comp_probe, chan_probe, normalizers, gates, fs, istate, counters, x, p,
                ratio, baseline, short_ring, short_sorted, long_ring, long_sorted, ring_pos, zhist, zback, probe_state,
                probe_ema, weff,
@@ -1110,7 +1115,7 @@ def run_filter(cfg, icfg, w_table, exps, comp_probe, chan_probe, normalizers, ga
     return stop
 
 
-@njit(cache=True, nogil=True)
+@helper(cache=True, nogil=True)
 def _stage(fout, iout, i, flags, present, t, nis, dof, bound2, ll):
     """Keep sample i's partial output while Python asks the initiator (finish_acquisition completes it)."""
     iout[i, J_FLAGS] = flags
@@ -1122,7 +1127,7 @@ def _stage(fout, iout, i, flags, present, t, nis, dof, bound2, ll):
     fout[i, O_LOGLIK] = ll
 
 
-@njit(cache=True, nogil=True)
+@helper(cache=True, nogil=True)
 def sigma_log_of(sigma_log, use, comp_probe, zw_row, m):
     """Return the sum of log calibrated noise variances (V^2) over the finite components of the probes in `use`."""
     s = 0.0
@@ -1132,7 +1137,7 @@ def sigma_log_of(sigma_log, use, comp_probe, zw_row, m):
     return s
 
 
-@njit(cache=True, nogil=True)
+@helper(cache=True, nogil=True)
 def _shift_history(z_row, zhist, zback, present, comp_probe, n_probes, m):
     """Keep this sample's values as the previous ones (per probe in the bitmask `present`; others forget)."""
     for k in range(m):
@@ -1146,7 +1151,7 @@ def _shift_history(z_row, zhist, zback, present, comp_probe, n_probes, m):
             zback[q] = 0
 
 
-@njit(cache=True, nogil=True)
+@helper(cache=True, nogil=True)
 def finish_acquisition(cfg, icfg, fs, istate, counters, x, p, ratio, zback, probe_state, fout, iout, i, ok, u, e1,
                        cov, init_var):
     """Complete sample i after Python asked the initiator: start the track from (u, cov) if ok, else coast.

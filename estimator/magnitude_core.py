@@ -7,8 +7,8 @@ fitted delta's own prediction variance, the direction's uncertainty through the 
 delta, the sphere-mean correction and its spread where the direction is unknown, inverse-variance
 fusion and the isotopes' difference's sigma. The live loop estimates a few samples per call, where
 numpy's per-call overhead of many tiny array operations was most of the cost; here one call walks
-the rows once. Compiled by numba and cached on disk like estimator/filter_core.py (one entry point:
-each compiled function costs start-up time to load).
+the rows once. Compiled by numba like estimator/filter_core.py (fieldvane/kernels.py: ahead of time at
+install, or by the JIT).
 
 Harmonics: Y_k(u) = sum_j mono_j(u) T[j, k] with the monomials of estimator/monomials.py and T from
 estimator/harmonics.monomial_coefficients; the ambient gradient dY_k/du from the monomials' gradients.
@@ -19,7 +19,7 @@ from __future__ import annotations
 import math
 
 import numpy as np
-from numba import njit
+from fieldvane.kernels import entry, helper
 
 # Envelope codes (magnitude_model.ENVELOPES, in order) and the kinds of direction uncertainty.
 INVERSE, CONSTANT, SQUARE = 0, 1, 2
@@ -59,7 +59,9 @@ def direction_uncertainty(u_cov, n: int) -> tuple[int, np.ndarray, np.ndarray]:
 # error_model="numpy": divisions and roots of non-finite or zero values give inf/nan as the numpy code did
 # (the Python error model would raise ZeroDivisionError instead). One function without compiled helpers: a helper
 # taking arrays costs reference-count updates per call, which were most of the time per row.
-@njit(cache=True, nogil=True, error_model="numpy")
+@entry("f8[:, ::1](f8[:, ::1], f8[:, ::1], i8, f8[::1], f8[:, :, ::1], f8[::1], i8[::1], f8, i8[::1], "
+       "f8[:, :, ::1], f8[:, :, ::1], i8[:, ::1], f8[:, :, ::1], f8[::1], f8[:, ::1], i8)",
+       cache=True, nogil=True, error_model="numpy")
 def estimate_rows(f, u_in, mode, sigma, cov_in, gammas, codes, reference, degrees, coef, unit_cov, exps, to_harm,
                   log_levels, noise, newton_steps):
     """Return (N, 9) columns OUT_*: |B|, per isotope (2), sigma_b, per-isotope sigma (2), sigma of the difference (nT),

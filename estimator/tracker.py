@@ -41,14 +41,14 @@ from typing import TYPE_CHECKING, Protocol
 
 import numpy as np
 
-from fieldvane.estimator import chi_square, filter_core as core
+from fieldvane.estimator import chi_square, filter_core as core, prepare_core
 from fieldvane.estimator.blind import median_bound_deg
 from fieldvane.estimator.estimate import Estimate
 from fieldvane.estimator.filter_settings import FilterSettings
 from fieldvane.estimator.flags import EstimateFlag as F
 from fieldvane.estimator.lockin_noise import (autocorrelation, correlation_factor, group_delay_s,
                                               second_difference_variance)
-from fieldvane.estimator.magnitude import disagreement, fuse_magnitudes, magnitudes_from_frequencies
+from fieldvane.estimator.magnitude import disagreement
 from fieldvane.estimator.response import to_real
 from fieldvane.estimator.samples import Sample, SampleBlock, channel_probe
 from fieldvane.estimator.sphere import angle_between, tangent_basis
@@ -156,6 +156,17 @@ class TrackRecord:
         cols.update(self.channel_readouts)
         return cols
 
+    def rows(self) -> list[dict[str, float]]:
+        """Return the estimates CSV rows (what Estimate.row() gives for each of estimates(), built without them)."""
+        u, b = self.u, self.b_nT
+        cols = {"t": self.t, "ux": u[:, 0], "uy": u[:, 1], "uz": u[:, 2], "b_nT": b, "bx_nT": b * u[:, 0],
+                "by_nT": b * u[:, 1], "bz_nT": b * u[:, 2], "sigma_deg": self.sigma_deg, "flags": self.flags}
+        cols.update(self.extra_columns())
+        names = list(cols)
+        ints = {"flags", "nis_dof", "probes_used"}
+        lists = [np.asarray(cols[k], np.int64 if k in ints else float).tolist() for k in names]
+        return [dict(zip(names, values)) for values in zip(*lists)]
+
     def estimates(self) -> list[Estimate]:
         """Return the records as Estimate objects (extras: nis, nis_dof, b_a_nT, b_b_nT, bound_deg, ...)."""
         cols = self.extra_columns()
@@ -184,28 +195,6 @@ def channel_readouts(z: np.ndarray, channels) -> dict[str, np.ndarray]:
             if c1 in channels and c2 in channels:
                 out[f"amp_{c1}_{c2}"] = amp[:, channels.index(c1)] / amp[:, channels.index(c2)]
     return out
-
-
-def sample_magnitudes(f_hz: np.ndarray, gammas_hz_per_nt, tolerance: float, calibrated_range_nT,
-                      margin: float) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
-    """Return (|B| (N,) nT or nan, per-isotope |B| (N, 2) nT, flags (N,)) from frequencies (N, 2) Hz.
-
-    Both isotopes good: the fused mean, MAGNITUDE_DISAGREE beyond tolerance. One good: that one,
-    with BAD_INPUT. None: nan and BAD_INPUT. OUTSIDE_CALIBRATION outside the widened knot range.
-    """
-    f_hz = np.atleast_2d(np.asarray(f_hz, float))
-    with np.errstate(invalid="ignore", divide="ignore", over="ignore"):
-        per = magnitudes_from_frequencies(f_hz, gammas_hz_per_nt)
-        ok = np.isfinite(per) & (per > 0)
-        both = ok[:, 0] & ok[:, 1]
-        fused, _, disagree = fuse_magnitudes(np.where(ok, f_hz, 1.0), gammas_hz_per_nt, tolerance)
-    b = np.where(both, fused, np.where(ok[:, 0], per[:, 0], np.where(ok[:, 1], per[:, 1], np.nan)))
-    flags = np.where(both, np.where(disagree, _DISAGREE, 0), _BAD)
-    lo, hi = calibrated_range_nT
-    valid = both | ok[:, 0] | ok[:, 1]
-    known = np.where(valid, b, lo)
-    outside = valid & ((known < lo * (1 - margin)) | (known > hi * (1 + margin)))
-    return b, per, np.where(outside, flags | _OUTSIDE, flags).astype(np.int64)
 
 
 def rate_coupling(e1, e2) -> np.ndarray:
@@ -280,6 +269,15 @@ class Tracker:
         self.median_bound_deg = cache[key]
         median_bound = math.radians(self.median_bound_deg)
         self._low_amp = s.low_signal_fraction * median_amp
+        limits = np.zeros(prepare_core.N_LIMITS)
+        limits[prepare_core.L_TOLERANCE] = s.magnitude_tolerance
+        limits[prepare_core.L_RANGE_LO], limits[prepare_core.L_RANGE_HI] = lo, hi
+        limits[prepare_core.L_MARGIN] = s.calibration_margin
+        limits[prepare_core.L_LOW_AMP] = self._low_amp
+        limits[prepare_core.L_SEG_LO], limits[prepare_core.L_SEG_HI] = model.range_nT
+        limits[prepare_core.L_MERR_CAP] = s.model_error_cap_ratio
+        self._prepare_limits = limits
+        self._gammas_array = np.array(self._gammas)
         self._sigma = model.sigma * np.repeat(self._channel_scales(), 2)
         comp_probe = np.repeat(model.channel_probe_index, 2)
         self._comp_probe = comp_probe
@@ -448,38 +446,25 @@ class Tracker:
     def prepare(self, t, f_hz, z, channels, restarted=None) -> PreparedInput:
         """Return samples checked and converted for the core: t (N,) s, f (N, 2) Hz, z (N, C') complex V."""
         z = self.calibrated_z(z, channels)
-        t = np.atleast_1d(np.asarray(t, float))
+        t = np.ascontiguousarray(t, float)           # a column of a larger table arrives strided
+        f = np.ascontiguousarray(np.atleast_2d(np.asarray(f_hz, float)))
         zr = to_real(z)
-        s = self.settings
-        b, per, flags = sample_magnitudes(f_hz, self._gammas, s.magnitude_tolerance,
-                                          self.calibration.magnitude_range_nT, s.calibration_margin)
-        good = np.isfinite(zr)
-        with np.errstate(invalid="ignore", over="ignore"):
-            rms = np.sqrt(np.where(good, zr * zr, 0.0).sum(axis=1) * 2 / np.maximum(good.sum(axis=1), 1))
-        flags = flags | np.where(good.any(axis=1) & (rms < self._low_amp), _LOW, 0)
-        seg, seg_t = self.model.segments(b)
-        seg = np.where(np.isfinite(b), seg, -1).astype(np.int64)
-        merr = self._model_error(b)
-        restart = np.zeros(len(t), np.int64) if restarted is None else np.asarray(restarted, np.int64)
-        with np.errstate(invalid="ignore", over="ignore"):
-            zw = zr / self._sigma
-        return PreparedInput(t, np.ascontiguousarray(zw), b, per, flags.astype(np.int64), seg,
-                             np.asarray(seg_t, float), restart, merr, z)
+        n = len(zr)
+        b, per, flags = np.empty(n), np.empty((n, 2)), np.empty(n, np.int64)
+        seg, seg_t, merr, zw = np.empty(n, np.int64), np.empty(n), np.empty(n), np.empty(zr.shape)
+        grid, values = self._model_error_arrays()
+        prepare_core.prepare_rows(f, zr, self._gammas_array, self._prepare_limits, self._sigma, self.model.starts,
+                                  grid, values, b, per, flags, seg_t, seg, merr, zw)
+        restart = np.zeros(n, np.int64) if restarted is None else np.ascontiguousarray(restarted, np.int64)
+        return PreparedInput(t, zw, b, per, flags, seg, seg_t, restart, merr, z)
 
-    def _model_error(self, b: np.ndarray) -> np.ndarray:
-        """Return the calibration's model-error variance ratio (N,) at |B| = b (nT; worst channel, capped), from a
-        table in log|B| built once (the calibration's own evaluation is far too slow per live sample)."""
+    def _model_error_arrays(self) -> tuple[np.ndarray, np.ndarray]:
+        """Return the model-error table (log|B| grid, worst-channel ratio), built at first use (the calibration's
+        own evaluation is far too slow per live sample); two empty arrays when the calibration has none."""
         table = self.__dict__.get("_merr_table")
         if table is None:
-            table = self._merr_table = self._model_error_table()
-        if table is None:
-            return np.zeros(len(b))
-        grid, values = table
-        with np.errstate(invalid="ignore", divide="ignore"):
-            x = np.log(b)
-        out = np.interp(x, grid, values)
-        cap = self.settings.model_error_cap_ratio
-        return np.where(np.isfinite(x), np.where((x < grid[0]) | (x > grid[-1]), cap, out), 0.0)
+            table = self._merr_table = self._model_error_table() or (_EMPTY, _EMPTY)
+        return table
 
     def _model_error_table(self):
         """Return (log|B| grid, worst-channel ratio) over a quarter of the calibrated range to four times it."""
@@ -556,13 +541,14 @@ class Tracker:
         # |B| only: evaluated every MAGNITUDE_STRIDE samples and interpolated, the per-sample |B| keeps its own
         # frequency; a stride changes a correction by far less than the frequency noise at tracking rates.
         if n <= 4 * MAGNITUDE_STRIDE:
-            rows = np.arange(n)
+            rows = None
+            est = mm.estimate(f_hz, u, np.radians(sigma_deg))
         else:
             rows = np.unique(np.r_[np.arange(0, n, MAGNITUDE_STRIDE), n - 1])
-        est = mm.estimate(f_hz[rows], u[rows], np.radians(sigma_deg[rows]))
-        with np.errstate(invalid="ignore", divide="ignore"):
-            m = f_hz / np.asarray(self._gammas)[None, :]
-        if rows.size < n:
+            est = mm.estimate(f_hz[rows], u[rows], np.radians(sigma_deg[rows]))
+        if rows is not None:
+            with np.errstate(invalid="ignore", divide="ignore"):
+                m = f_hz / self._gammas_array[None, :]
             idx = np.arange(n)
             delta = m[rows] - est.b_per_isotope           # the correction each isotope received (nT)
             per_c = np.column_stack([m[:, k] - _interp_finite(idx, rows, delta[:, k]) for k in range(2)])
@@ -677,6 +663,7 @@ class Tracker:
 
 
 _NO_U, _NO_COV = np.zeros(3), np.eye(2)          # placeholders of the core's acquisition arguments
+_EMPTY = np.zeros(0)                             # no model-error table
 MAGNITUDE_STRIDE = 16     # samples between evaluations of the calibrated magnitude corrections
 MODEL_ERROR_GRID = 2048   # points in log|B| of the model-error table (the calibration's ratio varies smoothly)
 

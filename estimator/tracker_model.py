@@ -100,6 +100,16 @@ class TrackerModel:
         factor = np.tile(self.sigma / np.asarray(sigma, float), N_ROWS)
         return np.ascontiguousarray(self._w * factor[None, None, :])
 
+    @property
+    def starts(self) -> np.ndarray:
+        """Return the magnitude segments' starts (S,), log|B| with |B| in nT (estimator/prepare_core.py takes them)."""
+        return self._starts
+
+    @property
+    def range_nT(self) -> tuple[float, float]:
+        """Return the tables' magnitude range (lo, hi) in nT; magnitudes outside are clamped to it."""
+        return self._range_nT
+
     def segments(self, b_nT) -> tuple[np.ndarray, np.ndarray]:
         """Return (segment index (N,), t = log|B| - segment start (N,)) for magnitudes b_nT (nT), clamped."""
         b = np.atleast_1d(np.asarray(b_nT, float))

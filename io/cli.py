@@ -37,6 +37,16 @@ COMMANDS = {
 }
 
 
+class _Version(argparse.Action):
+    """--version: the version, then whether the kernels are the ones compiled at install or numba's JIT."""
+
+    def __call__(self, parser, namespace, values, option_string=None):
+        from fieldvane import kernels
+
+        print(f"fieldvane {__version__}\nkernels: {kernels.mode()}")
+        parser.exit()
+
+
 def build_parser() -> argparse.ArgumentParser:
     """Return the top-level argument parser with every subcommand registered."""
     parser = Parser(
@@ -45,7 +55,8 @@ def build_parser() -> argparse.ArgumentParser:
                     "all-optical vector atomic magnetometer. Not a safety or navigation "
                     "instrument by itself. `fieldvane docs` shows where the documentation is.",
     )
-    parser.add_argument("--version", action="version", version=f"fieldvane {__version__}")
+    parser.add_argument("--version", action=_Version, nargs=0,
+                        help="show the version and which compiled kernels this installation uses, and exit")
     sub = parser.add_subparsers(dest="command", metavar="COMMAND")
     for name, (module_name, help_text) in COMMANDS.items():
         module = _load(module_name)

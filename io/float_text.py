@@ -14,7 +14,7 @@ per-record formatter (io/sinks.py CsvFormatter: repr for floats, str for ints, '
 from __future__ import annotations
 
 import numpy as np
-from numba import njit
+from fieldvane.kernels import entry, helper
 
 MAX_FIELD_CHARS = 24                 # '-2.2250738585072014e-308' is the longest float text
 KIND_FLOAT, KIND_INT, KIND_EMPTY = 0, 1, 2
@@ -58,7 +58,7 @@ _POW10 = np.array([10 ** k for k in range(20)], np.uint64)
 _DIGIT_PAIRS = np.frombuffer("".join(f"{k:02d}" for k in range(100)).encode("ascii"), np.uint8).copy()
 
 
-@njit(cache=True, inline="always")
+@helper(cache=True, inline="always")
 def _umul128(a, b):
     """Return (low, high) 64-bit words of the 128-bit product a*b (uint64 inputs)."""
     a_lo = a & _MASK32
@@ -76,7 +76,7 @@ def _umul128(a, b):
     return lo, hi
 
 
-@njit(cache=True, inline="always")
+@helper(cache=True, inline="always")
 def _mul_shift(m, mul_lo, mul_hi, j):
     """Return (m * mul) >> j for a 55-bit m and a 128-bit mul, j in (64, 128)."""
     lo1, hi1 = _umul128(m, mul_hi)
@@ -90,7 +90,7 @@ def _mul_shift(m, mul_lo, mul_hi, j):
     return (hi1 << np.uint64(64 - d)) | (s >> np.uint64(d))
 
 
-@njit(cache=True, inline="always")
+@helper(cache=True, inline="always")
 def _pow5_factor(v):
     """Return how many times 5 divides v (v > 0)."""
     count = 0
@@ -100,13 +100,13 @@ def _pow5_factor(v):
     return count
 
 
-@njit(cache=True, inline="always")
+@helper(cache=True, inline="always")
 def _drop_digit(vr, vp, vm, vr_tz, last):
     """Return (vr, vp, vm, vr_tz, last) with one decimal digit dropped (vr_tz: the digits before `last` were all 0)."""
     return vr // _U10, vp // _U10, vm // _U10, vr_tz and last == _U0, vr % _U10
 
 
-@njit(cache=True)
+@helper(cache=True)
 def _shortest(ieee_m, ieee_e):
     """Return (digits, exponent) with digits * 10**exponent the shortest round-trip decimal of a finite nonzero double."""
     if ieee_e == 0:
@@ -188,7 +188,7 @@ def _shortest(ieee_m, ieee_e):
     return out, e10 + removed
 
 
-@njit(cache=True, inline="always")
+@helper(cache=True, inline="always")
 def _put_text(buf, p, a, b, c, d):
     """Write up to 4 ASCII codes (0 = none) at p; return the new position."""
     buf[p] = a
@@ -205,7 +205,7 @@ def _put_text(buf, p, a, b, c, d):
     return p
 
 
-@njit(cache=True, inline="always")
+@helper(cache=True, inline="always")
 def _decimal_length(v):
     """Return the number of decimal digits of a uint64."""
     n = 1
@@ -214,7 +214,7 @@ def _decimal_length(v):
     return n
 
 
-@njit(cache=True, inline="always")
+@helper(cache=True, inline="always")
 def _put_digits(buf, end, v):
     """Write the decimal digits of a uint64 so that the last one lands at buf[end - 1]."""
     while v >= _U100:
@@ -231,7 +231,7 @@ def _put_digits(buf, end, v):
         buf[end - 1] = _ZERO_CH + np.int64(v)
 
 
-@njit(cache=True)
+@helper(cache=True)
 def _put_float(buf, p, bits):
     """Write repr() of the double with these IEEE bits at buf[p:]; return the new position."""
     ieee_m = bits & _MANT_MASK
@@ -298,7 +298,7 @@ def _put_float(buf, p, bits):
     return p + n + 1
 
 
-@njit(cache=True)
+@helper(cache=True)
 def _put_int(buf, p, v):
     """Write the decimal text of an int64 at buf[p:]; return the new position."""
     if v < 0:
@@ -312,7 +312,8 @@ def _put_int(buf, p, v):
     return p + n
 
 
-@njit(cache=True, nogil=True)        # nogil: replay formats one block while the next is estimated
+@entry("i8(i8, u8[:, ::1], i8[:, ::1], i8[::1], i8[::1], u1[::1])",
+       cache=True, nogil=True)        # nogil: replay formats one block while the next is estimated
 def _format_rows(n, fbits, ivals, kinds, src, buf):
     """Write n CSV lines into buf from float bits (F, n) and ints (I, n) per column kind; return the length."""
     p = 0

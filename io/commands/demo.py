@@ -160,7 +160,7 @@ def run(args) -> int:
     _say("\n[4/6] tracking live (capture -> decode -> track -> logger files):")
     summary = run_live(sink.path, "binary", lambda s: tracker.step(s).row(), outputs, str(out / "capture"),
                        log=None, on_ready=drive, status=lambda lp: status.update(lp.last_record, lp.counters()),
-                       estimate_batch=lambda samples: [e.row() for e in tracker.step_record(samples).estimates()])
+                       estimate_batch=lambda samples: tracker.step_record(samples).rows())
     status.close()
     emitter.stop()
     if summary.interrupted:

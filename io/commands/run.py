@@ -181,7 +181,7 @@ def run(args) -> int:
 
     def estimate_batch(samples):
         rec = tracker.step_record(samples)
-        return geo.add_to_rows([est.row() for est in rec.estimates()], rec, host_clock.utc(len(rec)))
+        return geo.add_to_rows(rec.rows(), rec, host_clock.utc(len(rec)))
 
     def estimate(sample):
         return estimate_batch([sample])[0]
