@@ -7,6 +7,7 @@ does not serve), the install still succeeds and fieldvane compiles the same func
 JIT at first use: slower to start, same results.
 """
 
+import glob
 import os
 import sys
 
@@ -42,10 +43,12 @@ def compile_kernels(target: str) -> None:
     cc.export("sources_digest", "i8()")(namespace["sources_digest"])
 
     plain_compile = pycc_compiler.compile_extra
+    compiled_with_options = set()
 
     def compile_with_entry_options(typing, target_context, function, args, return_type, flags, **kw):
         # numba.pycc compiles every export with default flags; keep each entry's own (nogil, error model).
         options = options_of.get(function, {})
+        compiled_with_options.add(function)
         flags = flags.copy()
         flags.release_gil = bool(options.get("nogil", False))
         flags.error_model = options.get("error_model", "python")
@@ -55,6 +58,11 @@ def compile_kernels(target: str) -> None:
     cc.output_dir = os.path.dirname(target)
     cc.output_file = os.path.basename(target)
     cc.compile()
+    if not set(options_of) <= compiled_with_options:
+        # A numba.pycc that no longer calls compile_extra would build every entry without nogil and with
+        # Python's division errors: not the kernels the JIT gives. Better none (the JIT path) than those.
+        os.remove(target)
+        raise RuntimeError("numba.pycc did not compile through compile_extra; entry options would be lost")
 
 
 class BuildKernels(build_ext):
@@ -68,6 +76,11 @@ class BuildKernels(build_ext):
         except Exception as error:                 # noqa: BLE001 - any failure leaves the JIT path, which works
             self.warn(f"fieldvane: compiled kernels not built ({type(error).__name__}: {error}); fieldvane "
                       f"will compile them with numba's JIT at first use (slower start, same results)")
+            # An editable checkout may hold a module from an earlier build: it would be refused as older than its
+            # sources anyway; removing it makes the reason say what happened.
+            for name in glob.glob(os.path.join(ROOT, "fieldvane", "_kernels*")):
+                os.remove(name)
 
 
-setup(ext_modules=[Extension("fieldvane._kernels", sources=[])], cmdclass={"build_ext": BuildKernels})
+# optional: where the module is not built, an editable install must not fail copying it into the checkout.
+setup(ext_modules=[Extension("fieldvane._kernels", sources=[], optional=True)], cmdclass={"build_ext": BuildKernels})

@@ -21,7 +21,7 @@ import math
 import numpy as np
 
 from fieldvane.estimator.flags import EstimateFlag as _F
-from fieldvane.kernels import entry
+from fieldvane.kernels import entry, helper
 
 _DISAGREE, _OUTSIDE, _BAD, _LOW = (int(_F.MAGNITUDE_DISAGREE), int(_F.OUTSIDE_CALIBRATION), int(_F.BAD_INPUT),
                                    int(_F.LOW_SIGNAL))
@@ -29,6 +29,34 @@ _DISAGREE, _OUTSIDE, _BAD, _LOW = (int(_F.MAGNITUDE_DISAGREE), int(_F.OUTSIDE_CA
 # Slots of the `limits` argument (floats).
 L_TOLERANCE, L_RANGE_LO, L_RANGE_HI, L_MARGIN, L_LOW_AMP, L_SEG_LO, L_SEG_HI, L_MERR_CAP = range(8)
 N_LIMITS = 8
+
+
+@helper(cache=True, nogil=True)
+def _numpy_sum(a, n):
+    """Return a[0] + ... + a[n-1] added in numpy's order for n <= 128 (its pairwise sum: eight running sums from
+    n = 8, combined in pairs), so that a threshold on the sum decides exactly as the numpy formulation did."""
+    if n < 8:
+        total = 0.0
+        for k in range(n):
+            total += a[k]
+        return total
+    r0, r1, r2, r3, r4, r5, r6, r7 = a[0], a[1], a[2], a[3], a[4], a[5], a[6], a[7]
+    k = 8
+    while k < n - n % 8:
+        r0 += a[k]
+        r1 += a[k + 1]
+        r2 += a[k + 2]
+        r3 += a[k + 3]
+        r4 += a[k + 4]
+        r5 += a[k + 5]
+        r6 += a[k + 6]
+        r7 += a[k + 7]
+        k += 8
+    total = ((r0 + r1) + (r2 + r3)) + ((r4 + r5) + (r6 + r7))
+    while k < n:
+        total += a[k]
+        k += 1
+    return total
 
 
 @entry("i8(f8[:, ::1], f8[:, ::1], f8[::1], f8[::1], f8[::1], f8[::1], f8[::1], f8[::1], f8[::1], f8[:, ::1], "
@@ -49,6 +77,7 @@ def prepare_rows(f, zr, gammas, limits, sigma, starts, merr_grid, merr_values, b
     seg_lo, seg_hi, cap = limits[L_SEG_LO], limits[L_SEG_HI], limits[L_MERR_CAP]
     n_seg = starts.shape[0]
     n_grid = merr_grid.shape[0]
+    squares = np.empty(m)
     for r in range(n):
         p0, p1 = f[r, 0] / g0, f[r, 1] / g1
         per[r, 0], per[r, 1] = p0, p1
@@ -65,14 +94,13 @@ def prepare_rows(f, zr, gammas, limits, sigma, starts, merr_grid, merr_values, b
         if (ok0 or ok1) and (value < low_lo or value > low_hi):
             code |= _OUTSIDE
         # Lock-in level: the RMS over the components present.
-        total, count = 0.0, 0
+        count = 0
         for k in range(m):
             v = zr[r, k]
-            if math.isfinite(v):
-                total += v * v
-                count += 1
+            squares[k] = v * v if math.isfinite(v) else 0.0
+            count += math.isfinite(v)
             zw[r, k] = v / sigma[k]
-        if count > 0 and math.sqrt(total * 2 / count) < limits[L_LOW_AMP]:
+        if count > 0 and math.sqrt(_numpy_sum(squares, m) * 2 / count) < limits[L_LOW_AMP]:
             code |= _LOW
         b[r] = value
         flags[r] = code

@@ -70,7 +70,11 @@ def _load():
         from fieldvane import _kernels
     except ImportError as error:
         return None, f"no ahead-of-time module: {error}"
-    if _kernels.sources_digest() != sources_digest():
+    try:
+        digest = sources_digest()
+    except (OSError, AttributeError) as error:      # sources not readable as files (a zip or frozen application)
+        return None, f"cannot read the kernels' sources to check the compiled module: {error}"
+    if _kernels.sources_digest() != digest:
         warnings.warn("fieldvane's compiled kernels are older than their sources (edited since the build): using "
                       "numba's JIT instead; `pip install -e .` rebuilds them", RuntimeWarning, stacklevel=3)
         return None, "compiled module older than its sources"

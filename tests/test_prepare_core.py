@@ -99,3 +99,19 @@ def test_prepare_rows_equals_the_numpy_formulation(seed, with_table):
     assert np.any(out[4] == -1) and np.any(out[4] == 3)
     if with_table:
         assert np.any(out[5] == 25.0) and np.any((out[5] > 0) & (out[5] < 25.0))
+
+
+def test_low_signal_at_its_exact_threshold_decides_as_numpy():
+    # numpy sums eight or more components pairwise (eight running sums, combined in pairs), not left to right;
+    # on this row the two orders differ in the last bit exactly where the RMS meets the low-signal level.
+    zr = np.array([[0.45681329643684543, 1.8474093048439182, -1.5972296272949795, 1.0248266106947637,
+                    -0.2328555527723943, -0.09116747777088853, 0.19173487964230326, 0.012319205628171633]])
+    f = np.array([[20000.0 * GAMMAS[0], 20000.0 * GAMMAS[1]]])
+    limits = np.array([1e-3, 1000.0, 50_000.0, 0.05, 1.3530021097619511, 800.0, 80_000.0, 25.0])
+    sigma, starts, empty = np.ones(8), np.log(np.array([800.0, 30_000.0])), np.zeros(0)
+    out = (np.empty(1), np.empty((1, 2)), np.empty(1, np.int64), np.empty(1), np.empty(1, np.int64), np.empty(1),
+           np.empty((1, 8)))
+    prepare_core.prepare_rows(f, zr, GAMMAS, limits, sigma, starts, empty, empty, *out)
+    want = reference(f, zr, limits, sigma, starts, empty, empty)[2]
+    assert out[2][0] == want[0]
+    assert want[0] & int(F.LOW_SIGNAL)          # the numpy order puts this row below the level
