@@ -24,29 +24,19 @@ import time
 
 import pytest
 
-from fieldvane.io.cli import main
+from recordings import drifting_bench_recordings
 
 pytestmark = pytest.mark.benchmark_suite
 
-EXAMPLES = __import__("pathlib").Path(__file__).resolve().parent.parent / "examples"
 RESULTS: dict[str, float] = {}
+BOTH_CORES = True          # benchmarks/conftest.py pins other modules to one CPU
 ROUNDS = 5
-
-
-@pytest.fixture(scope="module", autouse=True)
-def one_core():
-    """Override benchmarks/conftest.py's pinning: replay is measured on both cores, as it runs."""
-    yield
 
 
 @pytest.fixture(scope="module")
 def data(tmp_path_factory):
     d = tmp_path_factory.mktemp("bench_replay")
-    assert main(["simulate", str(EXAMPLES / "calibration_scan_lockin.toml"), "-o", str(d / "scan.csv")]) == 0
-    assert main(["calibrate", str(d / "scan.csv"), "-o", str(d / "cal.json")]) == 0
-    for name, seconds in (("long", 500), ("short", 5)):
-        assert main(["simulate", str(EXAMPLES / "bench_probe_drifts.toml"), "-o", str(d / f"{name}.csv"),
-                     "--duration", str(seconds)]) == 0
+    drifting_bench_recordings(d, {"long": 500, "short": 5})
     _process(_replay_args(d, "short"))                # builds the lookup-table cache
     _process(_replay_args(d, "short"), {"FIELDVANE_JIT": "1"})    # fills numba's cache for the JIT comparison
     return d

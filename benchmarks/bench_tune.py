@@ -2,7 +2,7 @@
 
 Run: `pytest benchmarks/bench_tune.py --benchmark-enable -s`. Unlike the other benchmarks this module
 does not pin the process to one CPU: the target is the whole command on the project's 2-core
-machine (the tuner scores candidates on threads), so `one_core` is overridden here.
+machine (the tuner scores candidates on threads), so this module sets BOTH_CORES.
 
 The recording: examples/bench_probe_drifts.toml run for 500 s at 200 Hz (100,000 samples, two
 probes, each probe's light drifting a few percent, a 4 x 5 ms lock-in stated in the metadata); the
@@ -19,29 +19,20 @@ import time
 
 import pytest
 
-from fieldvane.io.cli import main
+from recordings import drifting_bench_recordings
 
 pytestmark = pytest.mark.benchmark_suite
 
-EXAMPLES = __import__("pathlib").Path(__file__).resolve().parent.parent / "examples"
 DURATION_S = 500           # 100,000 samples at 200 Hz
 TARGET_S = 10.0
 RESULTS: dict[str, float] = {}
-
-
-@pytest.fixture(scope="module", autouse=True)
-def one_core():
-    """Override benchmarks/conftest.py's pinning: tune is measured on both cores, as it runs."""
-    yield
+BOTH_CORES = True          # benchmarks/conftest.py pins other modules to one CPU
 
 
 @pytest.fixture(scope="module")
 def data(tmp_path_factory):
     d = tmp_path_factory.mktemp("bench_tune")
-    assert main(["simulate", str(EXAMPLES / "calibration_scan_lockin.toml"), "-o", str(d / "scan.csv")]) == 0
-    assert main(["calibrate", str(d / "scan.csv"), "-o", str(d / "cal.json")]) == 0
-    assert main(["simulate", str(EXAMPLES / "bench_probe_drifts.toml"), "-o", str(d / "long.csv"),
-                 "--duration", str(DURATION_S)]) == 0
+    drifting_bench_recordings(d, {"long": DURATION_S})
     return d
 
 

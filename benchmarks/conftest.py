@@ -9,12 +9,14 @@ import pytest  # noqa: E402
 
 
 @pytest.fixture(scope="module", autouse=True)
-def one_core():
-    """Pin the process (and its BLAS threads) to a single CPU for a one-core figure."""
-    if not hasattr(os, "sched_setaffinity"):
+def one_core(request):
+    """Pin the process (and its BLAS threads) to a single CPU for a one-core figure (not where a module sets
+    BOTH_CORES = True: a whole command measured as it runs, threads and all)."""
+    if not hasattr(os, "sched_setaffinity") or getattr(request.module, "BOTH_CORES", False):
         yield
         return
     before = os.sched_getaffinity(0)
     os.sched_setaffinity(0, {min(before)})
     yield
     os.sched_setaffinity(0, before)
+
