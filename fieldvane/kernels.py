@@ -81,19 +81,24 @@ def _load():
     return _kernels, ""
 
 
-def _array_specs(signature: str) -> list[tuple[int, str, int]]:
-    """Return (position, dtype name, ndim) of each array argument of a signature such as 'i8(f8[::1], i8)'."""
+def _split_arguments(signature: str) -> list[str]:
+    """Return the argument types of a signature such as 'i8(f8[:, ::1], i8)' as text, in order."""
     inner = signature[signature.index("(") + 1:signature.rindex(")")]
     args, depth, start = [], 0, 0
     for k, ch in enumerate(inner):
         depth += ch == "["
         depth -= ch == "]"
         if ch == "," and depth == 0:
-            args.append(inner[start:k])
+            args.append(inner[start:k].strip())
             start = k + 1
-    args.append(inner[start:])
+    args.append(inner[start:].strip())
+    return [a for a in args if a]
+
+
+def _array_specs(signature: str) -> list[tuple[int, str, int]]:
+    """Return (position, dtype name, ndim) of each array argument of a signature such as 'i8(f8[::1], i8)'."""
     specs = []
-    for pos, arg in enumerate(a.strip() for a in args):
+    for pos, arg in enumerate(_split_arguments(signature)):
         if "[" in arg:
             dims = arg[arg.index("[") + 1:arg.rindex("]")]
             if not dims.endswith("::1"):
@@ -107,9 +112,17 @@ def _checked(function, name: str, signature: str):
     import numpy as np
     specs = [(pos, np.dtype(dtype), ndim) for pos, dtype, ndim in _array_specs(signature)]
 
+    n_args = len(_split_arguments(signature))
+    ndarray = np.ndarray
+
     def call(*args):
+        if len(args) != n_args:
+            raise TypeError(f"{name} takes {n_args} positional arguments, got {len(args)}")
         for pos, dtype, ndim in specs:
             a = args[pos]
+            if not isinstance(a, ndarray):
+                raise TypeError(f"{name} argument {pos}: expected a C-contiguous {ndim}-D {dtype} array, got "
+                                f"{type(a).__name__}")
             if a.dtype != dtype or a.ndim != ndim or not a.flags.c_contiguous:
                 raise TypeError(f"{name} argument {pos}: expected a C-contiguous {ndim}-D {dtype} array, got "
                                 f"{a.ndim}-D {a.dtype} (C-contiguous: {a.flags.c_contiguous})")

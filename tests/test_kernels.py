@@ -176,11 +176,17 @@ def test_compiled_entry_points_refuse_arrays_they_would_misread():
         float_text._format_rows(5, np.zeros((1, 5)), ints, kinds, src, buf)     # float64 where bits are declared
     with pytest.raises(TypeError, match="1-D"):
         float_text._format_rows(5, fbits.reshape(1, 10)[:, :5].copy(), ints, kinds.reshape(1, 1), src, buf)
+    with pytest.raises(TypeError, match="got list"):
+        float_text._format_rows(5, [[0, 1, 2, 3, 4]], ints, kinds, src, buf)
+    with pytest.raises(TypeError, match="takes 6 positional arguments"):
+        float_text._format_rows(5, np.ascontiguousarray(fbits[:, 0].reshape(1, 5)), ints, kinds, src)
 
 
 def test_signature_parser_reads_each_array_argument():
+    importlib.import_module("fieldvane.estimator.filter_core")      # declares run_filter in kernels.ENTRIES
     specs = kernels._array_specs("f8[:, ::1](f8[:, ::1], i8, u1[::1], f8[:, :, ::1], b1)")
     assert specs == [(0, "float64", 2), (2, "uint8", 1), (3, "float64", 3)]
+    assert kernels._split_arguments("i8()") == [] and len(kernels._split_arguments(kernels.ENTRIES["run_filter"][1])) == 43
     with pytest.raises(ValueError, match="C-contiguous"):
         kernels._array_specs("i8(f8[:])")
 
