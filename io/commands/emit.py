@@ -182,14 +182,16 @@ def _emit(args, dest: str, shown: str | None = None) -> int:
     if emitter.error is not None:
         emitter.stop()
         raise JobError(f"emitter stopped: {emitter.error}")
-    _report(emitter)
-    if sink.holds_open:
-        print(f"run finished; holding {sink.description} open for readers; Ctrl-C closes it", flush=True)
-        try:
+    # From here the run is complete: Ctrl-C or SIGTERM only closes what is held open, even when it arrives
+    # between the lines below (a reader that stops at the 'sent' line and signals at once).
+    try:
+        _report(emitter)
+        if sink.holds_open:
+            print(f"run finished; holding {sink.description} open for readers; Ctrl-C closes it", flush=True)
             while not emitter.join(0.5):
                 pass
-        except KeyboardInterrupt:
-            pass
+    except KeyboardInterrupt:
+        pass
     emitter.stop()
     return 0
 
