@@ -152,6 +152,7 @@ def test_live_latency_frame_to_sink(calibration, rate):
     from fieldvane.estimator.snapshot import SnapshotSolver
     from fieldvane.estimator.tracker import Tracker
     from fieldvane.io.calfile import load_calibration
+    from fieldvane.io.estimates_csv import record_rows
     from fieldvane.io.live import BinarySampleDecoder, LiveLoop
     from fieldvane.io.serial_link import SerialLink
     from fieldvane.io.table_cache import cache_dir_for, load_or_build_table
@@ -169,7 +170,7 @@ def test_live_latency_frame_to_sink(calibration, rate):
     latencies, after_arrival, t_start = [], [], []
 
     def estimate_batch(samples):
-        rows = tracker.step_record(samples).rows()        # as `fieldvane run` does
+        rows = record_rows(tracker.step_record(samples))        # as `fieldvane run` does
         now = time.monotonic()
         if t_start:
             latencies.extend(now - (t_start[0] + s.t) for s in samples)

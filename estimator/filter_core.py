@@ -5,8 +5,8 @@ segment, input flags) and writes one output row per sample. It stops early, retu
 index, when the track must be (re)started: the Python side (estimator/tracker.py) asks the
 initiator (the lookup-table inverse) and calls `finish_acquisition`, then resumes. Everything else
 (prediction, measurement model, drift states, information-form update, chi-square gating per probe,
-adaptive noise with a learned baseline, health flags, reset rules) happens here, compiled by numba: ahead of time at install, or
-by its JIT where that module is missing (fieldvane/kernels.py).
+adaptive noise with a learned baseline, health flags, reset rules) happens here, compiled by numba:
+ahead of time at install, or by its JIT where that module is missing (fieldvane/kernels.py).
 
 Equations (the error-state EKF on the sphere of estimator/tracker.py's docstring). Error state:
 direction error (2, tangent basis e1, e2), optional per-probe log-gain and per-channel phase drifts,

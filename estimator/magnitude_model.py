@@ -326,7 +326,7 @@ class MagnitudeModel:
         (only the tangent part matters). Rows with a non-finite u or uncertainty use the
         sphere-mean correction, with the correction's spread over the sphere as its error.
         """
-        from fieldvane.estimator import magnitude_core as core   # numba: loaded only where |B| is corrected
+        from fieldvane.estimator import magnitude_core as core   # compiled: loaded only where |B| is corrected
 
         f = np.atleast_2d(np.asarray(f_hz, float))
         n = f.shape[0]

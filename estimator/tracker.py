@@ -156,17 +156,6 @@ class TrackRecord:
         cols.update(self.channel_readouts)
         return cols
 
-    def rows(self) -> list[dict[str, float]]:
-        """Return the estimates CSV rows (what Estimate.row() gives for each of estimates(), built without them)."""
-        u, b = self.u, self.b_nT
-        cols = {"t": self.t, "ux": u[:, 0], "uy": u[:, 1], "uz": u[:, 2], "b_nT": b, "bx_nT": b * u[:, 0],
-                "by_nT": b * u[:, 1], "bz_nT": b * u[:, 2], "sigma_deg": self.sigma_deg, "flags": self.flags}
-        cols.update(self.extra_columns())
-        names = list(cols)
-        ints = {"flags", "nis_dof", "probes_used"}
-        lists = [np.asarray(cols[k], np.int64 if k in ints else float).tolist() for k in names]
-        return [dict(zip(names, values)) for values in zip(*lists)]
-
     def estimates(self) -> list[Estimate]:
         """Return the records as Estimate objects (extras: nis, nis_dof, b_a_nT, b_b_nT, bound_deg, ...)."""
         cols = self.extra_columns()

@@ -40,6 +40,14 @@ def estimate_columns(t, u, b_nT, sigma_deg, flags, extras: Mapping[str, np.ndarr
     return cols
 
 
+def record_rows(record) -> list[dict]:
+    """Return a TrackRecord's estimates CSV rows (name -> float or int), as Estimate.row() gives them: the live path."""
+    columns = estimate_columns(record.t, record.u, record.b_nT, record.sigma_deg, record.flags,
+                               record.extra_columns())
+    names = list(columns)
+    return [dict(zip(names, values)) for values in zip(*(np.asarray(columns[k]).tolist() for k in names))]
+
+
 def _as_column(values) -> np.ndarray | None:
     """Return values as a float64 or int64 array when that writes the same text as the sink, else None."""
     if isinstance(values, np.ndarray):

@@ -11,7 +11,8 @@ from hypothesis import strategies as st
 
 from fieldvane.estimator.estimate import ESTIMATE_COLUMNS, Estimate
 from fieldvane.io.errors import InputError, JobError
-from fieldvane.io.estimates_csv import EstimatesWriter, estimate_columns, read_estimates
+from fieldvane.estimator.tracker import TrackRecord
+from fieldvane.io.estimates_csv import EstimatesWriter, estimate_columns, read_estimates, record_rows
 from fieldvane.io.float_text import float_texts, format_rows
 from fieldvane.io.sinks import make_formatter
 
@@ -86,6 +87,30 @@ def _sink_text(cols, extras=None):
     records = [{k: cols[k][i] for k in names} for i in range(len(cols["t"]))]
     fmt.bind(records[0])
     return fmt.header() + "".join(fmt.format(r) for r in records)
+
+
+@pytest.mark.parametrize("optional", [True, False])
+@pytest.mark.parametrize("n", [0, 1, 40])
+def test_record_rows_equal_the_rows_of_its_estimates(n, optional):
+    """record_rows (the live loop's path) gives what Estimate.row() gives, value for value and type for type."""
+    rng = np.random.default_rng(n)
+    u = rng.normal(size=(n, 3))
+    u /= np.linalg.norm(u, axis=1)[:, None]
+    values = rng.normal(size=(8, n))
+    values[:, ::7] = np.nan                                   # missing estimates and magnitudes
+    ints = rng.integers(0, 64, (3, n))
+    extra = ({"noise_scale": values[5], "probes_used": ints[2], "loglik": values[6], "sigma_b_nT": values[7]}
+             if optional else {})
+    readouts = {"phase_1a_deg": values[4], "amp_1a_1b": -values[4]} if optional else {}
+    rec = TrackRecord(np.arange(n) * 0.005, u, 20000 + values[0], np.abs(values[1]), ints[0], values[2] ** 2,
+                      ints[1], 20000 + values[3], 20000 - values[3], np.abs(values[2]), readouts, **extra)
+    rows, reference = record_rows(rec), [e.row() for e in rec.estimates()]
+    assert len(rows) == len(reference) == n
+    for row, ref in zip(rows, reference):
+        assert list(row) == list(ref)
+        for key, value in ref.items():
+            assert type(row[key]) is (int if isinstance(value, (int, np.integer)) else float), key
+            assert row[key] == value or (math.isnan(row[key]) and math.isnan(value)), key
 
 
 def test_block_writer_bytes_equal_the_csv_sink(tmp_path):

@@ -691,22 +691,6 @@ def test_step_equals_run_and_channel_readouts(two_probe):
     assert runs[70].row()["bx_nT"] == pytest.approx(runs[70].b_nT * runs[70].u[0])
 
 
-def test_record_rows_equal_the_rows_of_its_estimates(two_probe):
-    """TrackRecord.rows() (the live loop's path) gives what Estimate.row() gives, value for value and type for type."""
-    sensor, cal, sigma = two_probe
-    blk, _ = _short_block(sensor, sigma, n=80)
-    blk.f[30, 1] *= 1.01
-    blk.z[50, 2] = complex(np.nan, np.nan)
-    rec = Tracker(cal, FilterSettings(), GridInitiator(cal.model), report_channels=True).run_arrays(blk)
-    rows, reference = rec.rows(), [e.row() for e in rec.estimates()]
-    assert len(rows) == len(reference) == 80
-    for row, ref in zip(rows, reference):
-        assert list(row) == list(ref)
-        for key, value in ref.items():
-            assert type(row[key]) is (int if isinstance(value, (int, np.integer)) else float), key
-            assert row[key] == value or (math.isnan(row[key]) and math.isnan(value)), key
-
-
 def test_gap_restarts_track(two_probe):
     sensor, cal, sigma = two_probe
     blk, _ = _short_block(sensor, sigma)
