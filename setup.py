@@ -1,8 +1,7 @@
 """Build step: compile fieldvane's kernels ahead of time (numba.pycc) into the extension fieldvane._kernels.
 
 pyproject.toml holds the project's metadata; this file only adds the compiled module. The kernels'
-source is estimator/filter_core.py, estimator/magnitude_core.py and io/float_text.py (see
-fieldvane/kernels.py). If compiling fails (no C compiler or Python headers, a platform numba.pycc
+source is the modules listed in fieldvane/kernels.py (KERNEL_MODULES). If compiling fails (no C compiler or Python headers, a platform numba.pycc
 does not serve), the install still succeeds and fieldvane compiles the same functions with numba's
 JIT at first use: slower to start, same results.
 """

@@ -1,9 +1,10 @@
 """Text I/O speed on one core: recording CSV reading and estimates CSV writing, beside numpy baselines.
 
 Run: `pytest benchmarks/bench_text_io.py --benchmark-enable --benchmark-only -s`.
-Reading: 100,000 two-probe rows (15 columns, as `fieldvane simulate` writes them) through
-RecordingReader, beside np.loadtxt of the same file (numpy's compiled reader, no checks) and the
-reader's own line-by-line reference path. Writing: 100,000 estimates with the tracker's 16
+Reading: 100,000 two-probe rows (15 columns, as `fieldvane simulate` writes them, 10 significant
+digits) through RecordingReader, beside np.loadtxt of the same file (numpy's compiled reader, no
+checks) and the reader's own line-by-line reference path; and the same rows written by repr()
+(17 digits, as `export --raw` writes them) beside np.loadtxt of that file. Writing: 100,000 estimates with the tracker's 16
 columns through EstimatesWriter.write_columns (repr-exact text), beside np.savetxt with '%.17g'
 (also exact, not shortest) and the per-record write() path. extra_info carries samples/s; the
 ratios print at the end. A last check reports the reader's peak Python memory while streaming.
@@ -76,6 +77,37 @@ def test_read_baseline_loadtxt(benchmark, recording):
     data = benchmark(lambda: np.loadtxt(recording, delimiter=",", comments="#", skiprows=2))
     assert data.shape == (N, 15)
     _rate(benchmark, "loadtxt", "baseline np.loadtxt (no checks)")
+
+
+@pytest.fixture(scope="module")
+def recording_repr(recording, tmp_path_factory):
+    """The same rows with every value as repr() writes it (up to 17 digits: what `export --raw` and the wire's
+    CSV mode write), which the parser reads through the Eisel-Lemire path rather than Clinger's fast path."""
+    from fieldvane.io.float_text import format_rows
+
+    block = next(iter(RecordingReader(recording, chunk_rows=N)))
+    cols = [block.t, block.f[:, 0], block.f[:, 1]]
+    for k in range(block.z.shape[1]):
+        cols += [block.z[:, k].real + np.pi * 1e-9, block.z[:, k].imag]
+    cols += [block.truth[c] for c in ("true_ux", "true_uy", "true_uz", "true_b_nT")]
+    header = "t,f_a,f_b," + ",".join(f"x_{c},y_{c}" for c in block.channels) + ",true_ux,true_uy,true_uz,true_b_nT\n"
+    path = tmp_path_factory.mktemp("textio_repr") / "rec_repr.csv"
+    path.write_bytes(header.encode() + bytes(format_rows(cols)))
+    return path
+
+
+@pytest.mark.benchmark(group="read")
+def test_read_recording_of_17_digit_values(benchmark, recording_repr):
+    rows = benchmark(lambda: sum(len(b) for b in RecordingReader(recording_repr)))
+    assert rows == N
+    _rate(benchmark, "read_repr", "RecordingReader, values written by repr() (17 digits)")
+
+
+@pytest.mark.benchmark(group="read")
+def test_read_baseline_loadtxt_17_digits(benchmark, recording_repr):
+    data = benchmark(lambda: np.loadtxt(recording_repr, delimiter=",", skiprows=1))
+    assert data.shape == (N, 15)
+    _rate(benchmark, "loadtxt_repr", "baseline np.loadtxt of the 17-digit file")
 
 
 @pytest.mark.benchmark(group="read")

@@ -14,6 +14,8 @@ from __future__ import annotations
 
 import numpy as np
 
+from fieldvane.estimator.median import median
+
 BLIND_FACTOR = 5.0
 MEDIAN_GRID_POINTS = 2000     # near-uniform directions behind every sphere median (same grid for all users)
 
@@ -32,7 +34,7 @@ def sphere_median(bound_on_grid) -> float:
     b = b[~np.isnan(b)]
     if b.size == 0:
         raise ValueError("no bound values to take the sphere median of")
-    return float(np.median(b))
+    return median(b)
 
 
 def blind_limit(median_bound: float, factor: float = BLIND_FACTOR) -> float:

@@ -37,7 +37,7 @@ from __future__ import annotations
 import math
 from collections import deque
 from dataclasses import dataclass, field, fields
-from typing import TYPE_CHECKING, Protocol
+from typing import TYPE_CHECKING, Iterator, Protocol
 
 import numpy as np
 
@@ -49,6 +49,8 @@ from fieldvane.estimator.flags import EstimateFlag as F
 from fieldvane.estimator.lockin_noise import (autocorrelation, correlation_factor, group_delay_s,
                                               second_difference_variance)
 from fieldvane.estimator.magnitude import disagreement
+from fieldvane.estimator.magnitude_knots import MagnitudeKnots
+from fieldvane.estimator.median import median
 from fieldvane.estimator.response import to_real
 from fieldvane.estimator.samples import Sample, SampleBlock, channel_probe
 from fieldvane.estimator.sphere import angle_between, tangent_basis
@@ -142,6 +144,22 @@ class TrackRecord:
 
     def __len__(self) -> int:
         return int(self.t.shape[0])
+
+    @classmethod
+    def concatenate(cls, records: list[TrackRecord]) -> TrackRecord:
+        """Return one TrackRecord of consecutive records (the same fields present in each)."""
+        if len(records) == 1:
+            return records[0]
+        if not records:
+            raise ValueError("no records to concatenate")
+        values = {}
+        for f in fields(cls):
+            parts = [getattr(r, f.name) for r in records]
+            if f.name == "channel_readouts":
+                values[f.name] = {k: np.concatenate([p[k] for p in parts]) for k in parts[0]}
+            else:
+                values[f.name] = None if parts[0] is None else np.concatenate(parts)
+        return cls(**values)
 
     def extra_columns(self) -> dict[str, np.ndarray]:
         """Return the extra estimate columns in their written order (name -> (N,) array)."""
@@ -474,24 +492,20 @@ class Tracker:
     # ----------------------------------------------------------------------------------- running
     def run_arrays(self, block: SampleBlock, chunk: int = 65536) -> TrackRecord:
         """Return the estimates of a whole block as arrays (the fast replay path; memory bounded per chunk)."""
-        n = len(block)
-        if not self._rate_known and n > 1:
-            self._set_sample_rate(_rate_from_times(block.t))
-        fout = np.empty((n, core.N_FOUT))
-        iout = np.zeros((n, core.N_IOUT), np.int64)
-        b_out, per_out = np.empty(n), np.empty((n, 2))
-        restarted = getattr(block, "restarted", None)
-        for start in range(0, n, chunk):
-            stop = min(start + chunk, n)
-            inp = self.prepare(block.t[start:stop], block.f[start:stop], block.z[start:stop], block.channels,
-                               None if restarted is None else restarted[start:stop])
-            self._run_prepared(inp, fout[start:stop], iout[start:stop], lambda k, s=start: block.sample(s + k))
-            b_out[start:stop], per_out[start:stop] = inp.b_nT, inp.per_isotope_nT
-        if self.report_channels:
-            readouts = channel_readouts(self.calibrated_z(block.z, block.channels), self.channels)
-        else:
-            readouts = {}
-        return self._record(np.asarray(block.t, float), fout, iout, b_out, per_out, readouts, block.f)
+        return TrackRecord.concatenate(list(self.run_pieces(block, chunk)))
+
+    def run_pieces(self, block: SampleBlock, piece: int = 8192) -> Iterator[TrackRecord]:
+        """Yield the estimates of a block in order, each stretch as soon as it is final; together they equal
+        run_arrays(block) bit for bit. The filter runs `piece` samples at a time; a sample's |B| waits for the
+        magnitude model's knots on either side of it (estimator/magnitude_knots.py)."""
+        run = BlockRun(self, block)
+        piece = max(1, int(piece))
+        for start in range(0, run.n, piece):
+            stop = min(start + piece, run.n)
+            run.filter(start, stop)
+            lo, hi = run.final_through(stop)
+            if hi > lo:
+                yield run.record(lo, hi)
 
     def run_prepared(self, inp: PreparedInput, sample_at) -> tuple[np.ndarray, np.ndarray]:
         """Return the core's raw outputs (fout (N, N_FOUT), iout (N, N_IOUT)) for prepared samples.
@@ -506,49 +520,37 @@ class Tracker:
         self._run_prepared(inp, fout, iout, sample_at)
         return fout, iout
 
-    def _record(self, t, fout, iout, b, per, readouts, f_hz) -> TrackRecord:
-        """Return the TrackRecord of core outputs (degrees, delay removed) with |B| from the magnitude model."""
+    def _record(self, t, fout, iout, b, per, readouts, f_hz, knots=None, lo=0) -> TrackRecord:
+        """Return the TrackRecord of core outputs (degrees, delay removed) with |B| from the magnitude model (samples
+        lo.. of the block `knots` belongs to; a block of their own without)."""
         with np.errstate(invalid="ignore"):
             bound_deg = np.degrees(np.sqrt(fout[:, core.O_BOUND2]))
         u = fout[:, core.O_UX:core.O_UZ + 1].copy()
         sigma = fout[:, core.O_SIGMA].copy()
         flags = iout[:, core.J_FLAGS].copy()
-        b, per, sigma_b, flags = self._magnitude(np.atleast_2d(np.asarray(f_hz, float)), u, sigma, b, per, flags)
+        f_hz = np.atleast_2d(np.asarray(f_hz, float))
+        b, per, sigma_b, flags = self._magnitude(f_hz, u, sigma, b, per, flags, knots, lo)
         return TrackRecord(t - self.delay_s, u, b, sigma, flags, fout[:, core.O_NIS].copy(), iout[:, core.J_DOF].copy(),
                            per[:, 0].copy(), per[:, 1].copy(), bound_deg, readouts, fout[:, core.O_NOISE].copy(),
                            iout[:, core.J_PROBES].copy(), fout[:, core.O_LOGLIK].copy(), sigma_b)
 
-    def _magnitude(self, f_hz, u, sigma_deg, b, per, flags):
+    def _knots(self, n: int) -> MagnitudeKnots | None:
+        """Return the magnitude knots of a block of n samples, or None without a calibrated magnitude model."""
+        mm = getattr(self.calibration, "magnitude_model", None)
+        return None if mm is None or n == 0 else MagnitudeKnots(mm, self._gammas_array, n)
+
+    def _magnitude(self, f_hz, u, sigma_deg, b, per, flags, knots=None, lo=0):
         """Return (|B| nT, per isotope (N, 2) nT, sigma_b_nT, flags): corrected by the calibration's magnitude
         model (exchange pull, light shift, heading error) at the tracked direction, with MAGNITUDE_DISAGREE judged
-        against the corrected isotopes' own uncertainty; without a model, f / gamma and no sigma."""
-        mm = getattr(self.calibration, "magnitude_model", None)
+        against the corrected isotopes' own uncertainty; without a model, f / gamma and no sigma. The samples are
+        lo.. of the block `knots` was advanced through, or a block of their own."""
         n = len(b)
-        if mm is None or n == 0:
-            return b, per, np.full(n, np.nan), flags
-        # The corrections (exchange pull, light shift, heading error) change with the slowly moving direction and
-        # |B| only: evaluated every MAGNITUDE_STRIDE samples and interpolated, the per-sample |B| keeps its own
-        # frequency; a stride changes a correction by far less than the frequency noise at tracking rates.
-        if n <= 4 * MAGNITUDE_STRIDE:
-            rows = None
-            est = mm.estimate(f_hz, u, np.radians(sigma_deg))
-        else:
-            rows = np.unique(np.r_[np.arange(0, n, MAGNITUDE_STRIDE), n - 1])
-            est = mm.estimate(f_hz[rows], u[rows], np.radians(sigma_deg[rows]))
-        if rows is not None:
-            with np.errstate(invalid="ignore", divide="ignore"):
-                m = f_hz / self._gammas_array[None, :]
-            idx = np.arange(n)
-            delta = m[rows] - est.b_per_isotope           # the correction each isotope received (nT)
-            per_c = np.column_stack([m[:, k] - _interp_finite(idx, rows, delta[:, k]) for k in range(2)])
-            w = np.column_stack([_interp_finite(idx, rows, est.weights[:, k]) for k in range(2)])
-            sigma_b = _interp_finite(idx, rows, est.sigma_b_nT)
-            sigma_diff = _interp_finite(idx, rows, est.sigma_difference_nT)
-            both = np.isfinite(per_c).all(axis=1)
-            fused = np.where(both, (w * np.where(np.isfinite(per_c), per_c, 0.0)).sum(axis=1),
-                             np.where(np.isfinite(per_c[:, 0]), per_c[:, 0], per_c[:, 1]))
-        else:
-            per_c, fused, sigma_b, sigma_diff = est.b_per_isotope, est.b_nT, est.sigma_b_nT, est.sigma_difference_nT
+        if knots is None:
+            knots = self._knots(n)
+            if knots is None:
+                return b, per, np.full(n, np.nan), flags
+            knots.advance(n, f_hz, u, sigma_deg)
+        per_c, fused, sigma_b, sigma_diff = knots.corrected(lo, f_hz, u, sigma_deg)
         good = np.isfinite(fused)
         b = np.where(good, fused, b)
         per = np.where(np.isfinite(per_c), per_c, per)
@@ -651,18 +653,70 @@ class Tracker:
         return self.run_arrays(block).estimates()
 
 
+class BlockRun:
+    """One block through a tracker's filter, piece by piece, in steps other threads may take (replay's pipeline):
+
+    - prepare(start, stop): the filter's input for samples start..stop-1 (any thread, any time);
+    - filter(start, stop, prepared): the filter over them, in order, one thread (it holds the tracker's state);
+    - final_through(stop): after the filter has passed stop, the stretch (lo, hi) of samples whose |B| has become
+      final (the magnitude knots around them are known); called in order, one thread;
+    - record(lo, hi): that stretch's TrackRecord (any thread, once final_through handed it out).
+
+    Tracker.run_pieces takes the steps in turn; whatever thread takes them, the estimates are the same.
+    """
+
+    def __init__(self, tracker: Tracker, block: SampleBlock):
+        self.tracker, self.block = tracker, block
+        n = self.n = len(block)
+        if not tracker._rate_known and n > 1:
+            tracker._set_sample_rate(_rate_from_times(block.t))
+        self.fout = np.empty((n, core.N_FOUT))
+        self.iout = np.zeros((n, core.N_IOUT), np.int64)
+        self.b_out, self.per_out = np.empty(n), np.empty((n, 2))
+        self.t = np.asarray(block.t, float)
+        self.f_hz = np.atleast_2d(np.asarray(block.f, float))
+        self.knots = tracker._knots(n)
+        self.emitted = 0                  # samples handed out by final_through
+
+    def prepare(self, start: int, stop: int) -> PreparedInput:
+        """Return the filter's input for samples start..stop-1 of the block."""
+        block = self.block
+        restarted = getattr(block, "restarted", None)
+        return self.tracker.prepare(block.t[start:stop], block.f[start:stop], block.z[start:stop], block.channels,
+                                    None if restarted is None else restarted[start:stop])
+
+    def filter(self, start: int, stop: int, prepared: PreparedInput | None = None) -> None:
+        """Run the filter over samples start..stop-1 (the next ones), prepared here unless given."""
+        inp = self.prepare(start, stop) if prepared is None else prepared
+        self.tracker._run_prepared(inp, self.fout[start:stop], self.iout[start:stop],
+                                   lambda k, s=start: self.block.sample(s + k))
+        self.b_out[start:stop], self.per_out[start:stop] = inp.b_nT, inp.per_isotope_nT
+
+    def final_through(self, stop: int) -> tuple[int, int]:
+        """Return the stretch (lo, hi) of samples newly final once the filter has passed stop (lo == hi: none)."""
+        if self.knots is None:
+            final = stop
+        else:
+            self.knots.advance(stop, self.f_hz, self.fout[:, core.O_UX:core.O_UZ + 1], self.fout[:, core.O_SIGMA])
+            final = self.knots.final()
+        lo, self.emitted = self.emitted, max(self.emitted, final)
+        return lo, self.emitted
+
+    def record(self, lo: int, hi: int) -> TrackRecord:
+        """Return the TrackRecord of samples lo..hi-1 (a stretch final_through handed out)."""
+        tracker, part = self.tracker, slice(lo, hi)
+        if tracker.report_channels:
+            readouts = channel_readouts(tracker.calibrated_z(self.block.z[part], self.block.channels),
+                                        tracker.channels)
+        else:
+            readouts = {}
+        return tracker._record(self.t[part], self.fout[part], self.iout[part], self.b_out[part], self.per_out[part],
+                               readouts, self.f_hz[part], self.knots, lo)
+
+
 _NO_U, _NO_COV = np.zeros(3), np.eye(2)          # placeholders of the core's acquisition arguments
 _EMPTY = np.zeros(0)                             # no model-error table
-MAGNITUDE_STRIDE = 16     # samples between evaluations of the calibrated magnitude corrections
 MODEL_ERROR_GRID = 2048   # points in log|B| of the model-error table (the calibration's ratio varies smoothly)
-
-
-def _interp_finite(x: np.ndarray, xp: np.ndarray, fp: np.ndarray) -> np.ndarray:
-    """Return fp (at positions xp) linearly interpolated at x, over its finite values only (nan if none)."""
-    ok = np.isfinite(fp)
-    if not ok.any():
-        return np.full(x.shape, np.nan)
-    return np.interp(x, xp[ok], fp[ok])
 
 
 def _rate_from_times(t: np.ndarray) -> float | None:
@@ -673,4 +727,4 @@ def _rate_from_times(t: np.ndarray) -> float | None:
     dt = dt[dt > 0]
     if dt.size == 0:
         return None
-    return float(1.0 / np.median(dt))
+    return 1.0 / median(dt)

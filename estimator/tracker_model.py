@@ -21,6 +21,7 @@ from functools import cached_property
 import numpy as np
 
 from fieldvane.estimator.harmonics import monomial_coefficients
+from fieldvane.estimator.median import median
 from fieldvane.estimator.monomials import derivative_maps, monomials, power_index
 from fieldvane.estimator.response import ResponseModel, to_real
 from fieldvane.estimator.samples import channel_probe
@@ -191,7 +192,7 @@ class TrackerModel:
             bound = np.sqrt(np.where(det > 0, (info[:, 0, 0] + info[:, 1, 1]) / det, np.inf))
         z = self.evaluate_many(grid, b_nT)[:, 0] * self.sigma
         amp = np.sqrt(np.mean(z ** 2, axis=1) * 2)
-        return float(np.median(bound)), float(np.median(amp))
+        return median(bound), median(amp)
 
 
 def apply_drifts(rows: np.ndarray, log_gain: np.ndarray, phase: np.ndarray) -> np.ndarray:

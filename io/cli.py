@@ -47,8 +47,11 @@ class _Version(argparse.Action):
         parser.exit()
 
 
-def build_parser() -> argparse.ArgumentParser:
-    """Return the top-level argument parser with every subcommand registered."""
+def build_parser(argv: list[str] | None = None) -> argparse.ArgumentParser:
+    """Return the top-level argument parser with every subcommand registered; with argv naming a command, that
+    command alone (the others' modules are not loaded: start-up stays short)."""
+    wanted = next((a for a in (argv or []) if not a.startswith("-")), None)
+    wanted = wanted if wanted in COMMANDS else None
     parser = Parser(
         prog="fieldvane",
         description="Field direction and magnitude from the lock-in outputs of a two-isotope "
@@ -59,6 +62,8 @@ def build_parser() -> argparse.ArgumentParser:
                         help="show the version and which compiled kernels this installation uses, and exit")
     sub = parser.add_subparsers(dest="command", metavar="COMMAND")
     for name, (module_name, help_text) in COMMANDS.items():
+        if wanted is not None and name != wanted:
+            continue
         module = _load(module_name)
         p = sub.add_parser(name, help=help_text, description=getattr(module, "DESCRIPTION", help_text),
                            formatter_class=argparse.RawDescriptionHelpFormatter)
@@ -97,7 +102,7 @@ def _warnings_as_notes(command: str):
 
 def main(argv: list[str] | None = None) -> int:
     """Entry point of the `fieldvane` console command; returns the process exit code."""
-    parser = build_parser()
+    parser = build_parser(sys.argv[1:] if argv is None else argv)
     args = parser.parse_args(argv)
     if not getattr(args, "command", None):
         parser.print_help()

@@ -1,9 +1,10 @@
 """Recording CSV (docs/recording_format.md): a chunked, vectorized reader with per-line errors, and a writer.
 
-Reading: lines are taken a chunk at a time and parsed by numpy's compiled text reader; a chunk (or a
-piece of one) that numpy cannot parse falls back to a line-by-line parser that names the bad line,
-and only rows that fail the vectorized checks are parsed again one by one for their message. Both
-paths apply the same rules (`_RowRules.parse_line` is the reference):
+Reading: lines are taken a chunk at a time and parsed from the raw bytes by a compiled parser
+(io/csv_numbers.py) that takes only what it converts exactly; the lines it leaves go to numpy's text
+reader, and a piece that numpy cannot parse either falls back to a line-by-line parser that names the
+bad line. Only rows that fail the vectorized checks are parsed again one by one for their message.
+Every path applies the same rules (`_RowRules.parse_line` is the reference):
 
 - a row needs a finite t, f_a, f_b (and applied-field and truth columns when the file has them);
 - lock-in values that are empty or NaN are missing: that channel becomes NaN+NaNj, and the row is
@@ -16,6 +17,7 @@ paths apply the same rules (`_RowRules.parse_line` is the reference):
 from __future__ import annotations
 
 import math
+import threading
 from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Iterator
@@ -24,6 +26,7 @@ import numpy as np
 
 from fieldvane.estimator.samples import (CHANNELS_ONE_PROBE, CHANNELS_TWO_PROBES, SampleBlock,
                                          channel_probe)
+from fieldvane.io.byte_lines import ByteLines, ParsedRows
 from fieldvane.io.errors import InputError
 
 BASE_COLUMNS = ("t", "f_a", "f_b")
@@ -292,6 +295,7 @@ class RecordingReader:
         self.rows_without_probe: dict[int, int] = {}
         self.layout: Layout | None = None
         self.header_line: int | None = None    # line of the header row, once read
+        self.header_read = threading.Event()   # set once metadata and layout are known (or the reading ended)
         self._problems = 0
         self._rules: _RowRules | None = None
         self._last_t = -math.inf
@@ -305,13 +309,16 @@ class RecordingReader:
 
     def __iter__(self) -> Iterator[SampleBlock]:
         try:
-            fh = open(self.path, "rb")
-        except OSError as exc:
-            raise InputError(f"cannot open recording: {exc.strerror}", self.path) from None
-        with fh:
-            yield from self._read(TextLines(fh, block_bytes=min(1 << 22, max(1 << 16, 64 * self.chunk_rows))))
+            try:
+                fh = open(self.path, "rb")
+            except OSError as exc:
+                raise InputError(f"cannot open recording: {exc.strerror}", self.path) from None
+            with fh:
+                yield from self._read(ByteLines(fh, block_bytes=min(1 << 22, max(1 << 16, 64 * self.chunk_rows))))
+        finally:
+            self.header_read.set()        # also when there was no header to read
 
-    def _read(self, source: TextLines) -> Iterator[SampleBlock]:
+    def _read(self, source: ByteLines) -> Iterator[SampleBlock]:
         lineno = 0
         layout = None
         while (raw := source.readline()) is not None:
@@ -334,12 +341,10 @@ class RecordingReader:
             raise InputError("no header row found (a header naming the columns is required)", self.path)
         self.layout = layout
         self._rules = _RowRules(layout, self.require_all_probes)
+        self.header_read.set()
         if layout.unknown:
             self._warn(f"{self.path}:{lineno}: ignoring unknown columns: {', '.join(layout.unknown)}")
-        while True:
-            lines = source.take(self.chunk_rows)
-            if not lines:
-                break
+        while (lines := source.parse(self.chunk_rows, self._rules.ncol)) is not None:
             block = self._chunk(lines, lineno + 1)
             lineno += len(lines)
             if block is not None:
@@ -378,13 +383,22 @@ class RecordingReader:
         if problem is not None:
             problems[k] = problem
 
-    def _chunk(self, lines: list[str], first_line: int) -> SampleBlock | None:
+    def _chunk(self, lines: ParsedRows, first_line: int) -> SampleBlock | None:
         rules = self._rules
         n = len(lines)
         status = np.full(n, _FAST, np.int8)
         problems: dict[int, str] = {}
-        values = fast_parse_lines(lines, rules.ncol) if self.fast else None
-        if values is None:
+        if self.fast:
+            values = lines.values
+            rest = np.flatnonzero(~lines.ok)
+            if rest.size:                 # lines the compiled parser left: numpy's reader, else one by one
+                sub = np.full((rest.size, rules.ncol), np.nan)
+                sub_status = np.full(rest.size, _FAST, np.int8)
+                sub_problems: dict[int, str] = {}
+                self._parse_piece(lines[rest], 0, rest.size, sub, sub_status, sub_problems)
+                values[rest], status[rest] = sub, sub_status
+                problems.update((int(rest[j]), text) for j, text in sub_problems.items())
+        else:
             values = np.full((n, rules.ncol), np.nan)
             self._parse_piece(lines, 0, n, values, status, problems, try_fast=False)
         fast = status == _FAST

@@ -14,7 +14,6 @@ import os
 import queue
 import re
 import select
-import socket
 import sys
 import threading
 import time
@@ -456,7 +455,7 @@ class SerialTransport(Transport):
 class _Client:
     __slots__ = ("sock", "pending", "peer")
 
-    def __init__(self, sock: socket.socket, peer):
+    def __init__(self, sock, peer):
         self.sock, self.peer, self.pending = sock, peer, bytearray()
 
 
@@ -471,6 +470,8 @@ class TcpServerTransport(Transport):
                  client_backlog_bytes: int = 1 << 20, client_sndbuf: int | None = None):
         super().__init__()
         self.client_sndbuf = client_sndbuf
+        import socket      # here, not at the top: a file-only run (replay) does not pay for its import
+
         family = socket.AF_INET6 if ":" in host else socket.AF_INET
         self.server = socket.socket(family, socket.SOCK_STREAM)
         self.server.setsockopt(socket.SOL_SOCKET, socket.SO_REUSEADDR, 1)
@@ -513,6 +514,8 @@ class TcpServerTransport(Transport):
 
     def poll(self) -> None:
         """Accept waiting clients, notice closed ones, and push pending bytes."""
+        import socket
+
         while True:
             try:
                 sock, peer = self.server.accept()
@@ -609,6 +612,8 @@ class UdpTransport(Transport):
 
     def __init__(self, host: str, port: int):
         super().__init__()
+        import socket
+
         family = socket.AF_INET6 if ":" in host else socket.AF_INET
         self.sock = socket.socket(family, socket.SOCK_DGRAM)
         self.sock.setblocking(False)

@@ -42,6 +42,7 @@ examples:
 """
 
 CHUNK = 8192     # samples of a capture estimated together
+PIECE = 8192     # samples of a recording's block filtered before the final ones are handed to the writer
 
 
 def add_arguments(parser) -> None:
@@ -163,30 +164,50 @@ class _Outputs:
 
 def run(args) -> int:
     """Replay and write the estimates; returns the exit code."""
-    from collections import Counter
     from pathlib import Path
+
+    from fieldvane.io.errors import InputError
+
+    if not Path(args.input).exists():
+        raise InputError("no such file or folder", args.input)
+    reader = blocks = None
+    if not _is_capture(args.input):     # a recording is read (in a thread) while the calibration loads
+        from fieldvane.io.pipeline import ReadAhead
+        from fieldvane.io.recording import RecordingReader
+
+        reader = RecordingReader(args.input)
+        blocks = ReadAhead(reader)
+    try:
+        return _replay(args, reader, blocks)
+    finally:
+        if blocks is not None:
+            blocks.close()
+
+
+def _replay(args, reader, blocks) -> int:
+    """Replay a recording (reader and its blocks, read ahead) or a capture (both None); return the exit code."""
+    from collections import Counter
 
     from fieldvane.estimator.flags import EstimateFlag
     from fieldvane.estimator.snapshot import SnapshotSolver
     from fieldvane.estimator.tracker import Tracker
     from fieldvane.io.calfile import load_calibration
-    from fieldvane.io.errors import InputError
-    from fieldvane.io.estimation import (counters_table, health_warnings, noise_line, probe_use_line, resets_lines,
-                                         sample_rate_from, settings_for_stream)
-    from fieldvane.io.filterfile import read_filter_settings
+    from fieldvane.io.estimation import counters_table, health_warnings, noise_line, probe_use_line, resets_lines
     from fieldvane.io.outputs import check_output
+    from fieldvane.io.pipeline import WriteBehind
     from fieldvane.io.table_cache import cache_dir_for, load_or_build_table
 
     from fieldvane.io import geo_output
 
-    if not Path(args.input).exists():
-        raise InputError("no such file or folder", args.input)
     # utc and the site's columns; a recording's '# start_utc:' line is taken at its first block
     geo = geo_output.setup(args.site, args.start_utc, args.calibration)
     out = check_output(args.output, inputs=[args.input, args.calibration, args.filter, *geo.inputs],
                        force=args.force, option="--output")
     cal = load_calibration(args.calibration)
-    settings = read_filter_settings(args.filter) if args.filter else None
+    settings = None
+    if args.filter:
+        from fieldvane.io.filterfile import read_filter_settings
+        settings = read_filter_settings(args.filter)
     table, info = load_or_build_table(cal, cache_dir_for(args.calibration))
     if info.built:
         where = info.path if info.path is not None else "not cached"
@@ -202,14 +223,21 @@ def run(args) -> int:
     capture_lines: list[str] = []
     warnings: list[str] = []
     outputs = _Outputs(out, args.out, args.force)
-    behind = _WriteBehind()               # a recording's blocks are written one behind the estimator
+    behind = WriteBehind()                # a recording's estimates are written behind the estimator
     ok = False
     try:
         def note(flags, probes):
             flag_words.update(flags.tolist())
             probe_sets.update(probes.tolist())
 
-        if _is_capture(args.input):
+        def write_stretch(run, stop):     # in the writer thread: the estimates made final by the filter up to stop
+            lo, hi = run.final_through(stop)
+            if hi > lo:
+                rec = run.record(lo, hi)
+                outputs.write_record(rec, geo.for_record(rec))
+                note(rec.flags, rec.probes_used)
+
+        if reader is None:
             from fieldvane.io.live import capture_problem_lines, runs_from_capture
 
             decoder_counters: dict = {}
@@ -239,28 +267,25 @@ def run(args) -> int:
             capture_lines = capture_problem_lines(capture_counters, cap_warnings)
         else:
             from fieldvane.estimator.snapshot import solve_block
-            from fieldvane.io.recording import RecordingReader
 
-            reader = RecordingReader(args.input)
             tracker = None
             geo_ready = False
-            for block in _progress(reader, "chunks", args.no_progress):
+            reader.header_read.wait()     # the tracker is set up while the reader parses the first block
+            if track and reader.layout is not None:
+                tracker = _recording_tracker(cal, settings, solver, args, reader, reader.layout.channels)
+                trackers.append(tracker)
+            for block in _progress(blocks, "chunks", args.no_progress):
                 if not geo_ready:             # the metadata lines are read with the first block
                     geo.take_metadata(reader.metadata, args.input)
                     outputs.metadata.update(geo.metadata())
                     geo_ready = True
                 if tracker is None and track:
-                    _check_channels(block.channels, cal, args.input, reader)
-                    stream = settings_for_stream(settings, reader.metadata, args.input)
-                    tracker = Tracker(cal, stream, solver.initiate, report_channels=args.readouts,
-                                      sample_rate_hz=sample_rate_from(reader.metadata, args.input))
+                    tracker = _recording_tracker(cal, settings, solver, args, reader, block.channels)
                     trackers.append(tracker)
                 elif not track and not probe_sets:
                     _check_channels(block.channels, cal, args.input, reader)
                 if track:
-                    rec = tracker.run_arrays(block)
-                    behind.submit(outputs.write_record, rec, geo.for_record(rec))
-                    note(rec.flags, rec.probes_used)
+                    _track_block(tracker, block, behind, write_stretch)
                 else:
                     ests = solve_block(solver, block)
                     behind.submit(outputs.write_estimates, ests, geo.for_estimates(ests))
@@ -298,39 +323,32 @@ def run(args) -> int:
     return 0
 
 
-class _WriteBehind:
-    """Writes one block while the next is read and estimated (the compiled core and the text formatter release
-    Python's lock, so the two overlap on two cores); at most one block waits, and blocks are written in order."""
+def _recording_tracker(cal, settings, solver, args, reader, channels):
+    """Return the tracker of a recording (its channels checked, lock-in and rate from its metadata lines)."""
+    from fieldvane.estimator.tracker import Tracker
+    from fieldvane.io.estimation import sample_rate_from, settings_for_stream
 
-    def __init__(self):
-        import threading
+    _check_channels(channels, cal, args.input, reader)
+    stream = settings_for_stream(settings, reader.metadata, args.input)
+    return Tracker(cal, stream, solver.initiate, report_channels=args.readouts,
+                   sample_rate_hz=sample_rate_from(reader.metadata, args.input))
 
-        self._thread: threading.Thread | None = None
-        self._error: BaseException | None = None
 
-    def submit(self, write, *args) -> None:
-        """Wait for the previous block's write (raising its error), then start write(*args) in the background."""
-        import threading
+def _track_block(tracker, block, behind, write_stretch) -> None:
+    """Filter a block PIECE samples at a time in this thread, while a helper thread prepares the next piece's input
+    and the writer thread (behind) builds and writes the estimates each piece made final."""
+    from fieldvane.estimator.tracker import BlockRun
+    from fieldvane.io.pipeline import Background
 
-        self.finish()
-
-        def _run():
-            try:
-                write(*args)
-            except BaseException as exc:       # handed to the main thread at its next submit or finish
-                self._error = exc
-
-        self._thread = threading.Thread(target=_run, name="fieldvane-write", daemon=True)
-        self._thread.start()
-
-    def finish(self, raise_error: bool = True) -> None:
-        """Wait for the block being written; raise the error it met (when raise_error)."""
-        if self._thread is not None:
-            self._thread.join()
-            self._thread = None
-        error, self._error = self._error, None
-        if error is not None and raise_error:
-            raise error
+    run = BlockRun(tracker, block)
+    ahead = Background(run.prepare, 0, min(PIECE, run.n), name="fieldvane-prepare")
+    for start in range(0, run.n, PIECE):
+        stop = min(start + PIECE, run.n)
+        prepared = ahead.result()
+        if stop < run.n:
+            ahead = Background(run.prepare, stop, min(stop + PIECE, run.n), name="fieldvane-prepare")
+        run.filter(start, stop, prepared)
+        behind.submit(write_stretch, run, stop)
 
 
 def _check_channels(channels, cal, path, reader) -> None:
