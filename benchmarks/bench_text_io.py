@@ -65,20 +65,6 @@ def _rate(benchmark, key, label):
     print(f"\n{label}: {rate:,.0f} samples/s")
 
 
-@pytest.mark.benchmark(group="read")
-def test_read_recording(benchmark, recording):
-    rows = benchmark(lambda: sum(len(b) for b in RecordingReader(recording)))
-    assert rows == N
-    _rate(benchmark, "read", "RecordingReader (chunked, vectorized)")
-
-
-@pytest.mark.benchmark(group="read")
-def test_read_baseline_loadtxt(benchmark, recording):
-    data = benchmark(lambda: np.loadtxt(recording, delimiter=",", comments="#", skiprows=2))
-    assert data.shape == (N, 15)
-    _rate(benchmark, "loadtxt", "baseline np.loadtxt (no checks)")
-
-
 @pytest.fixture(scope="module")
 def recording_repr(recording, tmp_path_factory):
     """The same rows with every value as repr() writes it (up to 17 digits: what `export --raw` and the wire's
@@ -96,18 +82,27 @@ def recording_repr(recording, tmp_path_factory):
     return path
 
 
+_FILES = {"10 digits": ("recording", 2, ""), "17 digits": ("recording_repr", 1, "_repr")}   # fixture, skiprows, key
+
+
 @pytest.mark.benchmark(group="read")
-def test_read_recording_of_17_digit_values(benchmark, recording_repr):
-    rows = benchmark(lambda: sum(len(b) for b in RecordingReader(recording_repr)))
+@pytest.mark.parametrize("digits", list(_FILES))
+def test_read_recording(benchmark, request, digits):
+    fixture, _, key = _FILES[digits]
+    path = request.getfixturevalue(fixture)
+    rows = benchmark(lambda: sum(len(b) for b in RecordingReader(path)))
     assert rows == N
-    _rate(benchmark, "read_repr", "RecordingReader, values written by repr() (17 digits)")
+    _rate(benchmark, "read" + key, f"RecordingReader, values of {digits}")
 
 
 @pytest.mark.benchmark(group="read")
-def test_read_baseline_loadtxt_17_digits(benchmark, recording_repr):
-    data = benchmark(lambda: np.loadtxt(recording_repr, delimiter=",", skiprows=1))
+@pytest.mark.parametrize("digits", list(_FILES))
+def test_read_baseline_loadtxt(benchmark, request, digits):
+    fixture, skip, key = _FILES[digits]
+    path = request.getfixturevalue(fixture)
+    data = benchmark(lambda: np.loadtxt(path, delimiter=",", comments="#", skiprows=skip))
     assert data.shape == (N, 15)
-    _rate(benchmark, "loadtxt_repr", "baseline np.loadtxt of the 17-digit file")
+    _rate(benchmark, "loadtxt" + key, f"baseline np.loadtxt of the same file, values of {digits} (no checks)")
 
 
 @pytest.mark.benchmark(group="read")

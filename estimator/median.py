@@ -20,7 +20,7 @@ def median(values) -> float:
         return math.nan
     k = n // 2
     if n % 2:
-        return float(np.partition(a, k)[k])
+        return float(0.0 + np.partition(a, k)[k])            # numpy's mean sums from +0.0: -0.0 becomes 0.0
     part = np.partition(a, (k - 1, k))
     with np.errstate(invalid="ignore", over="ignore"):       # inf + -inf is nan, as numpy's mean gives
-        return float((part[k - 1] + part[k]) / 2.0)
+        return float(((0.0 + part[k - 1]) + part[k]) / 2.0)

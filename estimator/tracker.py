@@ -492,7 +492,8 @@ class Tracker:
     # ----------------------------------------------------------------------------------- running
     def run_arrays(self, block: SampleBlock, chunk: int = 65536) -> TrackRecord:
         """Return the estimates of a whole block as arrays (the fast replay path; memory bounded per chunk)."""
-        return TrackRecord.concatenate(list(self.run_pieces(block, chunk)))
+        pieces = list(self.run_pieces(block, chunk))
+        return TrackRecord.concatenate(pieces) if pieces else BlockRun(self, block).record(0, 0)
 
     def run_pieces(self, block: SampleBlock, piece: int = 8192) -> Iterator[TrackRecord]:
         """Yield the estimates of a block in order, each stretch as soon as it is final; together they equal

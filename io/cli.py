@@ -50,8 +50,7 @@ class _Version(argparse.Action):
 def build_parser(argv: list[str] | None = None) -> argparse.ArgumentParser:
     """Return the top-level argument parser with every subcommand registered; with argv naming a command, that
     command alone (the others' modules are not loaded: start-up stays short)."""
-    wanted = next((a for a in (argv or []) if not a.startswith("-")), None)
-    wanted = wanted if wanted in COMMANDS else None
+    wanted = argv[0] if argv and argv[0] in COMMANDS else None      # `fieldvane -h replay` still lists them all
     parser = Parser(
         prog="fieldvane",
         description="Field direction and magnitude from the lock-in outputs of a two-isotope "

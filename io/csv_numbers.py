@@ -135,7 +135,7 @@ def parse_rows(buf, pos, max_rows, ncol, values, ok, starts):
             q = 0                         # value = w * 10^q
             while 48 <= c <= 57:
                 w = w * _U10 + np.uint64(c - 48)
-                significant += w != 0
+                significant += (significant > 0) | (c != 48)
                 digits += 1
                 pos += 1
                 c = buf[pos]
@@ -144,7 +144,7 @@ def parse_rows(buf, pos, max_rows, ncol, values, ok, starts):
                 c = buf[pos]
                 while 48 <= c <= 57:
                     w = w * _U10 + np.uint64(c - 48)
-                    significant += w != 0
+                    significant += (significant > 0) | (c != 48)
                     digits += 1
                     q -= 1
                     pos += 1

@@ -77,7 +77,7 @@ def atomic_files(paths: Iterable[str | os.PathLike]) -> Iterator[list[Path]]:
     try:
         yield tmps
         for tmp, final in zip(tmps, finals):
-            _move_into_place(tmp, final)
+            os.replace(tmp, final)
     except BaseException:
         for tmp in tmps:
             try:
@@ -85,29 +85,6 @@ def atomic_files(paths: Iterable[str | os.PathLike]) -> Iterator[list[Path]]:
             except OSError:
                 pass
         raise
-
-
-def _move_into_place(tmp: Path, final: Path) -> None:
-    """Rename the complete file tmp to final; an existing final (--force) is moved aside first, then removed.
-
-    Why not one os.replace: renaming over an existing file makes ext4 allocate and start writing the new
-    file's blocks at once (its safeguard for replace-by-rename), about 15 ms for a 30 MB estimates file at
-    the end of every replay. Moved aside, the old file comes back if the rename fails.
-    """
-    if not os.path.lexists(final):
-        os.replace(tmp, final)
-        return
-    aside = final.with_name(f".{final.name}.old-{os.getpid()}")
-    os.replace(final, aside)
-    try:
-        os.replace(tmp, final)
-    except BaseException:
-        os.replace(aside, final)
-        raise
-    try:
-        os.unlink(aside)
-    except OSError:
-        pass
 
 
 @contextmanager

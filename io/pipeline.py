@@ -90,6 +90,14 @@ class Background:
             raise self._error
         return self._value
 
+    def done(self) -> bool:
+        """True once the work has ended (with a value or an error)."""
+        return not self._thread.is_alive()
+
+    def wait(self) -> None:
+        """Wait for the work to end, whatever its outcome (the clean-up after another failure)."""
+        self._thread.join()
+
 
 class WriteBehind:
     """Writes one block while the next is read and estimated; at most one write waits, and they run in order."""
@@ -103,12 +111,16 @@ class WriteBehind:
         self._job = Background(write, *args, name="fieldvane-write")
 
     def finish(self, raise_error: bool = True) -> None:
-        """Wait for the write in progress; raise the error it met (when raise_error)."""
-        job, self._job = self._job, None
-        if job is None:
-            return
-        try:
-            job.result()
-        except BaseException:
-            if raise_error:
-                raise
+        """Wait for the write in progress; raise the error it met (when raise_error). Without raise_error (the clean-up
+        after a failure) it waits even through Ctrl-C: the file must not be closed under a running write."""
+        while self._job is not None:
+            job = self._job
+            try:
+                job.result()
+            except BaseException:
+                if job.done():              # the write's own error: it has ended
+                    self._job = None
+                if raise_error:
+                    raise
+                continue
+            self._job = None

@@ -86,3 +86,39 @@ def test_knots_are_every_stride_and_the_last_sample():
     k = MagnitudeKnots(None, np.ones(2), 100)
     assert k.rows.tolist() == list(range(0, 100, MAGNITUDE_STRIDE)) + [99]
     assert MagnitudeKnots(None, np.ones(2), 97).rows[-1] == 96
+
+
+def test_whole_block_magnitude_equals_the_previous_algorithm(stream):
+    # The previous whole-block rule, written out here as the reference: the model at every 16th sample and the
+    # last, each isotope's correction and the fusion inputs interpolated over their finite knots, fused.
+    cal, block = stream
+    tracker = Tracker(cal, FilterSettings(), SnapshotSolver.from_calibration(cal).initiate)
+    rec = tracker.run_arrays(block, 1 << 20)
+    n, f = len(block), block.f
+    rows = np.unique(np.r_[np.arange(0, n, MAGNITUDE_STRIDE), n - 1])
+    est = cal.magnitude_model.estimate(f[rows], rec.u[rows], np.radians(rec.sigma_deg[rows]))
+    with np.errstate(invalid="ignore"):
+        m = f / cal.gammas_hz_per_nt[None, :]
+    idx = np.arange(n)
+
+    def interp(values):
+        ok = np.isfinite(values)
+        return np.interp(idx, rows[ok], values[ok]) if ok.any() else np.full(n, np.nan)
+
+    delta = m[rows] - est.b_per_isotope
+    per = np.column_stack([m[:, k] - interp(delta[:, k]) for k in range(2)])
+    w = np.column_stack([interp(est.weights[:, k]) for k in range(2)])
+    both = np.isfinite(per).all(axis=1)
+    fused = np.where(both, (w * np.where(np.isfinite(per), per, 0.0)).sum(axis=1),
+                     np.where(np.isfinite(per[:, 0]), per[:, 0], per[:, 1]))
+    good = np.isfinite(fused)
+    assert good.mean() > 0.9
+    np.testing.assert_array_equal(rec.b_nT[good], fused[good])
+    np.testing.assert_array_equal(rec.sigma_b_nT[good], interp(est.sigma_b_nT)[good])
+
+
+def test_an_empty_block_gives_an_empty_record(stream):
+    cal, block = stream
+    empty = dataclasses.replace(block, t=block.t[:0], f=block.f[:0], z=block.z[:0])
+    rec = Tracker(cal, FilterSettings(), SnapshotSolver.from_calibration(cal).initiate).run_arrays(empty)
+    assert len(rec) == 0 and rec.u.shape == (0, 3) and rec.b_nT.shape == (0,)

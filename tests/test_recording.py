@@ -1,5 +1,7 @@
 """Recording CSV reader: both channel forms, comments, chunking and clear errors."""
 
+import io as std_io
+
 import numpy as np
 import pytest
 from hypothesis import given, settings
@@ -307,20 +309,47 @@ def test_streaming_memory_is_bounded_by_the_chunk(tmp_path):
     assert big < 40_000 * 11 * 8 / 2           # under half of the parsed values of the whole file
 
 
+_PIECES = st.lists(st.sampled_from([b"a,1", b"bb", b"", "\u00e9,2".encode(), b"\n", b"\r", b"\r\n", b"\n\n",
+                                    b"#x", b"\xff", b"\xc3", b"1,2", b"3.5,-4e2"]), max_size=60)
+
+
+def _python_lines(raw: bytes) -> list[str]:
+    """Lines as Python's own text layer reads them (universal newlines, UTF-8 with BOM removed, bad bytes replaced)."""
+    lines = std_io.TextIOWrapper(std_io.BytesIO(raw), encoding="utf-8-sig", errors="replace",
+                                 newline=None).read().split("\n")
+    if lines and lines[-1] == "":
+        lines.pop()
+    return lines
+
+
 @settings(max_examples=80, deadline=None)
-@given(pieces=st.lists(st.sampled_from([b"a,1", b"bb", b"", "\u00e9,2".encode(), b"\n", b"\r", b"\r\n", b"\n\n",
-                                        b"#x", b"\xff", b"\xc3"]), max_size=60),
-       bom=st.booleans(), block=st.integers(1, 16))
+@given(pieces=_PIECES, bom=st.booleans(), block=st.integers(1, 16))
 def test_text_lines_split_like_python_universal_newlines(pieces, bom, block):
-    import io as std_io
     from fieldvane.io.recording import TextLines
     raw = (b"\xef\xbb\xbf" if bom else b"") + b"".join(pieces)
-    # Reference: Python's own text layer (universal newlines, UTF-8 with BOM removed, bad bytes replaced).
-    want = std_io.TextIOWrapper(std_io.BytesIO(raw), encoding="utf-8-sig", errors="replace",
-                                newline=None).read().split("\n")
-    if want and want[-1] == "":
-        want.pop()
+    want = _python_lines(raw)                  # reference: Python's text layer
     src = TextLines(std_io.BytesIO(raw), block_bytes=block)
     got = src.take(3) + [line for line in iter(src.readline, None)]
     assert got == want
     assert src.line_number == len(want)
+
+
+@settings(max_examples=120, deadline=None)
+@given(pieces=_PIECES, bom=st.booleans(), block=st.integers(1, 16), header_lines=st.integers(0, 3),
+       chunk=st.integers(1, 7))
+def test_byte_lines_split_like_python_universal_newlines(pieces, bom, block, header_lines, chunk):
+    from fieldvane.io.byte_lines import ByteLines
+    raw = (b"\xef\xbb\xbf" if bom else b"") + b"".join(pieces)
+    want = _python_lines(raw)                  # reference: Python's text layer
+    src = ByteLines(std_io.BytesIO(raw), block_bytes=block)
+    got = []
+    for _ in range(header_lines):
+        line = src.readline()
+        if line is not None:
+            got.append(line)
+    while (parsed := src.parse(chunk, 2)) is not None:
+        assert 1 <= len(parsed) <= chunk
+        got += parsed[:]
+        for k in np.flatnonzero(parsed.ok):       # a parsed line is two numbers: float() of its two fields
+            assert [float(v) for v in parsed[int(k)].split(",")] == parsed.values[k].tolist()
+    assert got == want

@@ -152,7 +152,6 @@ def test_replay_pipeline_writes_what_the_whole_block_gives(calibrated, monkeypat
     from fieldvane.io.calfile import load_calibration
     from fieldvane.io.commands import replay
     from fieldvane.io.estimation import sample_rate_from, settings_for_stream
-    from fieldvane.io.recording import RecordingReader
 
     d = calibrated
     monkeypatch.setattr(replay, "PIECE", 700)
@@ -162,17 +161,52 @@ def test_replay_pipeline_writes_what_the_whole_block_gives(calibrated, monkeypat
     est = read_estimates(out)
     cal = load_calibration(d / "cal.json")
     assert cal.magnitude_model is not None            # |B| goes through the magnitude knots
-    reader = RecordingReader(d / "rot.csv")
-    block = next(iter(reader))
-    tracker = Tracker(cal, settings_for_stream(None, reader.metadata, str(d / "rot.csv")),
+    block, _ = read_recording(d / "rot.csv")
+    tracker = Tracker(cal, settings_for_stream(None, block.metadata, str(d / "rot.csv")),
                       SnapshotSolver.from_calibration(cal).initiate, report_channels=True,
-                      sample_rate_hz=sample_rate_from(reader.metadata, str(d / "rot.csv")))
+                      sample_rate_hz=sample_rate_from(block.metadata, str(d / "rot.csv")))
     assert len(block) > 3 * 700
     rec = tracker.run_arrays(block, 1 << 20)
     for name, values in {"t": rec.t, "ux": rec.u[:, 0], "uy": rec.u[:, 1], "b_nT": rec.b_nT, "flags": rec.flags,
                          "sigma_deg": rec.sigma_deg, "nis": rec.nis, "sigma_b_nT": rec.sigma_b_nT,
                          **rec.channel_readouts}.items():
         np.testing.assert_array_equal(est[name], values, err_msg=name)
+
+
+def test_replay_stops_cleanly_when_writing_fails_mid_file(calibrated, monkeypatch, capsys):
+    # The disk fills up while the writer thread writes the third stretch: exit 1 with the file's message, no
+    # partial estimates file and no pipeline thread left behind.
+    import threading
+
+    from fieldvane.io.commands import replay
+    from fieldvane.io.estimates_csv import EstimatesWriter
+
+    class FullDisk:
+        def __init__(self, fh):
+            self.fh = fh
+
+        def write(self, data):
+            raise OSError(28, "No space left on device")
+
+        def close(self):
+            self.fh.close()
+
+    real_put, puts = EstimatesWriter._put, []
+
+    def put(self, data):
+        puts.append(len(data))
+        if len(puts) == 3:
+            self._fh = FullDisk(self._fh)
+        return real_put(self, data)
+
+    d = calibrated
+    monkeypatch.setattr(replay, "PIECE", 500)
+    monkeypatch.setattr(EstimatesWriter, "_put", put)
+    out = d / "est_full_disk.csv"
+    assert main(["replay", str(d / "rot.csv"), "-c", str(d / "cal.json"), "-o", str(out)]) == 1
+    assert "cannot write estimates: No space left on device" in capsys.readouterr().err
+    assert len(puts) == 3 and not [p for p in d.iterdir() if "est_full_disk" in p.name]
+    assert not [t for t in threading.enumerate() if t.name.startswith("fieldvane-")]
 
 
 def test_replay_writes_blocks_in_order_behind_the_estimator_and_hands_on_a_write_error():

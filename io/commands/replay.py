@@ -273,7 +273,6 @@ def _replay(args, reader, blocks) -> int:
             reader.header_read.wait()     # the tracker is set up while the reader parses the first block
             if track and reader.layout is not None:
                 tracker = _recording_tracker(cal, settings, solver, args, reader, reader.layout.channels)
-                trackers.append(tracker)
             for block in _progress(blocks, "chunks", args.no_progress):
                 if not geo_ready:             # the metadata lines are read with the first block
                     geo.take_metadata(reader.metadata, args.input)
@@ -281,6 +280,7 @@ def _replay(args, reader, blocks) -> int:
                     geo_ready = True
                 if tracker is None and track:
                     tracker = _recording_tracker(cal, settings, solver, args, reader, block.channels)
+                if track and not trackers:    # summarized only once it has seen samples
                     trackers.append(tracker)
                 elif not track and not probe_sets:
                     _check_channels(block.channels, cal, args.input, reader)
@@ -342,13 +342,16 @@ def _track_block(tracker, block, behind, write_stretch) -> None:
 
     run = BlockRun(tracker, block)
     ahead = Background(run.prepare, 0, min(PIECE, run.n), name="fieldvane-prepare")
-    for start in range(0, run.n, PIECE):
-        stop = min(start + PIECE, run.n)
-        prepared = ahead.result()
-        if stop < run.n:
-            ahead = Background(run.prepare, stop, min(stop + PIECE, run.n), name="fieldvane-prepare")
-        run.filter(start, stop, prepared)
-        behind.submit(write_stretch, run, stop)
+    try:
+        for start in range(0, run.n, PIECE):
+            stop = min(start + PIECE, run.n)
+            prepared = ahead.result()
+            if stop < run.n:
+                ahead = Background(run.prepare, stop, min(stop + PIECE, run.n), name="fieldvane-prepare")
+            run.filter(start, stop, prepared)
+            behind.submit(write_stretch, run, stop)
+    finally:
+        ahead.wait()                  # no helper outlives a failure
 
 
 def _check_channels(channels, cal, path, reader) -> None:
