@@ -44,18 +44,11 @@ def _powers_of_five() -> np.ndarray:
         if q < 0:
             p = 5 ** -q
             z = p.bit_length()                           # the smallest z with 2^z > 5^-q
-            if q >= -27:
-                c = (1 << (z + 127)) // p + 1
-            else:
-                c = (1 << (2 * z + 128)) // p + 1
-                while c >= 1 << 128:
-                    c >>= 1
+            c = (1 << (z + 127)) // p + 1 if q >= -27 else (1 << (2 * z + 128)) // p + 1
         else:
             c = 5 ** q
-            while c < 1 << 127:
-                c <<= 1
-            while c >= 1 << 128:
-                c >>= 1
+        shift = c.bit_length() - 128                     # keep the leading 128 bits (truncated), or move them up
+        c = c >> shift if shift > 0 else c << -shift
         rows.append((c >> 64, c & ((1 << 64) - 1)))
     return np.array(rows, np.uint64)
 
