@@ -28,9 +28,12 @@ class MagnitudeKnots:
     def __init__(self, model, gammas_hz_per_nT: np.ndarray, n: int):
         self.model, self.gammas, self.n = model, gammas_hz_per_nT, n
         self.dense = n <= 4 * MAGNITUDE_STRIDE
-        rows = np.arange(0, n, MAGNITUDE_STRIDE)
-        self.rows = rows if n == 0 or rows[-1] == n - 1 else np.append(rows, n - 1)
-        self.series = np.full((len(self.rows), _SERIES), math.nan)
+        if self.dense:                    # evaluated sample by sample: no knots (a live batch, every time)
+            self.rows, self.series = np.zeros(0, np.intp), np.zeros((0, _SERIES))
+        else:
+            rows = np.arange(0, n, MAGNITUDE_STRIDE)
+            self.rows = rows if rows[-1] == n - 1 else np.append(rows, n - 1)
+            self.series = np.full((len(self.rows), _SERIES), math.nan)
         self.count = 0            # knots evaluated
         self.filtered = 0         # samples of the block the filter has finished
 
