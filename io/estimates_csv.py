@@ -18,7 +18,8 @@ import numpy as np
 
 from fieldvane.estimator.estimate import ESTIMATE_COLUMNS, Estimate
 from fieldvane.io.errors import InputError, JobError
-from fieldvane.io.recording import TextLines, fast_parse_lines
+from fieldvane.io.byte_lines import ByteLines
+from fieldvane.io.recording import fast_parse_lines
 
 WRITE_BLOCK_ROWS = 8192        # rows formatted per compiled call (bounds the text buffer: ~3.5 MB)
 READ_CHUNK_ROWS = 65536        # lines parsed per compiled call when reading
@@ -251,14 +252,15 @@ def read_estimates(path: str | Path) -> dict[str, np.ndarray]:
     except OSError as exc:
         raise InputError(f"cannot open estimates: {exc.strerror}", path) from None
     with fh:
-        source = TextLines(fh)
+        source = ByteLines(fh)
         header = None
+        lineno = 0
         while (line := source.readline()) is not None:
+            lineno += 1
             s = line.strip()
             if s and not s.startswith("#"):
                 header = [h.strip() for h in s.split(",")]
                 break
-        lineno = source.line_number
         if header is None:
             raise InputError("no header row", path)
         if tuple(header[:len(ESTIMATE_COLUMNS)]) != ESTIMATE_COLUMNS:
@@ -270,18 +272,23 @@ def read_estimates(path: str | Path) -> dict[str, np.ndarray]:
             seen.add(name)
         parts = []
         utc_at = header.index("utc") if "utc" in header else None
-        while lines := source.take(READ_CHUNK_ROWS):
-            if utc_at is not None:          # ISO 8601 text (as written) -> POSIX seconds
-                from fieldvane.io.utc_text import utc_lines_to_numbers
-                lines = utc_lines_to_numbers(lines, utc_at, path, lineno + 1)
-            values = fast_parse_lines(lines, len(header))
-            if values is not None:
-                line_numbers = np.arange(lineno + 1, lineno + 1 + len(lines))
+        while (parsed := source.parse(READ_CHUNK_ROWS, len(header))) is not None:
+            if utc_at is None and parsed.ok.all():      # every line numbers the compiled parser read exactly
+                values = parsed.values
+                line_numbers = np.arange(lineno + 1, lineno + 1 + len(parsed))
             else:
-                values, line_numbers = _parse_lines_one_by_one(lines, header, path, lineno + 1)
+                lines = parsed[:]
+                if utc_at is not None:      # ISO 8601 text (as written) -> POSIX seconds
+                    from fieldvane.io.utc_text import utc_lines_to_numbers
+                    lines = utc_lines_to_numbers(lines, utc_at, path, lineno + 1)
+                values = fast_parse_lines(lines, len(header))
+                if values is not None:
+                    line_numbers = np.arange(lineno + 1, lineno + 1 + len(lines))
+                else:
+                    values, line_numbers = _parse_lines_one_by_one(lines, header, path, lineno + 1)
             _check_flags(values, line_numbers, header, path)
             parts.append(values)
-            lineno += len(lines)
+            lineno += len(parsed)
     data = np.concatenate(parts) if parts else np.empty((0, len(header)))
     out = {name: data[:, i] for i, name in enumerate(header)}
     out["flags"] = out["flags"].astype(np.int64)

@@ -322,18 +322,6 @@ def _python_lines(raw: bytes) -> list[str]:
     return lines
 
 
-@settings(max_examples=80, deadline=None)
-@given(pieces=_PIECES, bom=st.booleans(), block=st.integers(1, 16))
-def test_text_lines_split_like_python_universal_newlines(pieces, bom, block):
-    from fieldvane.io.recording import TextLines
-    raw = (b"\xef\xbb\xbf" if bom else b"") + b"".join(pieces)
-    want = _python_lines(raw)                  # reference: Python's text layer
-    src = TextLines(std_io.BytesIO(raw), block_bytes=block)
-    got = src.take(3) + [line for line in iter(src.readline, None)]
-    assert got == want
-    assert src.line_number == len(want)
-
-
 @settings(max_examples=120, deadline=None)
 @given(pieces=_PIECES, bom=st.booleans(), block=st.integers(1, 16), header_lines=st.integers(0, 3),
        chunk=st.integers(1, 7))
