@@ -140,21 +140,27 @@ emitter.stop()
 """
 
 
+@pytest.mark.parametrize("outputs", ["none", "capture+csv"])
 @pytest.mark.parametrize("rate", [1_000, 10_000])
-def test_live_latency_frame_to_sink(calibration, rate):
+def test_live_latency_frame_to_sink(calibration, tmp_path, rate, outputs):
     """A simulated sensor in its own process streaming 1,000 or 10,000 frames/s over a pty for 8 s into the live loop (link
-    reader thread, decoder, the tracker on whatever has arrived, a batch at a time): latency from each frame's
-    scheduled send time to the moment its estimate is handed to the loggers (p50, p99, max), and frames lost."""
+    reader thread, decoder, the tracker on whatever has arrived, a batch at a time), bare or as `fieldvane run
+    --capture DIR --out est.csv` runs it (raw bytes to the capture's writer thread, records to a CSV logger's thread):
+    latency from each frame's scheduled send time to the moment its estimate is handed to the last logger (p50, p99,
+    max), the part of it after the frame reached the host, frames lost, and the process's CPU time per frame."""
     import math
+    import resource
 
     import numpy as np
 
     from fieldvane.estimator.snapshot import SnapshotSolver
     from fieldvane.estimator.tracker import Tracker
     from fieldvane.io.calfile import load_calibration
+    from fieldvane.io.capture import CaptureWriter
     from fieldvane.io.estimates_csv import record_rows
     from fieldvane.io.live import BinarySampleDecoder, LiveLoop
     from fieldvane.io.serial_link import SerialLink
+    from fieldvane.io.sinks import Sink, open_sink
     from fieldvane.io.table_cache import cache_dir_for, load_or_build_table
 
     seconds = 8.0
@@ -168,37 +174,67 @@ def test_live_latency_frame_to_sink(calibration, rate):
     proc.stdin.close()
     path = proc.stdout.readline().strip()
     latencies, after_arrival, t_start = [], [], []
+    host_ns: list[int] = []
 
-    def estimate_batch(samples):
-        rows = record_rows(tracker.step_record(samples))        # as `fieldvane run` does
+    def handed(count):
         now = time.monotonic()
         if t_start:
-            latencies.extend(now - (t_start[0] + s.t) for s in samples)
+            latencies.extend(now - (t_start[0] + s.t) for s in batch[-1][:count])
             # the part this tool adds: from the reader thread receiving the frame's last byte
-            after_arrival.extend(now - ns * 1e-9 for ns in loop.sample_host_times_ns)
+            after_arrival.extend(now - ns * 1e-9 for ns in host_ns[:count])
+        del batch[-1][:count]
+        del host_ns[:count]
+
+    class StampedSink(Sink):
+        """The CSV logger, noting when each record is handed to it."""
+
+        def emit(self, record):
+            ok = Sink.emit(self, record)
+            handed(1)
+            return ok
+
+    batch: list = [[]]
+
+    def estimate_batch(samples):
+        batch[-1] = list(samples)
+        host_ns[:] = loop.sample_host_times_ns
+        rows = record_rows(tracker.step_record(samples))        # as `fieldvane run` does
+        if not sinks:
+            handed(len(samples))
         return rows
 
+    sinks, capture = [], None
+    if outputs != "none":
+        sink = open_sink(str(tmp_path / "est.csv"))
+        sink.__class__ = StampedSink
+        sinks.append(sink)
+        capture = CaptureWriter(tmp_path / "capture", {})
     link = SerialLink(path, clock=time.monotonic_ns)      # arrival times on the sensor process's clock
-    loop = LiveLoop(link, BinarySampleDecoder(), lambda s: None, [], None, log=None, estimate_batch=estimate_batch)
+    loop = LiveLoop(link, BinarySampleDecoder(), lambda s: None, sinks, capture, log=None,
+                    estimate_batch=estimate_batch)
     old_interval = sys.getswitchinterval()
     sys.setswitchinterval(0.0002)          # as `fieldvane run` does: threads take turns faster than 5 ms
     thread = threading.Thread(target=loop.run, daemon=True)
     try:
         thread.start()
         t_start.append(float(proc.stdout.readline()))
+        cpu = resource.getrusage(resource.RUSAGE_SELF)         # from the first frame sent to the last
         dropped = int(proc.stdout.readline())
+        used = resource.getrusage(resource.RUSAGE_SELF)
         time.sleep(0.5)
         loop.stop()
         thread.join(10)
     finally:
         sys.setswitchinterval(old_interval)
         proc.wait(20)
+    cpu_us = (used.ru_utime - cpu.ru_utime + used.ru_stime - cpu.ru_stime) / (rate * seconds) * 1e6
     lat = np.array(latencies[rate // 2:]) * 1e3        # after the first half second (acquisition, caches)
     p50, p99, worst = np.percentile(lat, 50), np.percentile(lat, 99), lat.max()
     ours = np.array(after_arrival[rate // 2:]) * 1e3
     total = int(rate * seconds)
-    print(f"\n{rate / 1000:g} kHz live: {loop.samples} of {total} frames estimated ({loop.samples / max(loop.chunks, 1):.1f} "
-          f"per chunk), latency p50 {p50:.3f} ms, p99 {p99:.3f} ms, max {worst:.2f} ms; sensor dropped {dropped}"
+    print(f"\n{rate / 1000:g} kHz live, outputs {outputs}: {loop.samples} of {total} frames estimated "
+          f"({loop.samples / max(loop.chunks, 1):.1f} per chunk), latency p50 {p50:.3f} ms, p99 {p99:.3f} ms, max "
+          f"{worst:.2f} ms; sensor dropped {dropped}; CPU {cpu_us:.0f} us per frame"
           f"\n  of which after arrival at the host: p50 {np.percentile(ours, 50):.3f} ms, "
           f"p99 {np.percentile(ours, 99):.3f} ms, max {ours.max():.2f} ms (the rest is the simulated sensor's "
           f"own lateness in sending and the pty)")

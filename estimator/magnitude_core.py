@@ -57,8 +57,9 @@ def direction_uncertainty(u_cov, n: int) -> tuple[int, np.ndarray, np.ndarray]:
 
 
 # error_model="numpy": divisions and roots of non-finite or zero values give inf/nan as the numpy code did
-# (the Python error model would raise ZeroDivisionError instead). One function without compiled helpers: a helper
-# taking arrays costs reference-count updates per call, which were most of the time per row.
+# (the Python error model would raise ZeroDivisionError instead). The rows are walked in one function called once
+# (correct_rows calls it too), with no helper per row: a helper taking arrays costs reference-count updates per
+# call, which were most of the time per row.
 @entry("f8[:, ::1](f8[:, ::1], f8[:, ::1], i8, f8[::1], f8[:, :, ::1], f8[::1], i8[::1], f8, i8[::1], "
        "f8[:, :, ::1], f8[:, :, ::1], i8[:, ::1], f8[:, :, ::1], f8[::1], f8[:, ::1], i8)",
        cache=True, nogil=True, error_model="numpy")
@@ -73,6 +74,14 @@ def estimate_rows(f, u_in, mode, sigma, cov_in, gammas, codes, reference, degree
     (harmonics.monomial_coefficients); exps (M, 3) the monomial exponents by total degree (monomials.exponents of
     max L_i); noise (L, 2) nT at log_levels (L,) ln(nT); codes (n_env,) INVERSE, CONSTANT or SQUARE.
     """
+    return _estimate_rows(f, u_in, mode, sigma, cov_in, gammas, codes, reference, degrees, coef, unit_cov, exps,
+                          to_harm, log_levels, noise, newton_steps)
+
+
+@helper(cache=True, nogil=True, error_model="numpy")
+def _estimate_rows(f, u_in, mode, sigma, cov_in, gammas, codes, reference, degrees, coef, unit_cov, exps, to_harm,
+                   log_levels, noise, newton_steps):
+    """estimate_rows' body (correct_rows calls it too)."""
     n = f.shape[0]
     n_env = codes.shape[0]
     k_max = coef.shape[2]
@@ -313,3 +322,67 @@ def estimate_rows(f, u_in, mode, sigma, cov_in, gammas, codes, reference, degree
         out[r, OUT_SIGMA_B] = math.sqrt(var_b) if any_ok else np.nan
         out[r, OUT_SIGMA_DIFF] = math.sqrt(var_d) if (ok[0] and ok[1]) else np.nan
     return out
+
+
+# ============================================================================ the tracker's rows, corrected in place
+# Signatures of the tracker's rows: b (N,) nT, per (N, 2) nT and flags (N,) in and out, sigma_b (N,) nT out.
+_ROWS = "f8, f8, i8, f8[::1], f8[:, ::1], i8[::1], f8[::1]"
+
+
+@helper(cache=True, nogil=True, inline="always", error_model="numpy")
+def _apply_row(r, pa, pb, fused, sigma_b, sigma_diff, tolerance, n_sigma, bit, b, per, flags, sigma_b_out):
+    """Row r of the tracker's outputs from the corrected isotopes pa, pb, fused |B|, sigma_b and the sigma of their
+    difference (nT): estimator/magnitude.py's `disagreement` rule on them, as Tracker._magnitude states it with numpy
+    (np.where over the rows; tests/test_magnitude_knots.py compares the two bit for bit)."""
+    good = math.isfinite(fused)
+    if good:
+        b[r] = fused
+    if math.isfinite(pa):
+        per[r, 0] = pa
+    if math.isfinite(pb):
+        per[r, 1] = pb
+    diff = abs(pa - pb)
+    floor = tolerance * abs((pa + pb) / 2)          # numpy's mean of two
+    limit = floor
+    if math.isfinite(sigma_diff):
+        scaled = n_sigma * sigma_diff
+        if scaled > floor:
+            limit = scaled
+        if floor != floor:                          # numpy.maximum keeps a nan
+            limit = floor
+    if good:
+        disagree = math.isfinite(diff) and diff > limit
+        flags[r] = (flags[r] & ~bit) | (bit if disagree else 0)
+        sigma_b_out[r] = sigma_b
+    else:
+        sigma_b_out[r] = np.nan
+
+
+@entry("i8(f8[:, ::1], f8[::1], f8[::1], f8[::1], " + _ROWS + ")", cache=True, nogil=True, error_model="numpy")
+def apply_corrections(per_c, fused, sigma_b, sigma_diff, tolerance, n_sigma, bit, b, per, flags, sigma_b_out):
+    """Correct the tracker's rows in place from the magnitude model's per isotope (N, 2), fused |B|, sigma_b and the
+    sigma of the isotopes' difference (N,) nT (interpolated between knots); return N."""
+    n = per_c.shape[0]
+    for r in range(n):
+        _apply_row(r, per_c[r, 0], per_c[r, 1], fused[r], sigma_b[r], sigma_diff[r], tolerance, n_sigma, bit, b, per,
+                   flags, sigma_b_out)
+    return n
+
+
+@entry("i8(f8[::1], i8[::1], f8, i8[::1], f8[:, :, ::1], f8[:, :, ::1], i8[:, ::1], f8[:, :, ::1], f8[::1], "
+       "f8[:, ::1], i8, f8[:, ::1], f8[:, ::1], f8[::1], " + _ROWS + ")", cache=True, nogil=True, error_model="numpy")
+def correct_rows(gammas, codes, reference, degrees, coef, unit_cov, exps, to_harm, log_levels, noise, newton_steps,
+                 f, u, sigma_deg, tolerance, n_sigma, bit, b, per, flags, sigma_b_out):
+    """Correct the tracker's rows in place by the magnitude model (its arrays first, as estimate_rows takes them) at
+    frequencies f (N, 2) Hz, directions u (N, 3) sensor frame with total angular 1-sigma sigma_deg (N,) deg, each
+    sample evaluated (a live batch); return N."""
+    n = f.shape[0]
+    sigma = np.empty(n)
+    for r in range(n):
+        sigma[r] = sigma_deg[r] * (math.pi / 180.0)          # numpy.radians
+    out = _estimate_rows(f, u, U_SIGMA, sigma, np.empty((0, 3, 3)), gammas, codes, reference, degrees, coef,
+                        unit_cov, exps, to_harm, log_levels, noise, newton_steps)
+    for r in range(n):
+        _apply_row(r, out[r, OUT_B_ISO], out[r, OUT_B_ISO + 1], out[r, OUT_B], out[r, OUT_SIGMA_B],
+                   out[r, OUT_SIGMA_DIFF], tolerance, n_sigma, bit, b, per, flags, sigma_b_out)
+    return n

@@ -18,8 +18,13 @@ import math
 
 import numpy as np
 
+from fieldvane.estimator.flags import EstimateFlag
+from fieldvane.estimator.magnitude import DISAGREE_SIGMAS
+
 MAGNITUDE_STRIDE = 16     # samples between evaluations of the calibrated magnitude corrections
 _SERIES = 6               # per knot: correction of isotope a, b (nT); fusion weight a, b; sigma_b; sigma_diff (nT)
+_DISAGREE = int(EstimateFlag.MAGNITUDE_DISAGREE)
+_NO_ROWS, _NO_SERIES = np.zeros(0, np.intp), np.zeros((0, _SERIES))     # a dense block's knots (never written)
 
 
 class MagnitudeKnots:
@@ -29,7 +34,7 @@ class MagnitudeKnots:
         self.model, self.gammas, self.n = model, gammas_hz_per_nT, n
         self.dense = n <= 4 * MAGNITUDE_STRIDE
         if self.dense:                    # evaluated sample by sample: no knots (a live batch, every time)
-            self.rows, self.series = np.zeros(0, np.intp), np.zeros((0, _SERIES))
+            self.rows, self.series = _NO_ROWS, _NO_SERIES
         else:
             rows = np.arange(0, n, MAGNITUDE_STRIDE)
             self.rows = rows if rows[-1] == n - 1 else np.append(rows, n - 1)
@@ -65,9 +70,31 @@ class MagnitudeKnots:
         last = self.count - 1 - np.argmax(finite[::-1], axis=0)       # each series' last finite knot
         return int(self.rows[last.min()]) + 1
 
+    def apply(self, lo: int, f_hz: np.ndarray, u: np.ndarray, sigma_deg: np.ndarray, b_nT: np.ndarray,
+              per_nT: np.ndarray, flags: np.ndarray, tolerance: float):
+        """Return (|B| (N,) nT, per isotope (N, 2) nT, sigma_b (N,) nT, flags (N,)) of the block's samples lo..lo+N-1:
+        their own |B| (f / gamma) corrected by the model where it gives one, MAGNITUDE_DISAGREE judged against the
+        corrected isotopes' uncertainty (estimator/magnitude.py's rule), given f_hz (N, 2) Hz, u (N, 3) sensor frame
+        and sigma_deg (N,) deg. New arrays; the arguments are left as they are."""
+        from fieldvane.estimator import magnitude_core as core     # compiled: loaded only where |B| is corrected
+
+        b = np.array(b_nT, np.float64)
+        per = np.array(per_nT, np.float64)
+        flags = np.array(flags, np.int64)
+        sigma_b = np.empty(b.shape[0])
+        if self.dense:
+            self.model.row_corrector()(np.ascontiguousarray(f_hz, np.float64), np.ascontiguousarray(u, np.float64),
+                                       np.ascontiguousarray(sigma_deg, np.float64), tolerance, DISAGREE_SIGMAS,
+                                       _DISAGREE, b, per, flags, sigma_b)
+        else:
+            per_c, fused, sb, sd = self.corrected(lo, f_hz, u, sigma_deg)
+            core.apply_corrections(per_c, fused, sb, sd, tolerance, DISAGREE_SIGMAS, _DISAGREE, b, per, flags, sigma_b)
+        return b, per, sigma_b, flags
+
     def corrected(self, lo: int, f_hz: np.ndarray, u: np.ndarray, sigma_deg: np.ndarray):
         """Return (per isotope (N, 2) nT, fused |B| (N,) nT, sigma_b (N,) nT, sigma of the isotopes' difference (N,)
-        nT) of the block's samples lo..lo+N-1, given their f_hz (N, 2) Hz, u (N, 3) and sigma_deg (N,)."""
+        nT) of the block's samples lo..lo+N-1, given their f_hz (N, 2) Hz, u (N, 3) and sigma_deg (N,); interpolated
+        between the knots (a dense block: each sample evaluated)."""
         if self.dense:
             est = self.model.estimate(f_hz, u, np.radians(sigma_deg))
             return est.b_per_isotope, est.b_nT, est.sigma_b_nT, est.sigma_difference_nT
@@ -83,7 +110,7 @@ class MagnitudeKnots:
         both = np.isfinite(per_c).all(axis=1)
         fused = np.where(both, (w * np.where(np.isfinite(per_c), per_c, 0.0)).sum(axis=1),
                          np.where(np.isfinite(per_c[:, 0]), per_c[:, 0], per_c[:, 1]))
-        return per_c, fused, sigma_b, sigma_diff
+        return per_c, fused, np.ascontiguousarray(sigma_b), np.ascontiguousarray(sigma_diff)
 
 
 def _interp_finite(x: np.ndarray, xp: np.ndarray, fp: np.ndarray) -> np.ndarray:

@@ -59,13 +59,14 @@ def _numpy_sum(a, n):
     return total
 
 
-@entry("i8(f8[:, ::1], f8[:, ::1], f8[::1], f8[::1], f8[::1], f8[::1], f8[::1], f8[::1], f8[::1], f8[:, ::1], "
+@entry("i8(f8[::1], f8[::1], f8[::1], f8[::1], f8[::1], f8[::1], f8[:, ::1], f8[:, ::1], f8[::1], f8[:, ::1], "
        "i8[::1], f8[::1], i8[::1], f8[::1], f8[:, ::1])",
        cache=True, nogil=True, error_model="numpy")
-def prepare_rows(f, zr, gammas, limits, sigma, starts, merr_grid, merr_values, b, per, flags, seg_t, segment, merr,
+def prepare_rows(gammas, limits, sigma, starts, merr_grid, merr_values, f, zr, b, per, flags, seg_t, segment, merr,
                  zw):
     """Fill b (N,) nT, per (N, 2) nT, flags (N,), seg_t (N,), segment (N,), merr (N,) and zw (N, 2C) from
-    frequencies f (N, 2) Hz and lock-in components zr (N, 2C) V; return N.
+    frequencies f (N, 2) Hz and lock-in components zr (N, 2C) V; return N. The tracker's constants come first
+    (the live path binds them once: fieldvane.kernels.bind).
 
     gammas (2,) Hz/nT; limits (N_LIMITS,) by the L_* slots; sigma (2C,) V; starts (S,) segment starts in
     log|B|; merr_grid (G,) log|B| and merr_values (G,) the model-error table (G = 0: none).

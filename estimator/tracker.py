@@ -48,13 +48,13 @@ from fieldvane.estimator.filter_settings import FilterSettings
 from fieldvane.estimator.flags import EstimateFlag as F
 from fieldvane.estimator.lockin_noise import (autocorrelation, correlation_factor, group_delay_s,
                                               second_difference_variance)
-from fieldvane.estimator.magnitude import disagreement
 from fieldvane.estimator.magnitude_knots import MagnitudeKnots
 from fieldvane.estimator.median import median
 from fieldvane.estimator.response import to_real
 from fieldvane.estimator.samples import Sample, SampleBlock, channel_probe
 from fieldvane.estimator.sphere import angle_between, tangent_basis
 from fieldvane.estimator.tracker_model import StateLayout, TrackerModel
+from fieldvane.kernels import bind
 
 if TYPE_CHECKING:                                   # (importing it would load the fitting code at start-up)
     from fieldvane.estimator.calibration import Calibration
@@ -459,9 +459,12 @@ class Tracker:
         n = len(zr)
         b, per, flags = np.empty(n), np.empty((n, 2)), np.empty(n, np.int64)
         seg, seg_t, merr, zw = np.empty(n, np.int64), np.empty(n), np.empty(n), np.empty(zr.shape)
-        grid, values = self._model_error_arrays()
-        prepare_core.prepare_rows(f, zr, self._gammas_array, self._prepare_limits, self._sigma, self.model.starts,
-                                  grid, values, b, per, flags, seg_t, seg, merr, zw)
+        prepare_rows = self.__dict__.get("_bound_prepare")
+        if prepare_rows is None:      # the tracker's constants, checked once
+            prepare_rows = self._bound_prepare = bind(prepare_core.prepare_rows, self._gammas_array,
+                                                      self._prepare_limits, self._sigma, self.model.starts,
+                                                      *self._model_error_arrays())
+        prepare_rows(f, zr, b, per, flags, seg_t, seg, merr, zw)
         restart = np.zeros(n, np.int64) if restarted is None else np.ascontiguousarray(restarted, np.int64)
         return PreparedInput(t, zw, b, per, flags, seg, seg_t, restart, merr, z)
 
@@ -551,22 +554,17 @@ class Tracker:
             if knots is None:
                 return b, per, np.full(n, np.nan), flags
             knots.advance(n, f_hz, u, sigma_deg)
-        per_c, fused, sigma_b, sigma_diff = knots.corrected(lo, f_hz, u, sigma_deg)
-        good = np.isfinite(fused)
-        b = np.where(good, fused, b)
-        per = np.where(np.isfinite(per_c), per_c, per)
-        disagree = disagreement(per_c, sigma_diff, self.settings.magnitude_tolerance)
-        flags = np.where(good, (flags & ~_DISAGREE) | np.where(disagree, _DISAGREE, 0), flags)
-        return b, per, np.where(good, sigma_b, np.nan), flags
+        return knots.apply(lo, f_hz, u, sigma_deg, b, per, flags, self.settings.magnitude_tolerance)
 
     def _run_prepared(self, inp: PreparedInput, fout: np.ndarray, iout: np.ndarray, sample_at) -> None:
         """Run the core over prepared samples, asking the initiator whenever the core stops for a (re)start."""
-        a = self._arrays
-        args = a.kernel_args()
+        run_filter = self.__dict__.get("_bound_filter")
+        if run_filter is None:        # the filter's own arrays, checked once (the live path calls this per batch)
+            run_filter = self._bound_filter = bind(core.run_filter, *self._arrays.kernel_args())
         i, n = 0, len(inp.t)
         pending, answer = 0, (False, _NO_U, _NO_U, _NO_COV)
         while True:
-            i = core.run_filter(*args, inp.t, inp.zw, inp.segment, inp.seg_t, inp.flags, inp.restarted,
+            i = run_filter(inp.t, inp.zw, inp.segment, inp.seg_t, inp.flags, inp.restarted,
                                 inp.model_error, self._sigma_log, fout, iout, i, n, pending, *answer,
                                 self._init_var)
             if i >= n:

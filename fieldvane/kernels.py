@@ -18,6 +18,7 @@ declared one), so each entry point is wrapped in a check of dtype, dimensions an
 
 from __future__ import annotations
 
+import functools
 import hashlib
 import importlib.util
 import os
@@ -107,30 +108,56 @@ def _array_specs(signature: str) -> list[tuple[int, str, int]]:
     return specs
 
 
+def _check_arrays(name: str, args: tuple, specs, ndarray, offset: int = 0) -> None:
+    """Raise TypeError unless each args[pos - offset] of specs (pos, dtype, ndim) is such a C-contiguous array."""
+    for pos, dtype, ndim in specs:
+        a = args[pos - offset]
+        if not isinstance(a, ndarray):
+            raise TypeError(f"{name} argument {pos}: expected a C-contiguous {ndim}-D {dtype} array, got "
+                            f"{type(a).__name__}")
+        if a.dtype != dtype or a.ndim != ndim or not a.flags.c_contiguous:
+            raise TypeError(f"{name} argument {pos}: expected a C-contiguous {ndim}-D {dtype} array, got "
+                            f"{a.ndim}-D {a.dtype} (C-contiguous: {a.flags.c_contiguous})")
+
+
 def _checked(function, name: str, signature: str):
     """Wrap an ahead-of-time function so that arrays of another dtype, rank or layout raise TypeError."""
     import numpy as np
     specs = [(pos, np.dtype(dtype), ndim) for pos, dtype, ndim in _array_specs(signature)]
-
     n_args = len(_split_arguments(signature))
     ndarray = np.ndarray
 
     def call(*args):
         if len(args) != n_args:
             raise TypeError(f"{name} takes {n_args} positional arguments, got {len(args)}")
-        for pos, dtype, ndim in specs:
-            a = args[pos]
-            if not isinstance(a, ndarray):
-                raise TypeError(f"{name} argument {pos}: expected a C-contiguous {ndim}-D {dtype} array, got "
-                                f"{type(a).__name__}")
-            if a.dtype != dtype or a.ndim != ndim or not a.flags.c_contiguous:
-                raise TypeError(f"{name} argument {pos}: expected a C-contiguous {ndim}-D {dtype} array, got "
-                                f"{a.ndim}-D {a.dtype} (C-contiguous: {a.flags.c_contiguous})")
+        _check_arrays(name, args, specs, ndarray)
         return function(*args)
+
+    def bind(*leading):
+        # The leading arguments are the caller's own arrays, never reshaped or retyped: checked once, here.
+        k = len(leading)
+        _check_arrays(name, leading, [s for s in specs if s[0] < k], ndarray)
+        rest = [s for s in specs if s[0] >= k]
+
+        def bound(*args):
+            if len(args) != n_args - k:
+                raise TypeError(f"{name} with {k} bound arguments takes {n_args - k} more, got {len(args)}")
+            _check_arrays(name, args, rest, ndarray, k)
+            return function(*leading, *args)
+        return bound
 
     call.__name__ = call.__qualname__ = name
     call.__doc__ = getattr(function, "__doc__", None)
+    call.bind = bind
     return call
+
+
+def bind(function, *leading):
+    """Return an entry point with its leading arguments fixed (checked once, not at every call: the live path)."""
+    binder = getattr(function, "bind", None)
+    if binder is not None:
+        return binder(*leading)
+    return functools.partial(function, *leading)
 
 
 def entry(signature: str, **options):

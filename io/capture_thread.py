@@ -12,6 +12,10 @@ from fieldvane.io.capture import EVENT_LINK_OPEN, EVENT_LOST, CaptureWriter, Chu
 
 DEFAULT_CAPTURE_BUFFER_BYTES = 64 * 1024 * 1024
 MAX_BATCH_BYTES = 256 * 1024          # bytes handed to the writer at once (what a forced stop may leave in flight)
+# The writer wakes when this much is buffered or after WRITE_INTERVAL_S, not at every chunk: at 10 kHz a wake-up per
+# frame took the interpreter from the live loop thousands of times a second; the bytes are as safe in this buffer.
+WAKE_BYTES = 64 * 1024
+WRITE_INTERVAL_S = 0.05
 
 
 class CaptureThread:
@@ -69,7 +73,8 @@ class CaptureThread:
                 self._overflow_pending = 0
             self._items.append(chunk)
             self._bytes += n
-            self._cond.notify()
+            if self._bytes >= WAKE_BYTES:
+                self._cond.notify()
             return True
 
     def mark_link_open(self, host_time_ns: int) -> None:
@@ -151,8 +156,10 @@ class CaptureThread:
 
     def _take(self) -> list[Chunk] | None:
         with self._cond:
-            while not self._items and not self._stop:
-                self._cond.wait()
+            waited = False
+            while not self._stop and self._bytes < WAKE_BYTES and not (waited and self._items):
+                self._cond.wait(WRITE_INTERVAL_S)
+                waited = True
             if not self._items:
                 return None
             batch, size = [], 0

@@ -180,6 +180,7 @@ class LiveLoop:
         self._clock = clock
         self._stop = threading.Event()
         self._progress = threading.Condition()
+        self._waiting = 0                        # threads in wait_for
         self._leftover: list[Sample] = []
         self._leftover_ns: list[int] = []
         self._deadline: float | None = None     # set while draining at shutdown
@@ -227,8 +228,18 @@ class LiveLoop:
     def wait_for(self, predicate: Callable[["LiveLoop"], bool], timeout: float) -> bool:
         """Return True once predicate(loop) holds after some chunk was processed (else on timeout)."""
         with self._progress:
-            return self._progress.wait_for(lambda: predicate(self) or self.finished.is_set(),
-                                           timeout) and predicate(self)
+            self._waiting += 1
+            try:
+                return self._progress.wait_for(lambda: predicate(self) or self.finished.is_set(),
+                                               timeout) and predicate(self)
+            finally:
+                self._waiting -= 1
+
+    def _notify_progress(self) -> None:
+        """Wake the threads in wait_for (none: nothing to do, the live path's usual case)."""
+        if self._waiting:
+            with self._progress:
+                self._progress.notify_all()
 
     # -- the loop
 
@@ -257,8 +268,7 @@ class LiveLoop:
                 if now >= next_check:
                     self._check_health(now)
                     next_check = now + 0.1
-                    with self._progress:
-                        self._progress.notify_all()
+                    self._notify_progress()
                 if self.status is not None:
                     if now >= next_status:
                         self.status(self)
@@ -285,8 +295,7 @@ class LiveLoop:
             self.bytes += len(chunk.data)
         samples = feed_chunk(self.decoder, chunk)
         self._estimate_all(samples, [chunk.host_time_ns] * len(samples))
-        with self._progress:
-            self._progress.notify_all()
+        self._notify_progress()
 
     def _process_many(self, chunks) -> None:
         samples: list[Sample] = []
@@ -299,8 +308,7 @@ class LiveLoop:
             samples.extend(got)
             host_ns.extend([chunk.host_time_ns] * len(got))
         self._estimate_all(samples, host_ns)
-        with self._progress:
-            self._progress.notify_all()
+        self._notify_progress()
 
     def _must_pause(self) -> bool:
         if self._deadline is None:
@@ -466,8 +474,7 @@ class LiveLoop:
             self.log(f"fieldvane live: logger {name} FAILED ({sink.last_error}): {sink.write_errors} "
                      "lines not written")
         self.finished.set()
-        with self._progress:
-            self._progress.notify_all()
+        self._notify_progress()
         return summary
 
     def _drain(self) -> None:

@@ -49,7 +49,18 @@ MAGNITUDE_CASE = textwrap.dedent("""
         f = (b[:, None] + shift + rng.normal(0, 0.01, (600, 2))) * gammas
         model = fit_magnitude_model(u, b, f, gammas)
         est = model.estimate(f[::7], u[::7], np.full(len(f[::7]), 0.01))
-        return np.column_stack([est.b_nT, est.sigma_b_nT, est.sigma_difference_nT])
+        out = [est.b_nT, est.sigma_b_nT, est.sigma_difference_nT]
+        # The tracker's rows corrected in place: a live batch (each sample evaluated: correct_rows) and a block
+        # interpolated between knots (apply_corrections).
+        from fieldvane.estimator.magnitude_knots import MagnitudeKnots
+        per = f[:100] / gammas
+        for n in (20, 100):
+            knots = MagnitudeKnots(model, gammas, n)
+            knots.advance(n, f[:n], u[:n], np.full(n, 0.5))
+            b, p, sigma_b, flags = knots.apply(0, f[:n], u[:n], np.full(n, 0.5), per[:n].mean(axis=1), per[:n],
+                                               np.zeros(n, np.int64), 1e-3)
+            out += [b, p[:, 0], p[:, 1], sigma_b, flags.astype(float)]
+        return np.concatenate(out)
 """)
 
 # Runs in a fresh process with FIELDVANE_JIT=1: the golden stream through the tracker, |B| through the
@@ -135,6 +146,7 @@ def test_jit_and_this_process_correct_magnitudes_alike(jit_run):
     here = namespace["magnitude_case"]()
     assert np.all(np.isfinite(here))
     assert np.allclose(here, jit_run["magnitude"], rtol=1e-12, atol=0)
+    assert here.shape == jit_run["magnitude"].shape
 
 
 def test_jit_and_this_process_format_the_same_text(jit_run, this_process_run):
@@ -180,6 +192,25 @@ def test_compiled_entry_points_refuse_arrays_they_would_misread():
         float_text._format_rows(5, [[0, 1, 2, 3, 4]], ints, kinds, src, buf)
     with pytest.raises(TypeError, match="takes 6 positional arguments"):
         float_text._format_rows(5, np.ascontiguousarray(fbits[:, 0].reshape(1, 5)), ints, kinds, src)
+
+
+def test_bound_entry_points_check_their_fixed_arrays_once_and_the_rest_at_every_call():
+    from fieldvane.io import float_text
+
+    fbits = np.arange(10.0).view(np.uint64).reshape(5, 2)
+    rows = np.ascontiguousarray(fbits[:, 0].reshape(1, 5))
+    ints, kinds, src = np.zeros((0, 5), np.int64), np.zeros(1, np.int64), np.zeros(1, np.int64)
+    bound = kernels.bind(float_text._format_rows, 5, rows, ints, kinds)
+    buf, ref = np.zeros(200, np.uint8), np.zeros(200, np.uint8)
+    assert bound(src, buf) == float_text._format_rows(5, rows, ints, kinds, src, ref) > 0
+    assert np.array_equal(buf, ref)
+    if kernels.compiled_module() is not None:         # the JIT checks types itself (numba's dispatcher)
+        with pytest.raises(TypeError, match="argument 5: .*C-contiguous"):
+            bound(src, np.zeros(400, np.uint8)[::2])          # a per-call array: checked at the call
+        with pytest.raises(TypeError, match="argument 1: .*uint64"):
+            kernels.bind(float_text._format_rows, 5, np.zeros((1, 5)))     # a fixed one: checked when bound
+        with pytest.raises(TypeError, match="2 more, got 1"):
+            bound(src)
 
 
 def test_signature_parser_reads_each_array_argument():

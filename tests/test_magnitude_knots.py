@@ -1,5 +1,6 @@
 """Estimates handed out piece by piece (Tracker.run_pieces, what replay writes while the filter goes on) equal the
-whole block's (run_arrays) bit for bit, also where the magnitude model's knots are not finite."""
+whole block's (run_arrays) bit for bit, also where the magnitude model's knots are not finite; the compiled rule
+that corrects the rows equals its numpy statement."""
 
 import dataclasses
 from pathlib import Path
@@ -8,6 +9,8 @@ import numpy as np
 import pytest
 
 from fieldvane.estimator.filter_settings import FilterSettings
+from fieldvane.estimator.flags import EstimateFlag
+from fieldvane.estimator.magnitude import DISAGREE_SIGMAS, disagreement
 from fieldvane.estimator.magnitude_knots import MAGNITUDE_STRIDE, MagnitudeKnots
 from fieldvane.estimator.magnitude_model import fit_magnitude_model
 from fieldvane.estimator.snapshot import SnapshotSolver
@@ -122,3 +125,67 @@ def test_an_empty_block_gives_an_empty_record(stream):
     empty = dataclasses.replace(block, t=block.t[:0], f=block.f[:0], z=block.z[:0])
     rec = Tracker(cal, FilterSettings(), SnapshotSolver.from_calibration(cal).initiate).run_arrays(empty)
     assert len(rec) == 0 and rec.u.shape == (0, 3) and rec.b_nT.shape == (0,)
+
+
+_DISAGREE = int(EstimateFlag.MAGNITUDE_DISAGREE)
+
+
+def _numpy_rule(per_c, fused, sigma_b, sigma_diff, b, per, flags, tolerance):
+    """The tracker's rows from the model's corrected values, as numpy statements (the rule before it was compiled):
+    the model's |B| where it gives one, each isotope's where finite, MAGNITUDE_DISAGREE by estimator/magnitude.py."""
+    good = np.isfinite(fused)
+    disagree = disagreement(per_c, sigma_diff, tolerance)
+    return (np.where(good, fused, b), np.where(np.isfinite(per_c), per_c, per), np.where(good, sigma_b, np.nan),
+            np.where(good, (flags & ~_DISAGREE) | np.where(disagree, _DISAGREE, 0), flags))
+
+
+@pytest.mark.parametrize("tolerance", [1e-3, 1e-6, 0.0])
+def test_compiled_row_rule_equals_the_numpy_rule(tolerance):
+    from fieldvane.estimator import magnitude_core
+
+    rng = np.random.default_rng(11)
+    n = 4000
+    per_c = 20000.0 + rng.normal(0, 1.0, (n, 2)) * rng.choice([1e-3, 1.0, 100.0], (n, 2))
+    fused = per_c.mean(axis=1) + rng.normal(0, 0.1, n)
+    sigma_b = rng.uniform(0, 1, n)
+    sigma_diff = rng.choice([0.0, 1e-3, 0.05, 1.0, 30.0], n)
+    # Missing values everywhere they can be missing, and the extremes: a zero, an overflowing sum.
+    for a, share in ((per_c, 0.1), (fused, 0.1), (sigma_b, 0.05), (sigma_diff, 0.2)):
+        a[rng.random(a.shape) < share] = np.nan
+    per_c[:5] = [[1.7e308, 1.7e308], [-0.0, 0.0], [np.inf, 1.0], [0.0, 5.0], [-1.0, 1.0]]
+    sigma_diff[:5] = [1.0, np.nan, 1.0, np.inf, 0.0]
+    b = rng.normal(20000.0, 1.0, n)
+    per = rng.normal(20000.0, 1.0, (n, 2))
+    flags = rng.integers(0, 64, n)
+    got_b, got_per, got_flags, got_sigma = b.copy(), per.copy(), flags.copy(), np.empty(n)
+    with np.errstate(all="ignore"):               # the overflowing and 0 * inf rows are meant
+        want = _numpy_rule(per_c, fused, sigma_b, sigma_diff, b, per, flags, tolerance)
+        magnitude_core.apply_corrections(per_c, fused, sigma_b, sigma_diff, tolerance, DISAGREE_SIGMAS, _DISAGREE,
+                                         got_b, got_per, got_flags, got_sigma)
+    for x, y in zip((got_b, got_per, got_sigma, got_flags), want):
+        np.testing.assert_array_equal(x, y)
+    assert 0 < np.count_nonzero(got_flags & _DISAGREE) < n      # both outcomes occur
+
+
+def test_a_live_batch_is_corrected_as_the_model_and_the_numpy_rule_give(stream):
+    # A live batch (every sample evaluated, one compiled call) against the model's own estimate and the numpy rule.
+    cal, block = stream
+    rec = Tracker(cal, FilterSettings(), SnapshotSolver.from_calibration(cal).initiate).run_arrays(block, 1 << 20)
+    model = cal.magnitude_model
+    gammas = cal.gammas_hz_per_nt
+    for lo in (0, 690, 1190, 2010, 2700):
+        sl = slice(lo, lo + 64)
+        f, u, sigma = block.f[sl], rec.u[sl], rec.sigma_deg[sl]
+        with np.errstate(invalid="ignore"):
+            per = f / gammas
+        b = per.mean(axis=1)
+        flags = rec.flags[sl] | np.where(np.arange(64) % 3 == 0, _DISAGREE, 0)
+        knots = MagnitudeKnots(model, gammas, 64)
+        assert knots.dense
+        knots.advance(64, f, u, sigma)
+        got = knots.apply(0, f, u, sigma, b, per, flags, 1e-3)
+        est = model.estimate(f, u, np.radians(sigma))
+        want = _numpy_rule(est.b_per_isotope, est.b_nT, est.sigma_b_nT, est.sigma_difference_nT, b, per, flags,
+                           1e-3)
+        for x, y in zip(got, want):
+            np.testing.assert_array_equal(x, y)

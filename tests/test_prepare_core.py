@@ -82,7 +82,7 @@ def test_prepare_rows_equals_the_numpy_formulation(seed, with_table):
     values = np.abs(np.sin(grid)) * 3 if with_table else np.zeros(0)
     out = (np.empty(n), np.empty((n, 2)), np.empty(n, np.int64), np.empty(n), np.empty(n, np.int64), np.empty(n),
            np.empty((n, m)))
-    assert prepare_core.prepare_rows(f, zr, GAMMAS, limits, sigma, starts, grid, values, *out) == n
+    assert prepare_core.prepare_rows(GAMMAS, limits, sigma, starts, grid, values, f, zr, *out) == n
     ref = reference(f, zr, limits, sigma, starts, grid, values)
     names = ("b", "per", "flags", "seg_t", "segment", "merr", "zw")
     for name, got, want in zip(names, out, ref):
@@ -111,7 +111,7 @@ def test_low_signal_at_its_exact_threshold_decides_as_numpy():
     sigma, starts, empty = np.ones(8), np.log(np.array([800.0, 30_000.0])), np.zeros(0)
     out = (np.empty(1), np.empty((1, 2)), np.empty(1, np.int64), np.empty(1), np.empty(1, np.int64), np.empty(1),
            np.empty((1, 8)))
-    prepare_core.prepare_rows(f, zr, GAMMAS, limits, sigma, starts, empty, empty, *out)
+    prepare_core.prepare_rows(GAMMAS, limits, sigma, starts, empty, empty, f, zr, *out)
     want = reference(f, zr, limits, sigma, starts, empty, empty)[2]
     assert out[2][0] == want[0]
     assert want[0] & int(F.LOW_SIGNAL)          # the numpy order puts this row below the level
