@@ -72,6 +72,48 @@ def _as_column(values) -> np.ndarray | None:
     return None                    # mixed ints and floats, None, text: the per-record path
 
 
+def _block_columns(names: Sequence[str], columns: Mapping[str, Sequence]):
+    """Return (arrays in `names` order, None where absent; utc position or None; utc (N,) POSIX s; the formatter) for
+    the compiled block formatter, or None when a column holds values only the per-record path writes (mixed, None, text)."""
+    arrays = [None if name not in columns else _as_column(columns[name]) for name in names]
+    if any(a is None and name in columns for a, name in zip(arrays, names)):
+        return None
+    try:
+        from fieldvane.io.float_text import format_rows
+    except ImportError:                 # no compiler: the per-record path
+        return None
+    utc_at = names.index("utc") if "utc" in names and "utc" in columns else None
+    if utc_at is not None and arrays[utc_at].dtype.kind != "f":
+        utc_at = None
+    utc = None
+    if utc_at is not None:              # `utc` is ISO 8601 text, as the CSV sink renders it
+        utc, arrays[utc_at] = arrays[utc_at], None
+    return arrays, utc_at, utc, format_rows
+
+
+def _block_text(block, lo: int, hi: int, out: np.ndarray | None = None) -> bytes | memoryview:
+    """Return rows lo..hi-1 of a _block_columns block as CSV lines, formatted in one compiled pass."""
+    arrays, utc_at, utc, format_rows = block
+    text = format_rows([None if a is None else a[lo:hi] for a in arrays], out=out)
+    if utc_at is None:
+        return text
+    from fieldvane.io.utc_text import insert_field, iso_texts
+    return insert_field(text, utc_at, iso_texts(utc[lo:hi]))
+
+
+def records_text(names: Sequence[str], records: Sequence[Mapping]) -> str | None:
+    """Return the CSV lines of records (dicts with the same keys) in columns `names`, the bytes CsvFormatter.format
+    writes for each, formatted in one compiled pass (the CSV logger's batches); None when they need that per-record
+    path (different keys, values of mixed types, None, text)."""
+    keys = records[0].keys()
+    if any(r.keys() != keys for r in records):
+        return None
+    block = _block_columns(names, {k: [r[k] for r in records] for k in names if k in keys})
+    if block is None:
+        return None
+    return bytes(_block_text(block, 0, len(records))).decode("ascii")
+
+
 class EstimatesWriter:
     """Writes estimates to a CSV file synchronously (never drops); the same bytes as the CSV sink.
 
@@ -141,27 +183,15 @@ class EstimatesWriter:
         n = lengths.pop() if lengths else 0
         if n == 0:
             return
-        arrays = [None if name not in columns else _as_column(columns[name]) for name in names]
-        if any(a is None and name in columns for a, name in zip(arrays, names)):
-            self._write_records(columns, n)
-            return
-        try:
-            from fieldvane.io.float_text import MAX_FIELD_CHARS, format_rows
-        except ImportError:                 # no compiler: the sink's own per-record path
+        block = _block_columns(names, columns)
+        if block is None:
             self._write_records(columns, n)
             return
         if self._buffer is None:
+            from fieldvane.io.float_text import MAX_FIELD_CHARS
             self._buffer = np.empty(WRITE_BLOCK_ROWS * len(names) * (MAX_FIELD_CHARS + 1), np.uint8)
-        utc_at = names.index("utc") if "utc" in names and "utc" in columns else None
-        if utc_at is not None and arrays[utc_at].dtype.kind != "f":
-            utc_at = None
-        if utc_at is not None:              # `utc` is ISO 8601 text, as the CSV sink renders it
-            from fieldvane.io.utc_text import insert_field, iso_texts
-            utc, arrays[utc_at] = arrays[utc_at], None
         for lo in range(0, n, WRITE_BLOCK_ROWS):
-            hi = min(lo + WRITE_BLOCK_ROWS, n)
-            text = format_rows([None if a is None else a[lo:hi] for a in arrays], out=self._buffer)
-            self._put(text if utc_at is None else insert_field(text, utc_at, iso_texts(utc[lo:hi])))
+            self._put(_block_text(block, lo, min(lo + WRITE_BLOCK_ROWS, n), self._buffer))
         self.rows += n
 
     def _write_records(self, columns: Mapping[str, Sequence], n: int) -> None:

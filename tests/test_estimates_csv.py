@@ -12,7 +12,8 @@ from hypothesis import strategies as st
 from fieldvane.estimator.estimate import ESTIMATE_COLUMNS, Estimate
 from fieldvane.io.errors import InputError, JobError
 from fieldvane.estimator.tracker import TrackRecord
-from fieldvane.io.estimates_csv import EstimatesWriter, estimate_columns, read_estimates, record_rows
+from fieldvane.io.estimates_csv import (EstimatesWriter, estimate_columns, read_estimates, record_rows,
+                                        records_text)
 from fieldvane.io.float_text import float_texts, format_rows
 from fieldvane.io.sinks import make_formatter
 
@@ -154,6 +155,28 @@ def test_unusual_values_take_the_record_path_and_still_match(tmp_path):
     with EstimatesWriter(p) as w:
         w.write_columns(cols)
     assert p.read_text() == _sink_text(cols)
+
+
+def test_csv_logger_batches_are_the_bytes_of_its_single_records():
+    # The CSV logger formats each gathered batch in one compiled pass (format_many); the reference is its own
+    # per-record format, i.e. repr() of each float (io/sinks.py _csv_field).
+    cols = _random_columns(300, seed=13)
+    cols["utc"] = 1.7e9 + np.arange(300) * 1e-3                           # ISO 8601 text in the CSV
+    cols["ok"] = np.arange(300) % 2 == 0
+    records = [{k: (v[i].item() if isinstance(v, np.ndarray) else v[i]) for k, v in cols.items()} for i in range(300)]
+    fmt = make_formatter("csv", None)
+    fmt.bind(records[0])
+    for lo, hi in ((0, 1), (1, 40), (40, 300)):
+        assert fmt.format_many(records[lo:hi]) == [fmt.format(r) for r in records[lo:hi]]
+    odd = [dict(r) for r in records[:40]]
+    odd[3]["nis"] = None                                                    # a gap: the per-record path
+    odd[5]["b_a_nT"] = 7                                                    # an int among floats
+    del odd[8]["phase_1a"]                                                  # another set of keys
+    odd[9]["label"] = "a,b"
+    assert fmt.format_many(odd) == [fmt.format(r) for r in odd]
+    names = ESTIMATE_COLUMNS + fmt.extras
+    assert records_text(names, records) is not None and records_text(names, odd) is None   # which path ran
+    assert ",1,-48.4" in fmt.format(records[0]) and fmt.format(records[0]).endswith("Z\n")     # bool 1, utc text
 
 
 def test_explicit_extras_absent_columns_are_empty(tmp_path):
