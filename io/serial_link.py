@@ -6,6 +6,7 @@ arrived before the open is thrown away."""
 
 from __future__ import annotations
 
+import os
 import queue
 import select
 import threading
@@ -130,6 +131,7 @@ class SerialLink:
         self._state = threading.Condition()
         self._waiting = 0               # threads in wait_for (only they need a notification per read)
         self._port = None
+        self._direct = False            # read the port's descriptor with os.read (a posix serial port)
         self._thread: threading.Thread | None = None
         self.opens = 0
         self.open_failures = 0
@@ -156,6 +158,9 @@ class SerialLink:
         if isinstance(fd, int) and fd >= 0:
             if port.timeout != 0:
                 port.timeout = 0
+            # A plain posix serial port or pty: read its descriptor directly (pyserial's read() adds a second
+            # select and a Python loop per chunk, time the link's thread held the interpreter from the estimator).
+            self._direct = type(port).__module__ == "serial.serialposix" and type(port).__name__ == "Serial"
             return fd
         if port.timeout is None or port.timeout == 0:
             port.timeout = self.read_timeout
@@ -167,7 +172,17 @@ class SerialLink:
             # Wait for readability ourselves, then take everything there in one read: a
             # socket:// port's in_waiting only says "at least one byte".
             ready, _, _ = select.select([fd], [], [], self.read_timeout)
-            return port.read(self.chunk_size) if ready else b""
+            if not ready:
+                return b""
+            if not self._direct:
+                return port.read(self.chunk_size)
+            try:
+                data = os.read(fd, self.chunk_size)
+            except BlockingIOError:
+                return b""
+            if not data:            # as pyserial says it: readable but empty is a vanished device
+                raise OSError("device reports readiness to read but returned no data (device disconnected?)")
+            return data
         data = port.read(1)
         if data:
             waiting = port.in_waiting
