@@ -332,8 +332,8 @@ _ROWS = "f8, f8, i8, f8[::1], f8[:, ::1], i8[::1], f8[::1]"
 @helper(cache=True, nogil=True, inline="always", error_model="numpy")
 def _apply_row(r, pa, pb, fused, sigma_b, sigma_diff, tolerance, n_sigma, bit, b, per, flags, sigma_b_out):
     """Row r of the tracker's outputs from the corrected isotopes pa, pb, fused |B|, sigma_b and the sigma of their
-    difference (nT): estimator/magnitude.py's `disagreement` rule on them, as Tracker._magnitude states it with numpy
-    (np.where over the rows; tests/test_magnitude_knots.py compares the two bit for bit)."""
+    difference (nT): estimator/magnitude.py's `disagreement` rule on them (tests/test_magnitude_knots.py compares this
+    with the rule stated in numpy, bit for bit)."""
     good = math.isfinite(fused)
     if good:
         b[r] = fused

@@ -33,6 +33,7 @@ class CaptureThread:
             raise ValueError("max_buffered_bytes must be positive")
         self.writer = writer
         self.max_buffered_bytes = int(max_buffered_bytes)
+        self._wake_bytes = min(WAKE_BYTES, max(1, self.max_buffered_bytes // 2))
         self._items: collections.deque[Chunk] = collections.deque()
         self._bytes = 0
         self._overflow_pending = 0          # refused bytes not yet marked in the stream
@@ -73,7 +74,7 @@ class CaptureThread:
                 self._overflow_pending = 0
             self._items.append(chunk)
             self._bytes += n
-            if self._bytes >= WAKE_BYTES:
+            if self._bytes >= self._wake_bytes:
                 self._cond.notify()
             return True
 
@@ -157,7 +158,7 @@ class CaptureThread:
     def _take(self) -> list[Chunk] | None:
         with self._cond:
             waited = False
-            while not self._stop and self._bytes < WAKE_BYTES and not (waited and self._items):
+            while not self._stop and self._bytes < self._wake_bytes and not (waited and self._items):
                 self._cond.wait(WRITE_INTERVAL_S)
                 waited = True
             if not self._items:

@@ -84,7 +84,7 @@ def _block_columns(names: Sequence[str], columns: Mapping[str, Sequence]):
         return None
     utc_at = names.index("utc") if "utc" in names and "utc" in columns else None
     if utc_at is not None and arrays[utc_at].dtype.kind != "f":
-        utc_at = None
+        return None                     # `utc` as ints or flags: the sink's own rendering
     utc = None
     if utc_at is not None:              # `utc` is ISO 8601 text, as the CSV sink renders it
         utc, arrays[utc_at] = arrays[utc_at], None

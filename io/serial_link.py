@@ -65,7 +65,7 @@ class ChunkQueue:
         return chunks
 
     def clear(self) -> tuple[int, int]:
-        """Empty the queue; return (chunks, bytes) that were waiting."""
+        """Empty the queue; return (chunks, bytes) that were waiting (from the consumer's thread, as get)."""
         with self._lock:
             chunks = 0
             while True:

@@ -208,7 +208,7 @@ class CsvFormatter(_Formatter):
             # Plain floats and ints, most fields of every record, straight to text (what _csv_field gives them).
             if tp is float and c != "utc":
                 fields.append(repr(v))
-            elif tp is int:
+            elif tp is int and c != "utc":
                 fields.append(str(v))
             else:
                 fields.append(_csv_field(_render(c, v)))
@@ -700,7 +700,7 @@ class Sink:
             if self._closing:
                 self.dropped += 1
                 return False
-            if self.accepted - self._taken >= self.queue_size:
+            if 0 < self.queue_size <= self.accepted - self._taken:      # (0 or less: unbounded, as queue.Queue)
                 return None
             self._q.put(dict(record))
             self.accepted += 1
@@ -732,7 +732,7 @@ class Sink:
                     self.dropped += 1
                 return False
             with self._cond:              # the writer notifies after each batch
-                self._cond.wait_for(lambda: self.accepted - self._taken < self.queue_size
+                self._cond.wait_for(lambda: not 0 < self.queue_size <= self.accepted - self._taken
                                     or not self._thread.is_alive(), min(left, self.poll_s))
 
     def flush(self, timeout: float = 5.0) -> bool:
@@ -792,8 +792,8 @@ class Sink:
                     if self._stop.is_set():
                         break
                     continue
-                if self.gather_s > 0 and not self._stop.is_set():
-                    time.sleep(self.gather_s)        # one wake-up per gathered batch, not per record
+                if self.gather_s > 0 and not self._stop.is_set() and self.accepted - self._taken < self.max_batch:
+                    time.sleep(self.gather_s)        # one wake-up per gathered batch, not per record (no wait for a backlog)
                 batch = [first]
                 while len(batch) < self.max_batch:
                     try:

@@ -176,6 +176,9 @@ def test_csv_logger_batches_are_the_bytes_of_its_single_records():
     assert fmt.format_many(odd) == [fmt.format(r) for r in odd]
     names = ESTIMATE_COLUMNS + fmt.extras
     assert records_text(names, records) is not None and records_text(names, odd) is None   # which path ran
+    whole = [dict(r, utc=1_700_000_000 + i) for i, r in enumerate(records[:40])]            # `utc` in whole seconds
+    assert fmt.format_many(whole) == [fmt.format(r) for r in whole]
+    assert fmt.format(whole[0]).endswith(",2023-11-14T22:13:20.000000Z\n")    # 1.7e9 s after 1970, as date(1) says
     assert ",1,-48.4" in fmt.format(records[0]) and fmt.format(records[0]).endswith("Z\n")     # bool 1, utc text
 
 

@@ -257,6 +257,17 @@ class BlockingTransport(Transport):
         return len(lines)
 
 
+def test_a_queue_size_of_zero_is_unbounded_as_queue_queue():
+    t = BlockingTransport()
+    sink = Sink(JsonlFormatter(), t, queue_size=0, max_batch=8)
+    assert sink.emit(record(0))
+    assert t.entered.wait(TIMEOUT)        # the writer is stuck: everything else waits in the queue
+    assert all(sink.emit(record(i)) for i in range(1, 500))
+    assert sink.counters()["dropped"] == 0
+    t.release.set()
+    assert sink.close(TIMEOUT) and sink.counters()["written"] == 500
+
+
 def test_blocked_writer_never_blocks_caller_and_counts_drops():
     t = BlockingTransport()
     sink = Sink(JsonlFormatter(), t, queue_size=32, max_batch=8)
