@@ -76,8 +76,6 @@ class MagnitudeKnots:
         their own |B| (f / gamma) corrected by the model where it gives one, MAGNITUDE_DISAGREE judged against the
         corrected isotopes' uncertainty (estimator/magnitude.py's rule), given f_hz (N, 2) Hz, u (N, 3) sensor frame
         and sigma_deg (N,) deg. New arrays; the arguments are left as they are."""
-        from fieldvane.estimator import magnitude_core as core     # compiled: loaded only where |B| is corrected
-
         b = np.array(b_nT, np.float64)
         per = np.array(per_nT, np.float64)
         flags = np.array(flags, np.int64)
@@ -87,17 +85,16 @@ class MagnitudeKnots:
                                        np.ascontiguousarray(sigma_deg, np.float64), tolerance, DISAGREE_SIGMAS,
                                        _DISAGREE, b, per, flags, sigma_b)
         else:
+            from fieldvane.estimator import magnitude_core as core     # compiled: loaded only where |B| is corrected
+
             per_c, fused, sb, sd = self.corrected(lo, f_hz, u, sigma_deg)
             core.apply_corrections(per_c, fused, sb, sd, tolerance, DISAGREE_SIGMAS, _DISAGREE, b, per, flags, sigma_b)
         return b, per, sigma_b, flags
 
     def corrected(self, lo: int, f_hz: np.ndarray, u: np.ndarray, sigma_deg: np.ndarray):
         """Return (per isotope (N, 2) nT, fused |B| (N,) nT, sigma_b (N,) nT, sigma of the isotopes' difference (N,)
-        nT) of the block's samples lo..lo+N-1, given their f_hz (N, 2) Hz, u (N, 3) and sigma_deg (N,); interpolated
-        between the knots (a dense block: each sample evaluated)."""
-        if self.dense:
-            est = self.model.estimate(f_hz, u, np.radians(sigma_deg))
-            return est.b_per_isotope, est.b_nT, est.sigma_b_nT, est.sigma_difference_nT
+        nT) of the block's samples lo..lo+N-1, given their f_hz (N, 2) Hz, u (N, 3) and sigma_deg (N,), interpolated
+        between the knots (a block with knots: apply() evaluates a dense one sample by sample)."""
         with np.errstate(invalid="ignore", divide="ignore"):
             m = f_hz / self.gammas[None, :]
         idx = np.arange(lo, lo + f_hz.shape[0])

@@ -564,9 +564,8 @@ class Tracker:
         i, n = 0, len(inp.t)
         pending, answer = 0, (False, _NO_U, _NO_U, _NO_COV)
         while True:
-            i = run_filter(inp.t, inp.zw, inp.segment, inp.seg_t, inp.flags, inp.restarted,
-                                inp.model_error, self._sigma_log, fout, iout, i, n, pending, *answer,
-                                self._init_var)
+            i = run_filter(inp.t, inp.zw, inp.segment, inp.seg_t, inp.flags, inp.restarted, inp.model_error,
+                           self._sigma_log, fout, iout, i, n, pending, *answer, self._init_var)
             if i >= n:
                 break
             pending, answer = 1, self._initiate(i, inp, iout, sample_at)

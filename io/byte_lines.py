@@ -1,8 +1,8 @@
 """A text file read in large binary blocks: lines decoded one at a time, or numeric lines parsed in bulk.
 
 Lines are those Python's text files give (open(..., encoding='utf-8-sig', errors='replace')): a
-leading BOM dropped, bad bytes as U+FFFD, and \\n, \\r\\n or a lone \\r each end a line. A recording's
-(or an estimates file's) header and comment lines are read with `readline`; its data lines with `parse`, which runs the
+leading BOM dropped, bad bytes as U+FFFD, and \\n, \\r\\n or a lone \\r each end a line. A recording's (or
+an estimates file's) header and comment lines are read with `readline`; its data lines with `parse`, which runs the
 compiled parser (io/csv_numbers.py) over the raw bytes and decodes a line to text only when asked
 (to report or re-parse it), so a clean file is never split into Python strings.
 """

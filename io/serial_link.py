@@ -57,12 +57,11 @@ class ChunkQueue:
             self._items.put(chunk)
             return True
 
-    def _taken(self, chunks: list[Chunk]) -> list[Chunk]:
-        n = sum(len(c.data) for c in chunks)
+    def _taken(self, n: int) -> None:
+        """Count n bytes as handed to the consumer."""
         if n:
             with self._lock:
                 self._bytes -= n
-        return chunks
 
     def clear(self) -> tuple[int, int]:
         """Empty the queue; return (chunks, bytes) that were waiting (from the consumer's thread, as get)."""
@@ -86,7 +85,8 @@ class ChunkQueue:
                 chunk = self._items.get(timeout=timeout)
         except queue.Empty:
             return None
-        return self._taken([chunk])[0]
+        self._taken(len(chunk.data))
+        return chunk
 
     def get_many(self, timeout: float | None = None, limit: int = 4096) -> list[Chunk]:
         """Return up to `limit` waiting chunks, oldest first, waiting up to timeout s for the first ([] if none)."""
@@ -100,7 +100,7 @@ class ChunkQueue:
                 out.append(get())
             except queue.Empty:
                 break
-        self._taken(out[1:])
+        self._taken(sum(len(c.data) for c in out[1:]))
         return out
 
     def __len__(self) -> int:

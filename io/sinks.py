@@ -188,6 +188,10 @@ class _Formatter:
         """Return one line (with line ending) for record."""
         raise NotImplementedError
 
+    def format_many(self, records: Sequence[Mapping]) -> list[str]:
+        """Return the lines of a batch of records, as format() gives each."""
+        return [self.format(r) for r in records]
+
 
 # EstimatesWriter.write_columns (io/estimates_csv.py, io/float_text.py) writes the same bytes in
 # compiled blocks: change both together (tests/test_estimates_csv.py compares them).
@@ -222,7 +226,7 @@ class CsvFormatter(_Formatter):
             text = records_text(ESTIMATE_COLUMNS + self.extras, records)
             if text is not None:
                 return text.splitlines(keepends=True)
-        return [self.format(r) for r in records]
+        return super().format_many(records)
 
 
 class JsonlFormatter(_Formatter):
@@ -804,13 +808,9 @@ class Sink:
                 if not self._header_done:
                     formatter.bind(batch[0])
                     self._write_header()
-                lines = None
-                if len(batch) > 1 and hasattr(formatter, "format_many"):
-                    try:
-                        lines = formatter.format_many(batch)
-                    except Exception:          # one odd record: the per-record path says which
-                        lines = None
-                if lines is None:
+                try:
+                    lines = formatter.format_many(batch)
+                except Exception:              # one odd record: record by record, to count and name it
                     lines = []
                     for rec in batch:
                         try:
