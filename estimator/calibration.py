@@ -94,6 +94,7 @@ class Calibration:
     magnitude_check: MagnitudeCheck | None = None
     fit_info: dict = field(default_factory=dict)  # physics-fit diagnostics (iterations, inflation, stds)
     magnitude_model: MagnitudeModel | None = None  # the loops' frequency errors: corrected |B| and its sigma
+    scan_lockin: tuple[float, int] | None = None   # the scan's lock-in filter: RC time constant (s), stages
 
     @property
     def gammas_hz_per_nt(self) -> np.ndarray:

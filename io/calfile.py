@@ -135,6 +135,8 @@ def calibration_document(cal: Calibration, tables_name: str, tables_sha: str, so
         doc["magnitude_check"] = _magnitude_check_doc(cal.magnitude_check)
     if getattr(cal, "magnitude_model", None) is not None:
         doc["magnitude_model"] = cal.magnitude_model.to_dict()
+    if getattr(cal, "scan_lockin", None) is not None:
+        doc["scan_lockin"] = {"time_constant_s": float(cal.scan_lockin[0]), "filter_order": int(cal.scan_lockin[1])}
     if sensor and sensor.get("mounting_rotation") is not None:
         doc["mounting_rotation"] = [_vec(r) for r in np.asarray(sensor["mounting_rotation"])]
     if sensor and sensor.get("name"):
@@ -427,6 +429,17 @@ def _build(rd: _Reader, path: Path, doc: dict, version: int) -> Calibration:
         except (TypeError, ValueError) as exc:
             key, _, message = str(exc).partition(": ")
             rd.fail(key if key.startswith("magnitude_model") else "magnitude_model", message or str(exc))
+    if "scan_lockin" in doc:
+        lk = doc["scan_lockin"]
+        if not isinstance(lk, dict):
+            rd.fail("scan_lockin", "must be a JSON object")
+        order = rd.get(lk, "filter_order", "scan_lockin")
+        if not isinstance(order, int) or isinstance(order, bool) or not 1 <= order <= 16:
+            rd.fail("scan_lockin.filter_order", f"must be a whole number of RC stages 1..16, got {json.dumps(order)}")
+        tau = rd.number(rd.get(lk, "time_constant_s", "scan_lockin"), "scan_lockin.time_constant_s")
+        if tau < 0:
+            rd.fail("scan_lockin.time_constant_s", f"must be >= 0 s (0: no lock-in filter), got {tau}")
+        cal.scan_lockin = (tau, order)
     return cal
 
 

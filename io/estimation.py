@@ -19,22 +19,50 @@ RATE_KEY = "sample_rate_hz"
 
 
 def settings_for_stream(settings: FilterSettings | None, metadata: Mapping[str, str] | None,
-                        source: str = "<recording>") -> FilterSettings:
-    """Return filter settings completed by a recording's `# key: value` metadata (the lock-in's filter).
+                        source: str = "<recording>", calibration=None) -> FilterSettings:
+    """Return filter settings completed by the stream's lock-in filter: a recording's `# key: value` metadata,
+    else the filter file's, else the calibration scan's (`calibrate` keeps it).
 
     The recording's own metadata describe how it was taken, so they win over a filter file's lock-in settings
-    (a file tuned on another recording); the file's settings serve streams without them (live runs).
+    (a file tuned on another recording); the file's settings serve streams without them (live runs, captures);
+    without either, the stream is taken to come through the lock-in the calibration scan came through (the same
+    electronics), not as independent samples: that assumption made a live lock-in stream's error 10x its replay's.
     """
     s = settings if settings is not None else FilterSettings()
     meta = metadata or {}
-    if LOCKIN_TAU_KEY in meta:
-        tau = _number(meta, LOCKIN_TAU_KEY, source)
-        order = int(_number(meta, LOCKIN_ORDER_KEY, source)) if LOCKIN_ORDER_KEY in meta else s.lockin_filter_order
+    stated = scan_lockin(meta, source)
+    if stated is None and s.lockin_time_constant_s == 0:
+        stated = getattr(calibration, "scan_lockin", None)
+    if stated is not None:
+        tau, order = stated
         try:
             s = s.replace(lockin_time_constant_s=tau, lockin_filter_order=order)
         except ValueError as exc:
             raise InputError(f"lock-in metadata out of range: {exc}", source, column=LOCKIN_TAU_KEY) from None
     return s
+
+
+def scan_lockin(metadata: Mapping[str, str] | None, source: str = "<recording>") -> tuple[float, int] | None:
+    """Return (RC time constant s, stages; 0 s: none) of the lock-in filter a recording's metadata state, or None."""
+    meta = metadata or {}
+    if LOCKIN_TAU_KEY not in meta:
+        return None
+    tau = _number(meta, LOCKIN_TAU_KEY, source)
+    order = int(_number(meta, LOCKIN_ORDER_KEY, source)) if LOCKIN_ORDER_KEY in meta else \
+        FilterSettings().lockin_filter_order
+    return tau, order
+
+
+def lockin_line(settings: FilterSettings, calibration, prefix: str) -> str:
+    """Return the start-up line saying which lock-in filter a live stream is taken to come through, and from where."""
+    tau, order = settings.lockin_time_constant_s, settings.lockin_filter_order
+    if tau <= 0:
+        return f"{prefix}: lock-in filter not known: samples taken as independent (a filter file's " \
+               "lockin_time_constant_s states it)"
+    scan = getattr(calibration, "scan_lockin", None)
+    where = "the calibration scan's" if scan is not None and tuple(scan) == (tau, order) else "the filter file's"
+    return f"{prefix}: lock-in filter {order} x {1e3 * tau:g} ms ({where}; a filter file's lockin_time_constant_s " \
+           "states another)"
 
 
 def sample_rate_from(metadata: Mapping[str, str] | None, source: str = "<recording>") -> float | None:

@@ -8,7 +8,8 @@ never holds up a stop: Ctrl-C or SIGTERM ends the run within about a second and 
 the estimator's backlog (that backlog is in the capture: a replay finishes the job); a second
 Ctrl-C abandons even the capture's last writes. `frames_from_capture` and `runs_from_capture`
 feed the captured bytes, in the same order and with the same link events, through the same
-decoder, so a replay reproduces the live samples (and estimates) exactly.
+decoder, so a replay reproduces the live samples exactly, and their estimates exactly or, through a lock-in
+filter, within rounding (the sample rate is learned from the timestamps as they arrive).
 """
 
 from __future__ import annotations

@@ -113,6 +113,8 @@ def _tampered_json(src, dst, change):
     ("direction-short", "key 'probes[1].direction': must be a list of 3 numbers"),
     ("nan-in-json", "numbers must be finite"),
     ("not-an-object", "not a fieldvane calibration"),
+    ("lockin-order", "key 'scan_lockin.filter_order': must be a whole number of RC stages 1..16, got 2.5"),
+    ("lockin-tau", "key 'scan_lockin.time_constant_s': must be >= 0 s"),
 ])
 def test_bad_calibration_json_is_one_line_naming_the_key(calibrated, tmp_path, case, needle):
     d, _ = calibrated
@@ -130,6 +132,8 @@ def test_bad_calibration_json_is_one_line_naming_the_key(calibrated, tmp_path, c
         "noise-negative": lambda doc: doc["channels"][2].update(noise_V=-1.0),
         "handedness": lambda doc: doc["channels"][0].update(handedness=0.5),
         "direction-short": lambda doc: doc["probes"][1].update(direction=[0, 1]),
+        "lockin-order": lambda doc: doc.update(scan_lockin={"time_constant_s": 0.005, "filter_order": 2.5}),
+        "lockin-tau": lambda doc: doc.update(scan_lockin={"time_constant_s": -0.005, "filter_order": 4}),
     }
     if case == "nan-in-json":
         dst.write_text(src.read_text().replace('"noise_V": ', '"noise_V": NaN, "x": ', 1))
@@ -296,3 +300,29 @@ def test_plots_are_written_or_their_absence_is_said(calibrated, tmp_path, capsys
     captured = capsys.readouterr()
     assert rc == 0 and "no calibration figures" in captured.err
     assert (tmp_path / "c2.json").exists() and not (tmp_path / "figs2").exists()
+
+
+def test_the_scan_lockin_filter_is_kept_and_taken_for_streams_that_do_not_state_one(calibrated, tmp_path):
+    # A wire stream (a live run, a capture) says nothing about the lock-in; the calibration scan's filter is the
+    # one to assume (the same electronics). A recording's own metadata and a filter file still win.
+    from fieldvane.estimator.filter_settings import FilterSettings
+    from fieldvane.io.estimation import settings_for_stream
+
+    d, sensor = calibrated
+    assert load_calibration(d / "cal.json").scan_lockin is None            # a scan without lock-in metadata
+    u, b, z, f, _ = scan(sensor, [1000, 3000, 10000, 20000], 600, snr=1000, seed=2)
+    cols = {"t": np.arange(len(b)) * 0.01, "f_a": f[:, 0], "f_b": f[:, 1]}
+    for k, ch in enumerate(sensor.channels):
+        cols[f"x_{ch}"], cols[f"y_{ch}"] = z[:, k].real, z[:, k].imag
+    cols.update({"bx_nT": u[:, 0] * b, "by_nT": u[:, 1] * b, "bz_nT": u[:, 2] * b})
+    write_recording(tmp_path / "scan.csv", cols, {"lockin_time_constant_s": "0.005", "lockin_filter_order": "3"})
+    assert main(["calibrate", str(tmp_path / "scan.csv"), "-o", str(tmp_path / "cal.json")]) == 0
+    cal = load_calibration(tmp_path / "cal.json")
+    assert cal.scan_lockin == (0.005, 3)
+    live = settings_for_stream(None, None, "live", cal)
+    assert (live.lockin_time_constant_s, live.lockin_filter_order) == (0.005, 3)
+    stated = settings_for_stream(FilterSettings(lockin_time_constant_s=0.002, lockin_filter_order=2), None, "f", cal)
+    assert (stated.lockin_time_constant_s, stated.lockin_filter_order) == (0.002, 2)
+    white = settings_for_stream(None, {"lockin_time_constant_s": "0"}, "rec.csv", cal)     # stated: none
+    assert white.lockin_time_constant_s == 0.0
+    assert settings_for_stream(None, None, "rec.csv").lockin_time_constant_s == 0.0       # no calibration given

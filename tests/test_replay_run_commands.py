@@ -107,6 +107,17 @@ def test_run_live_then_replay_capture_is_identical(calibrated, tmp_path):
     assert (tmp_path / "replay.csv").read_bytes() == live_csv.read_bytes()
     est = read_estimates(live_csv)
     assert len(est["t"]) > sim.n_samples // 2
+    # With a calibration whose scan came through a 4-stage 5 ms lock-in, the capture (a wire stream: no lock-in
+    # metadata) is taken through the same filter: its group delay 4 x 5 ms (n tau for n RC stages) is removed.
+    import json
+    doc = json.loads((d / "cal.json").read_text())
+    doc["scan_lockin"] = {"time_constant_s": 0.005, "filter_order": 4}
+    (tmp_path / "lockin_cal.json").write_text(json.dumps(doc))
+    (tmp_path / "cal.npz").write_bytes((d / "cal.npz").read_bytes())
+    assert main(["replay", str(tmp_path / "cap"), "-c", str(tmp_path / "lockin_cal.json"), "-o",
+                 str(tmp_path / "lockin.csv")]) == 0
+    shifted = read_estimates(tmp_path / "lockin.csv")
+    assert np.allclose(est["t"] - shifted["t"], 0.020, rtol=0, atol=1e-12)
 
 
 def test_run_exits_3_when_the_port_never_opens(calibrated, tmp_path):

@@ -89,6 +89,7 @@ def calibrate_file(scan, output, sensor: dict | None = None, cell: str | None = 
     from fieldvane.estimator.calibration import CalibrationError, fit_calibration
     from fieldvane.io.calfile import save_calibration, tables_path
     from fieldvane.io.errors import InputError, JobError
+    from fieldvane.io.estimation import scan_lockin
     from fieldvane.io.outputs import check_output, same_path
     from fieldvane.io.recording import read_recording
 
@@ -125,6 +126,7 @@ def calibrate_file(scan, output, sensor: dict | None = None, cell: str | None = 
         if exc.unusable:
             raise InputError(str(exc), scan) from None
         raise JobError(f"{scan}: {exc}") from None
+    cal.scan_lockin = scan_lockin(block.metadata, str(scan))
     source = {"scan": str(scan), "rows": len(block), "skipped_rows": block.skipped_rows}
     return cal, block, save_calibration(cal, out, source=source, sensor=sensor)
 

@@ -83,6 +83,7 @@ def run(args) -> int:
     from fieldvane.io.commands.calibrate import calibrate_file, summary_text
     from fieldvane.io.errors import InputError, JobError
     from fieldvane.io.estimates_csv import record_rows
+    from fieldvane.io.estimation import settings_for_stream
     from fieldvane.io.live import run_live, runs_from_capture
     from fieldvane.io.recording import read_recording, write_recording
     from fieldvane.io.sinks import close_sinks, open_sink
@@ -134,7 +135,8 @@ def run(args) -> int:
 
     # 4. live tracking, with the same status line as `fieldvane run`
     solver = SnapshotSolver.from_calibration(cal, table)
-    tracker = Tracker(cal, None, solver.initiate)
+    stream = settings_for_stream(None, None, "demo", cal)      # the lock-in as `fieldvane run` takes it
+    tracker = Tracker(cal, stream, solver.initiate)
     # The filter core is compiled on its first call (seconds on a fresh install): do it before the sensor
     # starts streaming, so the live part keeps up from the first sample.
     warm, _ = read_recording(out / "track_truth.csv")
@@ -173,7 +175,7 @@ def run(args) -> int:
     # 5. replay the capture as `fieldvane replay` does: each capture run with a fresh tracker, in batches
     replay_sink = open_sink(str(out / "replay.csv"))
     for _run, samples in runs_from_capture(out / "capture"):
-        replay_tracker = Tracker(cal, None, SnapshotSolver.from_calibration(cal, table).initiate)
+        replay_tracker = Tracker(cal, stream, SnapshotSolver.from_calibration(cal, table).initiate)
         samples = list(samples)
         for k in range(0, len(samples), 8192):
             for est in replay_tracker.step_record(samples[k:k + 8192]).estimates():

@@ -246,12 +246,14 @@ def _replay(args, reader, blocks) -> int:
             host_ns: list[int] = []           # receive time of the chunk that completed each sample
             geo.host_clock = True
             geo.check_clock()
+            from fieldvane.io.estimation import settings_for_stream
+            stream = settings_for_stream(settings, None, args.input, cal)    # as the live run took it
             if args.site or geo.start_utc is not None:    # else the same bytes as the live run's CSV logger
                 outputs.metadata.update(geo.metadata())
             for _run_id, samples in runs_from_capture(args.input, args.input_format, counters=decoder_counters,
                                                       capture_counters=capture_counters, warnings=cap_warnings,
                                                       host_times=host_ns):
-                tracker = Tracker(cal, settings, solver.initiate, report_channels=args.readouts) if track else None
+                tracker = Tracker(cal, stream, solver.initiate, report_channels=args.readouts) if track else None
                 trackers.append(tracker)
                 for batch in _batches(_progress(samples, None, args.no_progress), CHUNK):
                     host_utc = geo_output.take_host_times(host_ns, len(batch))

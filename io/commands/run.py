@@ -159,7 +159,7 @@ def run(args) -> int:
     from fieldvane.io.calfile import load_calibration
     from fieldvane.io.errors import EXIT_CAPTURE_LOST, EXIT_FAILURE, EXIT_LINK
     from fieldvane.io.estimates_csv import record_rows
-    from fieldvane.io.estimation import counters_table, noise_line
+    from fieldvane.io.estimation import counters_table, lockin_line, noise_line, settings_for_stream
     from fieldvane.io.filterfile import read_filter_settings
     from fieldvane.io.live import run_live
     from fieldvane.io.status import StatusLine
@@ -172,7 +172,9 @@ def run(args) -> int:
     geo = geo_output.setup(args.site, None, args.calibration, host_clock=True)
     host_clock = geo_output.HostClock()
     cal = load_calibration(args.calibration)
-    settings = read_filter_settings(args.filter) if args.filter else None
+    # A wire stream carries no lock-in description: the filter file's, else the calibration scan's.
+    settings = settings_for_stream(read_filter_settings(args.filter) if args.filter else None, None,
+                                   args.port, cal)
     _check_outputs(args, specs)
     table, _ = load_or_build_table(cal, cache_dir_for(args.calibration))
     solver = SnapshotSolver.from_calibration(cal, table)
@@ -207,7 +209,7 @@ def run(args) -> int:
         if not final:
             status.log(counters_table(tracker.counters.as_dict(), "fieldvane run: tracker now:"))
 
-    for line in start_lines(args, specs, os.getpid()):
+    for line in start_lines(args, specs, os.getpid()) + [lockin_line(settings, cal, "fieldvane run")]:
         status.log(line)
     for line in geo.describe():
         status.log(f"fieldvane run: {line}")
