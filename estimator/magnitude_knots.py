@@ -55,7 +55,9 @@ class MagnitudeKnots:
             m = f_hz[r] / self.gammas[None, :]
         s = self.series[self.count:new]
         s[:, 0:2] = m - est.b_per_isotope
-        s[:, 2:4] = est.weights
+        # A knot without |B| (no frequency of either isotope) has no fusion weights: its zeros would pull the
+        # fused |B| of the samples up to a stride away from it toward 0 nT.
+        s[:, 2:4] = np.where(np.isfinite(est.b_nT)[:, None], est.weights, np.nan)
         s[:, 4] = est.sigma_b_nT
         s[:, 5] = est.sigma_difference_nT
         self.count = new
@@ -97,6 +99,7 @@ class MagnitudeKnots:
         between the knots (a block with knots: apply() evaluates a dense one sample by sample)."""
         with np.errstate(invalid="ignore", divide="ignore"):
             m = f_hz / self.gammas[None, :]
+            m[~(m > 0)] = np.nan            # no frequency (0, negative, nan): no |B| from it, as estimate_rows
         idx = np.arange(lo, lo + f_hz.shape[0])
         count = self.count                # read once: advance() may add knots meanwhile (from another thread)
         rows, s = self.rows[:count], self.series[:count]

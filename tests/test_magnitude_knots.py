@@ -189,3 +189,34 @@ def test_a_live_batch_is_corrected_as_the_model_and_the_numpy_rule_give(stream):
                            1e-3)
         for x, y in zip(got, want):
             np.testing.assert_array_equal(x, y)
+
+
+def test_a_zero_frequency_counts_as_missing_between_knots_as_in_a_live_batch(stream):
+    # An unlocked pump loop may report 0 Hz: no |B| from it. Between knots (a replayed block) it must give what a
+    # missing value gives, as it does sample by sample (magnitude_core.estimate_rows takes only f / gamma > 0).
+    cal, block = stream
+    zero = block.f.copy()
+    zero[700:760, 1] = 0.0                         # the fixture has nan there
+    whole_nan = _whole(cal, block)
+    whole_zero = _whole(cal, dataclasses.replace(block, f=zero))
+    for name in ("b_nT", "sigma_b_nT", "flags", "u"):
+        np.testing.assert_array_equal(getattr(whole_zero, name), getattr(whole_nan, name), err_msg=name)
+    np.testing.assert_array_equal(whole_zero.b_nT[700:760], whole_zero.b_a_nT[700:760])   # isotope a's alone
+
+
+def test_samples_next_to_a_gap_in_both_frequencies_keep_their_magnitude(stream):
+    # Both loops silent for 0.5 s: the knots there have no |B|. The samples up to a stride on either side are
+    # corrected between the knots that do, and agree with the same samples evaluated one by one (a live batch's
+    # way, magnitude_core.estimate_rows) to far below the frequency noise.
+    cal, block = stream
+    f = block.f.copy()
+    f[1000:1100] = np.nan
+    gapped = dataclasses.replace(block, f=f)
+    whole = _whole(cal, gapped)
+    tracker = Tracker(cal, FilterSettings(), SnapshotSolver.from_calibration(cal).initiate)
+    one_by_one = TrackRecord.concatenate([tracker.step_record([gapped.sample(i) for i in range(k, min(k + 50, 1300))])
+                                          for k in range(0, 1300, 50)])
+    near = np.r_[968:1000, 1100:1132]
+    assert np.isfinite(whole.b_nT[near]).all()
+    noise_nT = float(np.min(cal.magnitude_model.noise_nT))          # the fitted frequency noise, nT
+    assert np.max(np.abs(whole.b_nT[near] - one_by_one.b_nT[near])) < 0.1 * noise_nT
