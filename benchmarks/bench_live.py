@@ -153,6 +153,7 @@ def test_live_latency_frame_to_sink(calibration, tmp_path, rate, outputs):
 
     import numpy as np
 
+    from fieldvane.estimator.samples import SampleBlock
     from fieldvane.estimator.snapshot import SnapshotSolver
     from fieldvane.estimator.tracker import Tracker
     from fieldvane.io.calfile import load_calibration
@@ -179,7 +180,7 @@ def test_live_latency_frame_to_sink(calibration, tmp_path, rate, outputs):
     def handed(count):
         now = time.monotonic()
         if t_start:
-            latencies.extend(now - (t_start[0] + s.t) for s in batch[-1][:count])
+            latencies.extend(now - (t_start[0] + t) for t in batch[-1][:count])
             # the part this tool adds: from the reader thread receiving the frame's last byte
             after_arrival.extend(now - ns * 1e-9 for ns in host_ns[:count])
         del batch[-1][:count]
@@ -196,7 +197,7 @@ def test_live_latency_frame_to_sink(calibration, tmp_path, rate, outputs):
     batch: list = [[]]
 
     def estimate_batch(samples):
-        batch[-1] = list(samples)
+        batch[-1] = samples.t.tolist() if isinstance(samples, SampleBlock) else [s.t for s in samples]
         host_ns[:] = loop.sample_host_times_ns
         rows = record_rows(tracker.step_record(samples))        # as `fieldvane run` does
         if not sinks:

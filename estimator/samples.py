@@ -48,15 +48,59 @@ class SampleBlock:
     metadata: dict[str, str] = field(default_factory=dict)      # from '# key: value' comment lines
     skipped_rows: int = 0                     # malformed rows dropped (counted, never silent)
     lines: np.ndarray | None = None           # (N,) int64 1-based source line of each row (text files)
+    status: np.ndarray | None = None          # (N,) int64 sensor status bits (wire frames)
+    restarted: np.ndarray | None = None       # (N,) bool: the source restarted just before the row
 
     def __len__(self) -> int:
         return int(self.t.shape[0])
 
     def sample(self, i: int) -> Sample:
-        """Return row i as a Sample."""
-        return Sample(float(self.t[i]), float(self.f[i, 0]), float(self.f[i, 1]), self.z[i],
-                      self.channels)
+        """Return row i as a Sample (status and restart mark included when the block has them)."""
+        return Sample(float(self.t[i]), float(self.f[i, 0]), float(self.f[i, 1]), self.z[i], self.channels,
+                      0 if self.status is None else int(self.status[i]),
+                      False if self.restarted is None else bool(self.restarted[i]))
 
     def __iter__(self):
         for i in range(len(self)):
             yield self.sample(i)
+
+    def __getitem__(self, index):
+        """Row i as a Sample, or a slice of rows as a SampleBlock (per-row arrays sliced, metadata shared)."""
+        if not isinstance(index, slice):
+            i = range(len(self))[index]
+            return self.sample(i)
+        return SampleBlock(**{name: _rows(value, index) for name, value in self.__dict__.items()})
+
+    @classmethod
+    def concatenate(cls, blocks: list[SampleBlock]) -> SampleBlock:
+        """Return blocks of the same channels as one (per-row arrays joined; metadata of the first)."""
+        first = blocks[0]
+        if len(blocks) == 1:
+            return first
+        if any(b.channels != first.channels for b in blocks):
+            raise ValueError("blocks of different channels cannot be joined")
+        joined = {}
+        for name, value in first.__dict__.items():
+            if name in _PER_ROW:
+                parts = [getattr(b, name) for b in blocks]
+                joined[name] = None if any(p is None for p in parts) else np.concatenate(parts)
+            elif name == "truth":
+                joined[name] = {k: np.concatenate([b.truth[k] for b in blocks]) for k in value
+                                if all(k in b.truth for b in blocks)}
+            elif name == "skipped_rows":
+                joined[name] = sum(b.skipped_rows for b in blocks)
+            else:
+                joined[name] = value
+        return cls(**joined)
+
+
+_PER_ROW = ("t", "f", "z", "applied_b_nT", "lines", "status", "restarted")
+
+
+def _rows(value, index: slice):
+    """Return value's rows `index` when it is a per-row array (or a dict of them), else value itself."""
+    if isinstance(value, np.ndarray):
+        return value[index]
+    if isinstance(value, dict) and value and all(isinstance(v, np.ndarray) for v in value.values()):
+        return {k: v[index] for k, v in value.items()}
+    return value

@@ -48,7 +48,7 @@ from fieldvane.estimator.filter_settings import FilterSettings
 from fieldvane.estimator.flags import EstimateFlag as F
 from fieldvane.estimator.lockin_noise import (autocorrelation, correlation_factor, group_delay_s,
                                               second_difference_variance)
-from fieldvane.estimator.magnitude_knots import MagnitudeKnots
+from fieldvane.estimator.magnitude_knots import DENSE_SAMPLES, MagnitudeKnots, correct_samples
 from fieldvane.estimator.median import median
 from fieldvane.estimator.response import to_real
 from fieldvane.estimator.samples import Sample, SampleBlock, channel_probe
@@ -550,9 +550,12 @@ class Tracker:
         lo.. of the block `knots` was advanced through, or a block of their own."""
         n = len(b)
         if knots is None:
-            knots = self._knots(n)
-            if knots is None:
+            mm = getattr(self.calibration, "magnitude_model", None)
+            if mm is None or n == 0:
                 return b, per, np.full(n, np.nan), flags
+            if n <= DENSE_SAMPLES:           # a live batch: the model at every sample, no knots
+                return correct_samples(mm, f_hz, u, sigma_deg, b, per, flags, self.settings.magnitude_tolerance)
+            knots = MagnitudeKnots(mm, self._gammas_array, n)
             knots.advance(n, f_hz, u, sigma_deg)
         return knots.apply(lo, f_hz, u, sigma_deg, b, per, flags, self.settings.magnitude_tolerance)
 
@@ -612,24 +615,30 @@ class Tracker:
         return record.estimates()[0]
 
     def step_record(self, samples) -> TrackRecord:
-        """Return the TrackRecord of a few live samples (one core call; channel sets may differ between calls)."""
-        samples = list(samples)
-        t = np.array([float(s.t) for s in samples])
+        """Return the TrackRecord of a few live samples, Samples or a SampleBlock (one core call; channel sets may
+        differ between calls)."""
+        if isinstance(samples, SampleBlock):
+            t, f, z, channels, restarted = samples.t, samples.f, samples.z, samples.channels, samples.restarted
+            sample_at = samples.sample
+        else:
+            samples = list(samples)
+            t = np.array([float(s.t) for s in samples])
+            f = np.array([[float(s.f_a), float(s.f_b)] for s in samples])
+            channels = tuple(samples[0].channels)
+            if all(tuple(s.channels) == channels for s in samples):
+                z = np.array([np.asarray(s.z, complex) for s in samples])
+            else:
+                z = np.vstack([self.calibrated_z(np.asarray(s.z, complex)[None], s.channels) for s in samples])
+                channels = self.channels
+            restarted = np.array([bool(getattr(s, "restarted", False)) for s in samples])
+            sample_at = samples.__getitem__
         if not self._rate_known:
             self._note_times(t)
-        f = np.array([[float(s.f_a), float(s.f_b)] for s in samples])
-        channels = tuple(samples[0].channels)
-        if all(tuple(s.channels) == channels for s in samples):
-            z = np.array([np.asarray(s.z, complex) for s in samples])
-        else:
-            z = np.vstack([self.calibrated_z(np.asarray(s.z, complex)[None], s.channels) for s in samples])
-            channels = self.channels
-        restarted = np.array([bool(getattr(s, "restarted", False)) for s in samples])
         inp = self.prepare(t, f, z, channels, restarted)
-        n = len(samples)
+        n = len(t)
         fout = np.empty((n, core.N_FOUT))
         iout = np.zeros((n, core.N_IOUT), np.int64)
-        self._run_prepared(inp, fout, iout, lambda k: samples[k])
+        self._run_prepared(inp, fout, iout, sample_at)
         readouts = channel_readouts(inp.z, self.channels) if self.report_channels else {}
         return self._record(t, fout, iout, inp.b_nT, inp.per_isotope_nT, readouts, f)
 

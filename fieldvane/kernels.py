@@ -2,7 +2,8 @@
 
 The filter core (estimator/filter_core.py), the magnitude model's per-sample evaluation
 (estimator/magnitude_core.py), the tracker's input preparation (estimator/prepare_core.py), the
-CSV float formatter (io/float_text.py) and the recording parser (io/csv_numbers.py) are written
+CSV float formatter (io/float_text.py), the recording parser (io/csv_numbers.py) and the wire-format stream
+decoder (io/frame_core.py) are written
 once, in the subset of Python that numba compiles. Their entry points are declared with `@entry(signature)` and their helpers with
 `@helper()`. At `pip install`, setup.py compiles the entry points with numba's ahead-of-time
 compiler (numba.pycc) into one extension module, `fieldvane._kernels`: a process that finds it (and
@@ -26,7 +27,8 @@ import warnings
 
 # The modules whose source is compiled into fieldvane._kernels, in build order.
 KERNEL_MODULES = ("fieldvane.estimator.filter_core", "fieldvane.estimator.magnitude_core",
-                  "fieldvane.estimator.prepare_core", "fieldvane.io.float_text", "fieldvane.io.csv_numbers")
+                  "fieldvane.estimator.prepare_core", "fieldvane.io.float_text", "fieldvane.io.csv_numbers",
+                  "fieldvane.io.frame_core")
 # Their sources and what they import constants from: a compiled module built from other bytes is not used.
 DIGEST_MODULES = KERNEL_MODULES + ("fieldvane.estimator.flags",)
 ENTRIES: dict[str, tuple[str, str, dict]] = {}     # entry name -> (module, signature, numba options)

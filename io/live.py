@@ -23,7 +23,7 @@ from collections.abc import Callable, Iterable, Iterator, Mapping, Sequence
 from dataclasses import dataclass, field
 
 from fieldvane import __version__
-from fieldvane.estimator.samples import Sample
+from fieldvane.estimator.samples import Sample, SampleBlock
 from fieldvane.io.capture import EVENT_DATA, EVENT_LOST, CaptureReader, CaptureWriter, capture_files
 from fieldvane.io.capture_thread import DEFAULT_CAPTURE_BUFFER_BYTES, CaptureThread
 from fieldvane.io.csv_lines import CsvLineDecoder
@@ -40,14 +40,14 @@ REPEAT_LOG_S = 10.0          # a continuing problem is logged again at most this
 
 
 class BinarySampleDecoder:
-    """FrameDecoder that returns Samples: feed(bytes) -> list[Sample]."""
+    """FrameDecoder that returns samples: feed(bytes) -> a SampleBlock (or Samples when probe counts mix)."""
 
     def __init__(self, max_encoded_len: int | None = None):
         self.frames = FrameDecoder() if max_encoded_len is None else FrameDecoder(max_encoded_len)
 
-    def feed(self, data: bytes) -> list[Sample]:
-        """Return the Samples of the frames completed by data (first after a seq reset: restarted)."""
-        return [f.to_sample() for f in self.frames.feed(data)]
+    def feed(self, data: bytes) -> SampleBlock | list[Sample]:
+        """Return the samples of the frames completed by data (first after a seq reset: restarted)."""
+        return self.frames.feed_arrays(data).samples()
 
     def resync(self, lost: bool = False) -> None:
         """Start afresh at the next byte (link reopened, or bytes lost before it)."""
@@ -80,6 +80,23 @@ def feed_chunk(decoder, chunk) -> list[Sample]:
         return decoder.feed(chunk.data)
     decoder.resync(lost=chunk.event == EVENT_LOST)
     return []
+
+
+def join_samples(pieces: list) -> SampleBlock | list[Sample]:
+    """Return the samples of several decoder results as one: a SampleBlock when all are blocks of the same
+    channels (the binary decoder's usual case), else a list of Samples."""
+    if len(pieces) == 1:
+        return pieces[0]
+    if pieces and all(isinstance(p, SampleBlock) and p.channels == pieces[0].channels for p in pieces):
+        return SampleBlock.concatenate(pieces)
+    return [sample for piece in pieces for sample in piece]
+
+
+def restart_times(samples) -> list[float]:
+    """Return the times (s) of the samples marked `restarted` (the first after a sensor restart)."""
+    if isinstance(samples, SampleBlock):
+        return [] if samples.restarted is None else samples.t[samples.restarted].tolist()
+    return [s.t for s in samples if s.restarted]
 
 
 def _stderr(line: str) -> None:
@@ -299,16 +316,17 @@ class LiveLoop:
         self._notify_progress()
 
     def _process_many(self, chunks) -> None:
-        samples: list[Sample] = []
+        pieces = []
         host_ns: list[int] = []
         for chunk in chunks:
             if chunk.event == EVENT_DATA:
                 self.chunks += 1
                 self.bytes += len(chunk.data)
             got = feed_chunk(self.decoder, chunk)
-            samples.extend(got)
-            host_ns.extend([chunk.host_time_ns] * len(got))
-        self._estimate_all(samples, host_ns)
+            if len(got):
+                pieces.append(got)
+                host_ns.extend([chunk.host_time_ns] * len(got))
+        self._estimate_all(join_samples(pieces), host_ns)
         self._notify_progress()
 
     def _must_pause(self) -> bool:
@@ -326,7 +344,8 @@ class LiveLoop:
                 return
             self.sample_host_times_ns = host_ns[i:i + 1]
             self.samples += 1
-            self._note_restart(sample)
+            if sample.restarted:
+                self._note_restart(sample.t)
             try:
                 record = self.estimate(sample)
             except Exception as exc:          # one bad sample must not end a days-long run
@@ -344,8 +363,8 @@ class LiveLoop:
             batch = samples[start:start + size]
             self.sample_host_times_ns = host_ns[start:start + size]
             self.samples += len(batch)
-            for sample in batch:
-                self._note_restart(sample)
+            for t in restart_times(batch):
+                self._note_restart(t)
             try:
                 records = self.estimate_batch(batch)
             except Exception as exc:          # a bad batch must not end a days-long run
@@ -364,12 +383,10 @@ class LiveLoop:
         self._leftover_ns.extend(host_ns[i:])
         return True
 
-    def _note_restart(self, sample: Sample) -> None:
-        """Count and log a sensor restart (the decoder marks the first sample after a sequence reset)."""
-        if sample.restarted:
-            self.restarts += 1
-            self.log(f"fieldvane live: the sensor restarted (sequence reset) at t={sample.t!r}; "
-                     "tracking starts afresh")
+    def _note_restart(self, t: float) -> None:
+        """Count and log a sensor restart at sensor time t (s) (the decoder marks the first sample after a sequence reset)."""
+        self.restarts += 1
+        self.log(f"fieldvane live: the sensor restarted (sequence reset) at t={t!r}; tracking starts afresh")
 
     def _deliver(self, record) -> None:
         """Count an estimate record and hand it to every sink (None: the sample gave no estimate)."""

@@ -7,8 +7,10 @@ from dataclasses import dataclass, field
 
 import numpy as np
 
-from fieldvane.estimator.samples import CHANNELS_ONE_PROBE, CHANNELS_TWO_PROBES, Sample
+from fieldvane.estimator.samples import CHANNELS_ONE_PROBE, CHANNELS_TWO_PROBES, Sample, SampleBlock
+from fieldvane.io import frame_core as fc
 from fieldvane.io.framing import CobsError, cobs_decode, cobs_encode, crc16_ccitt_false
+from fieldvane.kernels import bind
 
 MAGIC = b"FV"
 VERSION = 1
@@ -105,6 +107,45 @@ def decode_payload(payload: bytes) -> Frame:
 
 COUNTER_NAMES = ("frames_ok", "crc_errors", "bad_frames", "seq_gaps", "seq_resets",
                  "duplicates", "bytes_discarded", "resync_bytes", "resyncs", "bytes_fed")
+_COUNTER_STATE = {"frames_ok": fc.ST_FRAMES_OK, "crc_errors": fc.ST_CRC_ERRORS, "bad_frames": fc.ST_BAD_FRAMES,
+                  "seq_gaps": fc.ST_SEQ_GAPS, "seq_resets": fc.ST_SEQ_RESETS, "duplicates": fc.ST_DUPLICATES,
+                  "bytes_discarded": fc.ST_BYTES_DISCARDED, "resync_bytes": fc.ST_RESYNC_BYTES,
+                  "bytes_fed": fc.ST_BYTES_FED}
+
+
+class FrameArrays:
+    """Decoded frames as rows: ints (N, 5) seq, t_ns, status, n_values, restarted; t (N,) s; f (N, 2) f_a, f_b Hz;
+    values (N, 8) lock-in V (NaN past n_values); kinds: bit 0 set if a frame has 4 values, bit 1 if one has 8."""
+
+    __slots__ = ("ints", "t", "f", "values", "kinds")
+
+    def __init__(self, ints: np.ndarray, t: np.ndarray, f: np.ndarray, values: np.ndarray, kinds: int):
+        self.ints, self.t, self.f, self.values, self.kinds = ints, t, f, values, kinds
+
+    def __len__(self) -> int:
+        return int(self.ints.shape[0])
+
+    def samples(self) -> SampleBlock | list[Sample]:
+        """Return the rows as one SampleBlock (t s, f Hz, z V, status, restarted), or as Samples when one- and
+        two-probe frames are mixed (an empty list when there are none)."""
+        ints = self.ints
+        if not len(ints):
+            return []
+        if self.kinds == 3:
+            return [frame.to_sample() for frame in self.frames()]
+        values = self.values if self.kinds == 2 else np.ascontiguousarray(self.values[:, :4])
+        return SampleBlock(self.t, self.f, values.view(np.complex128),
+                           CHANNELS_TWO_PROBES if self.kinds == 2 else CHANNELS_ONE_PROBE,
+                           status=ints[:, fc.O_STATUS], restarted=ints[:, fc.O_RESTARTED] != 0)
+
+    def frames(self) -> list[Frame]:
+        """Return the rows as Frame objects (values as float32-exact floats, t_ns as the unsigned wire value)."""
+        out = []
+        for (seq, t_ns, status, n_values, restarted), (f_a, f_b), values in zip(
+                self.ints.tolist(), self.f.tolist(), self.values.tolist()):
+            out.append(Frame(seq, t_ns & 0xFFFFFFFFFFFFFFFF, status, f_a, f_b, tuple(values[:n_values]),
+                             restarted=bool(restarted)))
+        return out
 
 
 class FrameDecoder:
@@ -112,131 +153,64 @@ class FrameDecoder:
 
     A fresh decoder (and one after resync()) does not know where the stream starts: the bytes
     before its first 0x00 are kept as a frame only if they form a valid one, else they count as
-    resynchronisation (`resync_bytes`), not as a damaged frame.
+    resynchronisation (`resync_bytes`), not as a damaged frame. The work is one compiled pass
+    (io/frame_core.py); this class keeps its state between calls.
     """
 
     def __init__(self, max_encoded_len: int = MAX_ENCODED_LEN):
         self.max_encoded_len = max_encoded_len
-        self._buf = bytearray()
-        self._discarding = False      # inside an oversize run: drop everything to the next 0x00
-        self._fresh = True            # no 0x00 seen since the start or the last resync()
-        self._discard_resync = False  # the run being discarded is a resync, not a bad frame
-        self._last_seq: int | None = None
-        self.frames_ok = 0
-        self.crc_errors = 0
-        self.bad_frames = 0
-        self.seq_gaps = 0             # frames missing according to forward seq jumps
-        self.seq_resets = 0           # seq stepped backwards (sensor restart): tracking restarted
-        self.duplicates = 0
-        self.bytes_discarded = 0      # bytes (0x00 delimiters excluded) of rejected candidates
-        self.resync_bytes = 0         # bytes before the first 0x00 of a fresh stream, not a frame
+        self._state = np.zeros(fc.N_STATE, np.int64)
+        self._state[fc.ST_FRESH] = 1
+        self._state[fc.ST_MAX_ENCODED_LEN] = max_encoded_len
+        self._pending = np.zeros(max(max_encoded_len, 1), np.uint8)
+        self._decode = bind(fc.decode_stream, self._pending, self._state)
         self.resyncs = 0              # resync() calls (link opened again, bytes lost upstream)
-        self.bytes_fed = 0
+
+    def __getattr__(self, name: str):
+        # frames_ok, crc_errors, bad_frames, seq_gaps (frames missing according to forward seq jumps), seq_resets
+        # (seq stepped backwards: sensor restart), duplicates, bytes_discarded (bytes of rejected candidates, 0x00
+        # excluded), resync_bytes (bytes before the first 0x00 of a fresh stream), bytes_fed
+        k = _COUNTER_STATE.get(name)
+        if k is None:
+            raise AttributeError(name)
+        return int(self.__dict__["_state"][k])
 
     @property
     def pending(self) -> int:
         """Return the number of bytes held waiting for their 0x00 delimiter."""
-        return len(self._buf)
+        return int(self._state[fc.ST_PENDING])
 
     def counters(self) -> dict[str, int]:
         """Return a snapshot of every counter (ints), including `pending` bytes."""
         c = {name: getattr(self, name) for name in COUNTER_NAMES}
-        c["pending"] = len(self._buf)
+        c["pending"] = self.pending
         return c
 
     def resync(self) -> None:
         """Start afresh at the next byte (link reopened, bytes lost): pending bytes count as resync."""
+        st = self._state
         self.resyncs += 1
-        self.resync_bytes += len(self._buf)
-        self._buf.clear()
-        self._discarding = False
-        self._fresh = True
-
-    def _drop(self, n: int, resync: bool) -> None:
-        if resync:
-            self.resync_bytes += n
-        else:
-            self.bytes_discarded += n
-
-    def feed(self, data: bytes) -> list[Frame]:
-        """Return the frames completed by data, in order; malformed input is counted, never raised."""
-        if not isinstance(data, (bytes, bytearray)):
-            data = bytes(data)
-        self.bytes_fed += len(data)
-        frames: list[Frame] = []
-        start = 0
-        n = len(data)
-        limit = self.max_encoded_len
-        buf = self._buf
-        while start < n:
-            end = data.find(0, start)
-            if end < 0:
-                chunk_len = n - start
-                if self._discarding:
-                    self._drop(chunk_len, self._discard_resync)
-                elif len(buf) + chunk_len > limit:
-                    if not self._fresh:
-                        self.bad_frames += 1
-                    self._drop(len(buf) + chunk_len, self._fresh)
-                    buf.clear()
-                    self._discarding = True
-                    self._discard_resync = self._fresh
-                else:
-                    buf += data[start:]
-                break
-            seg_len = end - start
-            fresh, self._fresh = self._fresh, False
-            if self._discarding:
-                self._drop(seg_len, self._discard_resync)
-                self._discarding = False
-            elif len(buf) + seg_len > limit:
-                if not fresh:
-                    self.bad_frames += 1
-                self._drop(len(buf) + seg_len, fresh)
-                buf.clear()
-            elif buf:
-                buf += data[start:end]
-                self._candidate(bytes(buf), frames, fresh)
-                buf.clear()
-            elif seg_len:
-                self._candidate(data[start:end], frames, fresh)
-            # else: an empty candidate (two 0x00 in a row, or a leading 0x00) means nothing
-            start = end + 1
-        return frames
+        st[fc.ST_RESYNC_BYTES] += st[fc.ST_PENDING]
+        st[fc.ST_PENDING] = 0
+        st[fc.ST_DISCARDING] = 0
+        st[fc.ST_FRESH] = 1
 
     def reset_sequence(self) -> None:
         """Forget the last sequence number (the next frame starts seq tracking afresh)."""
-        self._last_seq = None
+        self._state[fc.ST_HAS_SEQ] = 0
 
-    def _candidate(self, encoded: bytes, frames: list[Frame], fresh: bool = False) -> None:
-        try:
-            frame = decode_payload(cobs_decode(encoded))
-        except FrameCrcError:
-            if fresh:
-                self.resync_bytes += len(encoded)
-                return
-            self.crc_errors += 1
-            self.bytes_discarded += len(encoded)
-            return
-        except (CobsError, FrameError):
-            if fresh:
-                self.resync_bytes += len(encoded)
-                return
-            self.bad_frames += 1
-            self.bytes_discarded += len(encoded)
-            return
-        last = self._last_seq
-        if last is not None:
-            step = (frame.seq - last) % SEQ_MODULUS
-            if step == 0:
-                self.duplicates += 1
-                return
-            if step > SEQ_HALF:
-                self.seq_resets += 1
-                frame = Frame(frame.seq, frame.t_ns, frame.status, frame.f_a, frame.f_b,
-                              frame.values, restarted=True)
-            elif step > 1:
-                self.seq_gaps += step - 1
-        self._last_seq = frame.seq
-        self.frames_ok += 1
-        frames.append(frame)
+    def feed_arrays(self, data) -> FrameArrays:
+        """Return the frames completed by data as arrays, in order; malformed input is counted, never raised."""
+        if not isinstance(data, (bytes, bytearray)):
+            data = bytes(data)
+        rows = data.count(0)           # a frame ends at a 0x00: at most one per delimiter
+        ints, t = np.empty((rows, fc.N_OUT_INT), np.int64), np.empty(rows)
+        f, values = np.empty((rows, 2)), np.empty((rows, 8))
+        n = self._decode(np.frombuffer(data, np.uint8), ints, t, f, values)
+        if n < rows:
+            ints, t, f, values = ints[:n], t[:n], f[:n], values[:n]
+        return FrameArrays(ints, t, f, values, int(self._state[fc.ST_KINDS]))
+
+    def feed(self, data: bytes) -> list[Frame]:
+        """Return the frames completed by data, in order; malformed input is counted, never raised."""
+        return self.feed_arrays(data).frames()

@@ -63,6 +63,22 @@ MAGNITUDE_CASE = textwrap.dedent("""
         return np.concatenate(out)
 """)
 
+# Invented frames, one- and two-probe, a sequence reset and a damaged frame, through the compiled stream decoder.
+FRAMES_CASE = textwrap.dedent("""
+    def frames_case():
+        import numpy as np
+        from fieldvane.io.wire import Frame, FrameDecoder, encode_frame
+        seqs = list(range(30)) + list(range(5, 15))
+        frames = [Frame(s, 10**9 + 997 * k, k % 5, 1e5 + k / 3, 2e5 - k / 7,
+                        tuple(0.25 * k - j / 3 for j in range(8 if k % 3 else 4))) for k, s in enumerate(seqs)]
+        data = bytearray(b"".join(encode_frame(f) for f in frames))
+        data[200] ^= 0x10
+        decoder = FrameDecoder()
+        arrays = [decoder.feed_arrays(bytes(data[i:i + 97])) for i in range(0, len(data), 97)]
+        rows = np.vstack([np.column_stack([a.ints.astype(float), a.t, a.f, a.values]) for a in arrays])
+        return np.concatenate([rows.ravel(), np.array(list(decoder.counters().values()), float)])
+""")
+
 # Runs in a fresh process with FIELDVANE_JIT=1: the golden stream through the tracker, |B| through the
 # magnitude model, a block of CSV text, and the signatures numba compiled for each entry point.
 JIT_RUN = textwrap.dedent("""
@@ -83,6 +99,7 @@ JIT_RUN = textwrap.dedent("""
     text = float_text.format_rows([rec.u[:, 0], rec.flags, None, rec.sigma_deg]).decode()
     exec(sys.argv[3])
     np.save(sys.argv[2] + "/magnitude.npy", magnitude_case())
+    np.save(sys.argv[2] + "/frames.npy", frames_case())
     short = {"float64": "f8", "int64": "i8", "uint64": "u8", "uint8": "u1", "bool": "b1"}
     def name(t):
         if isinstance(t, types.Array):
@@ -106,11 +123,11 @@ JIT_RUN = textwrap.dedent("""
 def jit_run(tmp_path_factory):
     out = tmp_path_factory.mktemp("jit")
     env = dict(os.environ, FIELDVANE_JIT="1")
-    done = subprocess.run([sys.executable, "-c", JIT_RUN, str(GOLDEN), str(out), MAGNITUDE_CASE], env=env,
+    done = subprocess.run([sys.executable, "-c", JIT_RUN, str(GOLDEN), str(out), MAGNITUDE_CASE + FRAMES_CASE], env=env,
                           capture_output=True, text=True, timeout=600)
     assert done.returncode == 0, done.stderr[-3000:]
     result = json.loads((out / "out.json").read_text())
-    result.update({k: np.load(out / f"{k}.npy") for k in ("u", "b", "nis", "flags", "magnitude")})
+    result.update({k: np.load(out / f"{k}.npy") for k in ("u", "b", "nis", "flags", "magnitude", "frames")})
     return result
 
 
@@ -147,6 +164,15 @@ def test_jit_and_this_process_correct_magnitudes_alike(jit_run):
     assert np.all(np.isfinite(here))
     assert np.allclose(here, jit_run["magnitude"], rtol=1e-12, atol=0)
     assert here.shape == jit_run["magnitude"].shape
+
+
+def test_jit_and_this_process_decode_the_same_frames(jit_run):
+    namespace = {}
+    exec(FRAMES_CASE, namespace)
+    here = namespace["frames_case"]()
+    # integers, float32 values widened and t_ns / 1e9 are exact: the two must agree bit for bit
+    assert here.shape == jit_run["frames"].shape and here.size > 39 * 11
+    assert np.array_equal(here, jit_run["frames"], equal_nan=True)
 
 
 def test_jit_and_this_process_format_the_same_text(jit_run, this_process_run):

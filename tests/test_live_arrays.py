@@ -1,0 +1,133 @@
+"""The live path as arrays: wire frames decoded into a SampleBlock, joined, sliced and tracked as the Samples were.
+
+References: Python's own struct module (the payload layout of docs/wire_format.md) and int / float division
+(the double nearest t_ns, divided by 1e9) for the decoded values; the per-Sample path for the tracker's output.
+"""
+
+from __future__ import annotations
+
+import struct
+from pathlib import Path
+
+import numpy as np
+import pytest
+
+from fieldvane.estimator.samples import CHANNELS_ONE_PROBE, CHANNELS_TWO_PROBES, Sample, SampleBlock
+from fieldvane.io.live import BinarySampleDecoder, join_samples, restart_times
+from fieldvane.io.wire import Frame, FrameDecoder, encode_frame, encode_payload
+
+U64 = (1 << 64) - 1
+GOLDEN = Path(__file__).parent / "golden"
+EXAMPLES = Path(__file__).parent.parent / "examples"
+
+
+def _frames(rng, n, values=8, seq0=0):
+    out = []
+    for k in range(n):
+        vals = tuple(float(np.float32(v)) for v in rng.normal(0, 0.3, values))
+        t_ns = int(rng.integers(0, 1 << 62)) if k % 7 else int(rng.integers(1 << 63, U64, dtype=np.uint64))
+        out.append(Frame(seq0 + k, t_ns, int(rng.integers(0, 1 << 16)), float(rng.uniform(1e3, 5e5)),
+                         float(rng.uniform(1e3, 5e5)), vals))
+    return out
+
+
+def _struct_fields(frame: Frame):
+    """The payload's fields read back with struct (the documented layout), independent of the decoder."""
+    p = encode_payload(frame)
+    seq, t_ns, status, n = struct.unpack_from("<IQHB", p, 4)
+    f_a, f_b = struct.unpack_from("<dd", p, 20)
+    return seq, t_ns, status, f_a, f_b, struct.unpack_from(f"<{n}f", p, 36)
+
+
+@pytest.mark.parametrize("values", [4, 8])
+def test_decoded_arrays_hold_each_frames_fields_exactly(values):
+    rng = np.random.default_rng(values)
+    frames = _frames(rng, 60, values)
+    arrays = FrameDecoder().feed_arrays(b"".join(encode_frame(f) for f in frames))
+    assert len(arrays) == 60 and arrays.kinds == (1 if values == 4 else 2)
+    for k, frame in enumerate(frames):
+        seq, t_ns, status, f_a, f_b, vals = _struct_fields(frame)
+        assert int(arrays.ints[k, 0]) == seq and int(arrays.ints[k, 1]) & U64 == t_ns
+        assert int(arrays.ints[k, 2]) == status and int(arrays.ints[k, 3]) == values
+        assert arrays.t[k] == t_ns / 1e9          # Python: the double nearest t_ns, then divided
+        assert arrays.f[k].tolist() == [f_a, f_b]
+        assert arrays.values[k, :values].tolist() == list(vals)
+        assert np.isnan(arrays.values[k, values:]).all()
+
+
+@pytest.mark.parametrize("values", [4, 8])
+def test_a_sample_block_equals_the_frames_samples(values):
+    rng = np.random.default_rng(10 + values)
+    frames = _frames(rng, 30, values, seq0=100) + _frames(rng, 5, values, seq0=3)     # a sequence reset
+    data = b"".join(encode_frame(f) for f in frames)
+    block = BinarySampleDecoder().feed(data)
+    reference = [f.to_sample() for f in FrameDecoder().feed(data)]
+    assert isinstance(block, SampleBlock) and len(block) == len(reference) == 35
+    assert block.channels == (CHANNELS_ONE_PROBE if values == 4 else CHANNELS_TWO_PROBES)
+    for got, ref in zip(block, reference):
+        assert (got.t, got.f_a, got.f_b, got.status, got.restarted, got.channels) == \
+               (ref.t, ref.f_a, ref.f_b, ref.status, ref.restarted, ref.channels)
+        assert np.array_equal(got.z, ref.z)
+    assert restart_times(block) == [reference[30].t]
+    assert restart_times(reference) == [reference[30].t]
+
+
+def test_mixed_probe_counts_come_as_samples():
+    rng = np.random.default_rng(3)
+    frames = _frames(rng, 3, 8) + _frames(rng, 3, 4, seq0=3)
+    got = BinarySampleDecoder().feed(b"".join(encode_frame(f) for f in frames))
+    assert isinstance(got, list) and [len(s.z) for s in got] == [4, 4, 4, 2, 2, 2]
+    assert all(isinstance(s, Sample) for s in got)
+
+
+def test_blocks_split_across_chunks_join_to_the_whole():
+    rng = np.random.default_rng(4)
+    data = b"".join(encode_frame(f) for f in _frames(rng, 50))
+    whole = BinarySampleDecoder().feed(data)
+    decoder = BinarySampleDecoder()
+    pieces = [decoder.feed(data[i:i + 45]) for i in range(0, len(data), 45)]
+    joined = join_samples([p for p in pieces if len(p)])
+    assert isinstance(joined, SampleBlock) and len(joined) == 50
+    for name in ("t", "f", "z", "status", "restarted"):
+        assert np.array_equal(getattr(joined, name), getattr(whole, name))
+    part = joined[10:20]
+    assert isinstance(part, SampleBlock) and np.array_equal(part.t, whole.t[10:20]) and part.channels == whole.channels
+    assert joined[-1].t == whole.t[-1] and joined[3].status == int(whole.status[3])
+    with pytest.raises(IndexError):
+        joined[50]
+
+
+def test_joining_blocks_of_different_channels_gives_samples():
+    rng = np.random.default_rng(5)
+    two = BinarySampleDecoder().feed(b"".join(encode_frame(f) for f in _frames(rng, 3, 8)))
+    one = BinarySampleDecoder().feed(b"".join(encode_frame(f) for f in _frames(rng, 2, 4)))
+    joined = join_samples([two, one])
+    assert isinstance(joined, list) and len(joined) == 5 and joined[3].channels == CHANNELS_ONE_PROBE
+    with pytest.raises(ValueError):
+        SampleBlock.concatenate([two, one])
+    assert join_samples([]) == []
+
+
+def test_the_tracker_gives_a_block_what_it_gives_its_samples(tmp_path):
+    from fieldvane.estimator.snapshot import SnapshotSolver
+    from fieldvane.estimator.tracker import Tracker
+    from fieldvane.firmware_sim.emitter import encode_records
+    from fieldvane.firmware_sim.scenario import load_scenario, simulate
+    from fieldvane.io.calfile import load_calibration
+
+    cal = load_calibration(GOLDEN / "golden_cal.json")
+    solver = SnapshotSolver.from_calibration(cal)
+    run = simulate(load_scenario(EXAMPLES / "static.toml", duration_s=2))
+    data = b"".join(rec for _, rec in encode_records(run, "binary"))
+    decoder = BinarySampleDecoder()
+    blocks = [decoder.feed(data[i:i + 150]) for i in range(0, len(data), 150)]
+    by_block, by_samples = Tracker(cal, None, solver.initiate), Tracker(cal, None, solver.initiate)
+    n = 0
+    for block in blocks:
+        if not len(block):
+            continue
+        a, b = by_block.step_record(block), by_samples.step_record(list(block))
+        n += len(a)
+        for name in ("t", "u", "b_nT", "sigma_deg", "flags", "nis"):
+            assert np.array_equal(getattr(a, name), getattr(b, name), equal_nan=True), name
+    assert n == len(run) and by_block.counters.as_dict() == by_samples.counters.as_dict()
