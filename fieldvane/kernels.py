@@ -117,7 +117,8 @@ def _check_arrays(name: str, args: tuple, specs, ndarray, offset: int = 0) -> No
         if not isinstance(a, ndarray):
             raise TypeError(f"{name} argument {pos}: expected a C-contiguous {ndim}-D {dtype} array, got "
                             f"{type(a).__name__}")
-        if a.dtype != dtype or a.ndim != ndim or not a.flags.c_contiguous:
+        # `is` first: numpy's built-in dtypes are single objects, so the usual case skips the slower comparison
+        if (a.dtype is not dtype and a.dtype != dtype) or a.ndim != ndim or not a.flags.c_contiguous:
             raise TypeError(f"{name} argument {pos}: expected a C-contiguous {ndim}-D {dtype} array, got "
                             f"{a.ndim}-D {a.dtype} (C-contiguous: {a.flags.c_contiguous})")
 

@@ -46,7 +46,8 @@ def record_rows(record) -> list[dict]:
     columns = estimate_columns(record.t, record.u, record.b_nT, record.sigma_deg, record.flags,
                                record.extra_columns())
     names = list(columns)
-    return [dict(zip(names, values)) for values in zip(*(np.asarray(columns[k]).tolist() for k in names))]
+    lists = [v.tolist() if isinstance(v, np.ndarray) else np.asarray(v).tolist() for v in columns.values()]
+    return [dict(zip(names, values)) for values in zip(*lists)]
 
 
 def _as_column(values) -> np.ndarray | None:

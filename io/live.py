@@ -37,6 +37,9 @@ INPUT_FORMATS = ("binary", "csv")
 Estimate = Callable[[Sample], "Mapping | None"]
 EstimateBatch = Callable[[list], "list[Mapping | None]"]
 REPEAT_LOG_S = 10.0          # a continuing problem is logged again at most this often
+# Python hands its interpreter lock between threads every 5 ms by default: the link's reader, the loop and the
+# loggers' writers would wait that long for one another. While the loop runs they take turns every 0.2 ms.
+LIVE_SWITCH_INTERVAL_S = 0.0002
 
 
 class BinarySampleDecoder:
@@ -263,6 +266,14 @@ class LiveLoop:
 
     def run(self) -> LiveSummary:
         """Process chunks until stop(); then shut down within ~1.5 s and return the summary."""
+        old_interval = sys.getswitchinterval()
+        sys.setswitchinterval(min(old_interval, LIVE_SWITCH_INTERVAL_S))
+        try:
+            return self._run()
+        finally:
+            sys.setswitchinterval(old_interval)
+
+    def _run(self) -> LiveSummary:
         interrupted = False
         next_log = self._clock() + self.log_interval_s
         next_check = next_status = 0.0

@@ -659,3 +659,22 @@ def test_second_ctrl_c_abandons_a_slow_capture_and_counts_what_it_lost(tmp_path)
     assert lost > 0 and int(c["capture.lost_abandoned"]) == lost      # batches are 256 KiB at most
     on_disk = b"".join(ch.data for ch in read_capture(tmp_path / "cap"))
     assert kept <= len(on_disk) <= kept + in_flight and on_disk == stream[:len(on_disk)]
+
+
+def test_threads_take_turns_every_fifth_of_a_millisecond_while_the_loop_runs():
+    # Python's default of 5 ms (sys.getswitchinterval) would let a logger's writer hold the loop that long.
+    from fieldvane.io.live import LIVE_SWITCH_INTERVAL_S
+
+    before = sys.getswitchinterval()
+    seen = []
+    port = serial.serial_for_url("loop://", timeout=0.05)
+    loop = LiveLoop(SerialLink("loop://", opener=lambda: port), make_decoder("binary"), toy_estimate, [], None,
+                    log=None, status=lambda lp: seen.append(sys.getswitchinterval()), status_interval_s=0.01)
+    th, result = start_loop(loop)
+    try:
+        assert loop.wait_for(lambda lp: len(seen) >= 2, TIMEOUT)
+    finally:
+        loop.stop()
+        th.join(TIMEOUT)
+    assert "summary" in result and max(seen) <= LIVE_SWITCH_INTERVAL_S <= 0.0002
+    assert sys.getswitchinterval() == before
