@@ -176,6 +176,7 @@ def test_live_latency_frame_to_sink(calibration, tmp_path, rate, outputs):
     proc.stdin.close()
     path = proc.stdout.readline().strip()
     latencies, after_arrival, t_start = [], [], []
+    in_situ: list[tuple[float, float]] = []          # (wall, thread CPU) s of each batch's estimation
     host_ns: list[int] = []
 
     def handed(count):
@@ -203,7 +204,9 @@ def test_live_latency_frame_to_sink(calibration, tmp_path, rate, outputs):
         if outputs == "floor":              # the baseline: the same loop with the estimation taken out
             handed(len(samples))
             return [None] * len(samples)
+        wall, cpu = time.perf_counter(), time.thread_time()
         rows = record_rows(tracker.step_record(samples))        # as `fieldvane run` does
+        in_situ.append((time.perf_counter() - wall, time.thread_time() - cpu))
         if not sinks:
             handed(len(samples))
         return rows
@@ -240,4 +243,9 @@ def test_live_latency_frame_to_sink(calibration, tmp_path, rate, outputs):
           f"\n  of which after arrival at the host: p50 {np.percentile(ours, 50):.3f} ms, "
           f"p99 {np.percentile(ours, 99):.3f} ms, max {ours.max():.2f} ms (the rest is the simulated sensor's "
           f"own lateness in sending and the pty)")
+    if in_situ:
+        cost = np.array(in_situ[len(in_situ) // 16:]) * 1e6
+        print(f"  estimation per batch in the loop: wall p50 {np.percentile(cost[:, 0], 50):.0f} us, p99 "
+              f"{np.percentile(cost[:, 0], 99):.0f} us; its thread's CPU p50 {np.percentile(cost[:, 1], 50):.0f} us, "
+              f"p99 {np.percentile(cost[:, 1], 99):.0f} us (cold caches: compare bench_tracker's warm step)")
     assert loop.samples > 0 and not math.isnan(p99)

@@ -25,17 +25,18 @@ from fieldvane.io.wire import Frame, FrameDecoder, encode_frame
 N_FRAMES = 5000
 
 
-def _stream(n=N_FRAMES, seed=1):
+def _stream(n=N_FRAMES, seed=1, mixed=True):
     rng = random.Random(seed)
     frames = []
     for s in range(n):
-        k = 8 if s % 2 else 4
+        k = 8 if s % 2 or not mixed else 4
         frames.append(Frame(s, 1_000_000 * s, 0, 350000.0 + rng.random(), 233500.0 + rng.random(),
                             tuple(float(np.float32(rng.uniform(-1, 1))) for _ in range(k))))
     return b"".join(encode_frame(f) for f in frames)
 
 
-STREAM = _stream()
+STREAM = _stream()                      # one- and two-probe frames in turn: the decoder's worst case
+TWO_PROBES = _stream(mixed=False)       # a sensor's usual stream
 _HDR = struct.Struct("<2sBBIQHBBdd")
 
 
@@ -77,6 +78,13 @@ def test_decoder_samples(benchmark):
     out = benchmark(lambda: dec("binary").feed(STREAM))
     assert len(out) == N_FRAMES
     _report(benchmark, "binary decoder -> Sample")
+
+
+@pytest.mark.benchmark(group="decoder")
+def test_decoder_samples_two_probes(benchmark):
+    out = benchmark(lambda: make_decoder("binary").feed(TWO_PROBES))      # one SampleBlock
+    assert len(out) == N_FRAMES
+    _report(benchmark, "binary decoder -> SampleBlock, two-probe frames")
 
 
 @pytest.mark.benchmark(group="decoder")

@@ -132,11 +132,19 @@ class FrameArrays:
         if not len(ints):
             return []
         if self.kinds == 3:
-            return [frame.to_sample() for frame in self.frames()]
+            return self._mixed_samples()
         values = self.values if self.kinds == 2 else np.ascontiguousarray(self.values[:, :4])
         return SampleBlock(self.t, self.f, values.view(np.complex128),
                            CHANNELS_TWO_PROBES if self.kinds == 2 else CHANNELS_ONE_PROBE,
                            status=ints[:, fc.O_STATUS], restarted=ints[:, fc.O_RESTARTED] != 0)
+
+    def _mixed_samples(self) -> list[Sample]:
+        """Return one- and two-probe rows as Samples, each with its own channels (a probe count changed)."""
+        z = {8: self.values.view(np.complex128), 4: np.ascontiguousarray(self.values[:, :4]).view(np.complex128)}
+        channels = {8: CHANNELS_TWO_PROBES, 4: CHANNELS_ONE_PROBE}
+        return [Sample(t, f_a, f_b, z[n][i], channels[n], status, bool(restarted))
+                for i, ((_seq, _t_ns, status, n, restarted), t, (f_a, f_b))
+                in enumerate(zip(self.ints.tolist(), self.t.tolist(), self.f.tolist()))]
 
     def frames(self) -> list[Frame]:
         """Return the rows as Frame objects (values as float32-exact floats, t_ns as the unsigned wire value)."""

@@ -74,10 +74,15 @@ def test_a_sample_block_equals_the_frames_samples(values):
 
 def test_mixed_probe_counts_come_as_samples():
     rng = np.random.default_rng(3)
-    frames = _frames(rng, 3, 8) + _frames(rng, 3, 4, seq0=3)
-    got = BinarySampleDecoder().feed(b"".join(encode_frame(f) for f in frames))
-    assert isinstance(got, list) and [len(s.z) for s in got] == [4, 4, 4, 2, 2, 2]
-    assert all(isinstance(s, Sample) for s in got)
+    frames = _frames(rng, 3, 8) + _frames(rng, 3, 4, seq0=3) + _frames(rng, 2, 8, seq0=1)    # and a restart
+    data = b"".join(encode_frame(f) for f in frames)
+    got = BinarySampleDecoder().feed(data)
+    assert isinstance(got, list) and [len(s.z) for s in got] == [4, 4, 4, 2, 2, 2, 4, 4]
+    for sample, ref in zip(got, [f.to_sample() for f in FrameDecoder().feed(data)], strict=True):
+        assert isinstance(sample, Sample) and np.array_equal(sample.z, ref.z)
+        assert (sample.t, sample.f_a, sample.f_b, sample.channels, sample.status, sample.restarted) == \
+               (ref.t, ref.f_a, ref.f_b, ref.channels, ref.status, ref.restarted)
+    assert [s.restarted for s in got] == [False] * 6 + [True, False]
 
 
 def test_blocks_split_across_chunks_join_to_the_whole():
