@@ -11,6 +11,9 @@ from pathlib import Path
 
 import numpy as np
 import pytest
+from hypothesis import HealthCheck, given, settings
+from hypothesis import strategies as st
+from test_fuzz_decoder import streams
 
 from fieldvane.estimator.samples import CHANNELS_ONE_PROBE, CHANNELS_TWO_PROBES, Sample, SampleBlock
 from fieldvane.io.live import BinarySampleDecoder, join_samples, restart_times
@@ -136,3 +139,20 @@ def test_the_tracker_gives_a_block_what_it_gives_its_samples(tmp_path):
         for name in ("t", "u", "b_nT", "sigma_deg", "flags", "nis"):
             assert np.array_equal(getattr(a, name), getattr(b, name), equal_nan=True), name
     assert n == len(run) and by_block.counters.as_dict() == by_samples.counters.as_dict()
+
+
+@settings(max_examples=150, deadline=None, suppress_health_check=[HealthCheck.too_slow])
+@given(stream=streams(), cuts=st.lists(st.integers(0, 4000), max_size=8))
+def test_the_live_samples_of_any_split_stream_are_its_frames_samples(stream, cuts):
+    # Reference: the whole stream's Frames (checked against the `cobs` package and binascii in
+    # tests/test_fuzz_decoder.py), each turned into a Sample by Frame.to_sample.
+    reference = [f.to_sample() for f in FrameDecoder().feed(stream)]
+    decoder = BinarySampleDecoder()
+    bounds = [0] + sorted(c for c in set(cuts) if c < len(stream)) + [len(stream)]
+    pieces = [decoder.feed(stream[a:b]) for a, b in zip(bounds, bounds[1:])]
+    got = list(join_samples([p for p in pieces if len(p)]))
+    assert len(got) == len(reference)
+    for sample, ref in zip(got, reference):
+        assert (sample.channels, sample.status, sample.restarted) == (ref.channels, ref.status, ref.restarted)
+        assert struct.pack("<3d", sample.t, sample.f_a, sample.f_b) == struct.pack("<3d", ref.t, ref.f_a, ref.f_b)
+        assert np.asarray(sample.z).tobytes() == np.asarray(ref.z).tobytes()       # NaN payloads too
