@@ -46,7 +46,7 @@ class SampleBlock:
     applied_b_nT: np.ndarray | None = None   # (N, 3) applied field, sensor frame (calibration scans)
     truth: dict[str, np.ndarray] = field(default_factory=dict)  # true_ux.. true_b_nT (simulator)
     metadata: dict[str, str] = field(default_factory=dict)      # from '# key: value' comment lines
-    skipped_rows: int = 0                     # malformed rows dropped (counted, never silent)
+    skipped_rows: int = 0                     # malformed rows dropped (counted, never silent; a slice has none)
     lines: np.ndarray | None = None           # (N,) int64 1-based source line of each row (text files)
     status: np.ndarray | None = None          # (N,) int64 sensor status bits (wire frames)
     restarted: np.ndarray | None = None       # (N,) bool: the source restarted just before the row
@@ -65,11 +65,13 @@ class SampleBlock:
             yield self.sample(i)
 
     def __getitem__(self, index):
-        """Row i as a Sample, or a slice of rows as a SampleBlock (per-row arrays sliced, metadata shared)."""
+        """Row i as a Sample, or a slice of rows as a SampleBlock (per-row arrays sliced, metadata copied)."""
         if not isinstance(index, slice):
             i = range(len(self))[index]
             return self.sample(i)
-        return SampleBlock(**{name: _rows(value, index) for name, value in self.__dict__.items()})
+        values = {name: _rows(value, index) for name, value in self.__dict__.items()}
+        values["skipped_rows"] = 0
+        return SampleBlock(**values)
 
     @classmethod
     def concatenate(cls, blocks: list[SampleBlock]) -> SampleBlock:
@@ -83,24 +85,30 @@ class SampleBlock:
         for name, value in first.__dict__.items():
             if name in _PER_ROW:
                 parts = [getattr(b, name) for b in blocks]
+                if name in _DEFAULTS and any(p is not None for p in parts):     # status 0, no restart where absent
+                    parts = [np.full(len(b), _DEFAULTS[name]) if p is None else p for b, p in zip(blocks, parts)]
                 joined[name] = None if any(p is None for p in parts) else np.concatenate(parts)
             elif name == "truth":
                 joined[name] = {k: np.concatenate([b.truth[k] for b in blocks]) for k in value
                                 if all(k in b.truth for b in blocks)}
             elif name == "skipped_rows":
                 joined[name] = sum(b.skipped_rows for b in blocks)
+            elif name == "metadata":
+                joined[name] = dict(value)
             else:
                 joined[name] = value
         return cls(**joined)
 
 
 _PER_ROW = ("t", "f", "z", "applied_b_nT", "lines", "status", "restarted")
+_DEFAULTS = {"status": np.int64(0), "restarted": np.False_}
 
 
 def _rows(value, index: slice):
-    """Return value's rows `index` when it is a per-row array (or a dict of them), else value itself."""
+    """Return value's rows `index` when it is a per-row array, a dict with per-row arrays sliced (a new dict), or
+    value itself."""
     if isinstance(value, np.ndarray):
         return value[index]
-    if isinstance(value, dict) and value and all(isinstance(v, np.ndarray) for v in value.values()):
-        return {k: v[index] for k, v in value.items()}
+    if isinstance(value, dict):
+        return {k: v[index] if isinstance(v, np.ndarray) else v for k, v in value.items()}
     return value

@@ -85,6 +85,25 @@ def feed_chunk(decoder, chunk) -> list[Sample]:
     return []
 
 
+_turns = {"loops": 0, "before": 0.0}
+_turns_lock = threading.Lock()
+
+
+def _fast_turns(start: bool) -> None:
+    """Set the live switch interval while any loop runs; the first loop to start keeps the process's own value and
+    the last to end puts it back (loops that overlap do not restore it under one another)."""
+    with _turns_lock:
+        if start:
+            if _turns["loops"] == 0:
+                _turns["before"] = sys.getswitchinterval()
+                sys.setswitchinterval(min(_turns["before"], LIVE_SWITCH_INTERVAL_S))
+            _turns["loops"] += 1
+        else:
+            _turns["loops"] -= 1
+            if _turns["loops"] == 0:
+                sys.setswitchinterval(_turns["before"])
+
+
 def join_samples(pieces: list) -> SampleBlock | list[Sample]:
     """Return the samples of several decoder results as one: a SampleBlock when all are blocks of the same
     channels (the binary decoder's usual case), else a list of Samples."""
@@ -266,12 +285,11 @@ class LiveLoop:
 
     def run(self) -> LiveSummary:
         """Process chunks until stop(); then shut down within ~1.5 s and return the summary."""
-        old_interval = sys.getswitchinterval()
-        sys.setswitchinterval(min(old_interval, LIVE_SWITCH_INTERVAL_S))
+        _fast_turns(True)
         try:
             return self._run()
         finally:
-            sys.setswitchinterval(old_interval)
+            _fast_turns(False)
 
     def _run(self) -> LiveSummary:
         interrupted = False

@@ -10,7 +10,6 @@ import numpy as np
 from fieldvane.estimator.samples import CHANNELS_ONE_PROBE, CHANNELS_TWO_PROBES, Sample, SampleBlock
 from fieldvane.io import frame_core as fc
 from fieldvane.io.framing import CobsError, cobs_decode, cobs_encode, crc16_ccitt_false
-from fieldvane.kernels import bind
 
 MAGIC = b"FV"
 VERSION = 1
@@ -24,6 +23,7 @@ _HEADER = struct.Struct("<2sBBIQHBBdd")
 _CRC = struct.Struct("<H")
 _VALUES = {4: struct.Struct("<4f"), 8: struct.Struct("<8f")}
 PAYLOAD_SIZES = {4: HEADER_SIZE + 16 + 2, 8: HEADER_SIZE + 32 + 2}   # 54 and 70 bytes
+MIN_FRAME_BYTES = PAYLOAD_SIZES[4] + 2      # the shortest valid frame on the wire: COBS adds a byte, then its 0x00
 
 # Status bits (u16), frozen numbers; bits 4-15 are reserved and passed on unchanged.
 STATUS_LOCKIN_OVERLOAD = 1 << 0
@@ -166,13 +166,25 @@ class FrameDecoder:
     """
 
     def __init__(self, max_encoded_len: int = MAX_ENCODED_LEN):
-        self.max_encoded_len = max_encoded_len
         self._state = np.zeros(fc.N_STATE, np.int64)
         self._state[fc.ST_FRESH] = 1
-        self._state[fc.ST_MAX_ENCODED_LEN] = max_encoded_len
-        self._pending = np.zeros(max(max_encoded_len, 1), np.uint8)
-        self._decode = bind(fc.decode_stream, self._pending, self._state)
+        self._pending = np.zeros(0, np.uint8)
+        self.max_encoded_len = max_encoded_len
         self.resyncs = 0              # resync() calls (link opened again, bytes lost upstream)
+
+    @property
+    def max_encoded_len(self) -> int:
+        """An encoded frame longer than this many bytes (before its 0x00) is garbage."""
+        return int(self._state[fc.ST_MAX_ENCODED_LEN])
+
+    @max_encoded_len.setter
+    def max_encoded_len(self, value: int) -> None:
+        value = int(value)
+        self._state[fc.ST_MAX_ENCODED_LEN] = value
+        if value > len(self._pending):      # grown, never shrunk: the bytes held stay
+            pending = np.zeros(value, np.uint8)
+            pending[:len(self._pending)] = self._pending
+            self._pending = pending
 
     def __getattr__(self, name: str):
         # frames_ok, crc_errors, bad_frames, seq_gaps (frames missing according to forward seq jumps), seq_resets
@@ -211,10 +223,11 @@ class FrameDecoder:
         """Return the frames completed by data as arrays, in order; malformed input is counted, never raised."""
         if not isinstance(data, (bytes, bytearray)):
             data = bytes(data)
-        rows = data.count(0)           # a frame ends at a 0x00: at most one per delimiter
+        # A frame ends at a 0x00 and takes at least MIN_FRAME_BYTES with it: rows for at most that many.
+        rows = min(data.count(0), (self.pending + len(data)) // MIN_FRAME_BYTES + 1)
         ints, t = np.empty((rows, fc.N_OUT_INT), np.int64), np.empty(rows)
         f, values = np.empty((rows, 2)), np.empty((rows, 8))
-        n = self._decode(np.frombuffer(data, np.uint8), ints, t, f, values)
+        n = fc.decode_stream(self._pending, self._state, np.frombuffer(data, np.uint8), ints, t, f, values)
         if n < rows:
             ints, t, f, values = ints[:n], t[:n], f[:n], values[:n]
         return FrameArrays(ints, t, f, values, int(self._state[fc.ST_KINDS]))

@@ -69,12 +69,16 @@ FRAMES_CASE = textwrap.dedent("""
         import numpy as np
         from fieldvane.io.wire import Frame, FrameDecoder, encode_frame
         seqs = list(range(30)) + list(range(5, 15))
-        frames = [Frame(s, 10**9 + 997 * k, k % 5, 1e5 + k / 3, 2e5 - k / 7,
+        frames = [Frame(s, (10**9 if k % 4 else 2**63 + 12345) + 997 * k, k % 5, 1e5 + k / 3, 2e5 - k / 7,
                         tuple(0.25 * k - j / 3 for j in range(8 if k % 3 else 4))) for k, s in enumerate(seqs)]
-        data = bytearray(b"".join(encode_frame(f) for f in frames))
+        data = bytearray(b"".join(encode_frame(f) for f in frames[:20]) + bytes(range(1, 256)) * 2 + bytes(1)
+                         + b"".join(encode_frame(f) for f in frames[20:]))
         data[200] ^= 0x10
         decoder = FrameDecoder()
         arrays = [decoder.feed_arrays(bytes(data[i:i + 97])) for i in range(0, len(data), 97)]
+        decoder.feed(bytes([7]) * 30)
+        decoder.resync()
+        arrays.append(decoder.feed_arrays(encode_frame(frames[0])))
         rows = np.vstack([np.column_stack([a.ints.astype(float), a.t, a.f, a.values]) for a in arrays])
         return np.concatenate([rows.ravel(), np.array(list(decoder.counters().values()), float)])
 """)

@@ -678,3 +678,41 @@ def test_threads_take_turns_every_fifth_of_a_millisecond_while_the_loop_runs():
         th.join(TIMEOUT)
     assert "summary" in result and max(seen) <= LIVE_SWITCH_INTERVAL_S <= 0.0002
     assert sys.getswitchinterval() == before
+
+
+def test_a_sensor_restart_is_counted_and_said_once_on_the_batch_path():
+    first, a = frames_stream(30, seed=21, first_seq=500)
+    again, b = frames_stream(20, seed=22, first_seq=1)         # the sequence steps back: a restart
+    port = serial.serial_for_url("loop://", timeout=0.05)
+    logs, seen = [], []
+
+    def estimate_batch(samples):
+        seen.extend(s.restarted for s in samples)
+        return [None] * len(samples)
+
+    loop = LiveLoop(SerialLink("loop://", opener=lambda: port), make_decoder("binary"), toy_estimate, [], None,
+                    log=logs.append, estimate_batch=estimate_batch)
+    th, result = start_loop(loop)
+    try:
+        assert loop.link.connected.wait(TIMEOUT)
+        port.write(a + b[1:])
+        assert loop.wait_for(lambda lp: lp.samples == 50, TIMEOUT)
+    finally:
+        loop.stop()
+        th.join(TIMEOUT)
+    restart_t = again[0].t_ns / 1e9
+    assert loop.restarts == 1 and seen == [False] * 30 + [True] + [False] * 19
+    said = [line for line in logs if "restarted" in line]
+    assert said == [f"fieldvane live: the sensor restarted (sequence reset) at t={restart_t!r}; tracking starts afresh"]
+
+
+def test_overlapping_loops_put_the_switch_interval_back_only_when_the_last_ends():
+    from fieldvane.io.live import LIVE_SWITCH_INTERVAL_S, _fast_turns
+
+    before = sys.getswitchinterval()
+    _fast_turns(True)
+    _fast_turns(True)
+    _fast_turns(False)
+    assert sys.getswitchinterval() == pytest.approx(LIVE_SWITCH_INTERVAL_S)      # the second loop still runs
+    _fast_turns(False)
+    assert sys.getswitchinterval() == before

@@ -116,7 +116,8 @@ def test_joining_blocks_of_different_channels_gives_samples():
     assert join_samples([]) == []
 
 
-def test_the_tracker_gives_a_block_what_it_gives_its_samples(tmp_path):
+@pytest.mark.parametrize("chunk", [150, 3000])
+def test_the_tracker_gives_a_block_what_it_gives_its_samples(chunk):
     from fieldvane.estimator.snapshot import SnapshotSolver
     from fieldvane.estimator.tracker import Tracker
     from fieldvane.firmware_sim.emitter import encode_records
@@ -125,20 +126,69 @@ def test_the_tracker_gives_a_block_what_it_gives_its_samples(tmp_path):
 
     cal = load_calibration(GOLDEN / "golden_cal.json")
     solver = SnapshotSolver.from_calibration(cal)
-    run = simulate(load_scenario(EXAMPLES / "static.toml", duration_s=2))
-    data = b"".join(rec for _, rec in encode_records(run, "binary"))
+    run = simulate(load_scenario(EXAMPLES / "static.toml", duration_s=3))
+    frames = FrameDecoder().feed(b"".join(rec for _, rec in encode_records(run, "binary")))
+    n = len(frames)
+    # probe 2 missing for 40 frames (one-probe frames), then the sensor restarts half way (sequence reset)
+    edited = [Frame(f.seq if k < n // 2 else k - n // 2, f.t_ns, f.status, f.f_a, f.f_b,
+                    f.values[:4] if n // 3 < k < n // 3 + 40 else f.values) for k, f in enumerate(frames)]
+    data = b"".join(encode_frame(f) for f in edited)
     decoder = BinarySampleDecoder()
-    blocks = [decoder.feed(data[i:i + 150]) for i in range(0, len(data), 150)]
+    blocks = [b for b in (decoder.feed(data[i:i + chunk]) for i in range(0, len(data), chunk)) if len(b)]
+    assert any(isinstance(b, SampleBlock) and b.channels == CHANNELS_ONE_PROBE for b in blocks) or chunk > 1000
     by_block, by_samples = Tracker(cal, None, solver.initiate), Tracker(cal, None, solver.initiate)
-    n = 0
+    count = 0
     for block in blocks:
-        if not len(block):
-            continue
         a, b = by_block.step_record(block), by_samples.step_record(list(block))
-        n += len(a)
+        count += len(a)
         for name in ("t", "u", "b_nT", "sigma_deg", "flags", "nis"):
             assert np.array_equal(getattr(a, name), getattr(b, name), equal_nan=True), name
-    assert n == len(run) and by_block.counters.as_dict() == by_samples.counters.as_dict()
+    assert count == n and by_block.counters.as_dict() == by_samples.counters.as_dict()
+    assert by_block.counters.restarts == 1
+
+
+def test_resync_ends_a_discarded_run_and_the_next_frame_is_decoded():
+    # docs/wire_format.md: a resync starts afresh at the next byte; what was pending counts as resync bytes.
+    frame = encode_frame(_frames(np.random.default_rng(6), 1)[0])
+    decoder = FrameDecoder()
+    assert decoder.feed(b"\x01" * 300) == []                       # an oversize run, still going
+    decoder.resync()
+    assert len(decoder.feed(frame)) == 1
+    c = decoder.counters()
+    assert (c["resync_bytes"], c["resyncs"], c["frames_ok"], c["bad_frames"]) == (300, 1, 1, 0)
+    decoder.feed(b"\x02\x03\x04")
+    decoder.resync()
+    assert decoder.counters()["resync_bytes"] == 303 and decoder.pending == 0
+
+
+def test_reset_sequence_forgets_the_last_number_and_the_limit_can_change():
+    rng = np.random.default_rng(7)
+    ten, three = _frames(rng, 2, seq0=10), _frames(rng, 1, seq0=3)
+    for reset in (False, True):
+        decoder = FrameDecoder()
+        decoder.feed(b"".join(encode_frame(f) for f in ten))
+        if reset:
+            decoder.reset_sequence()
+        (got,) = decoder.feed(encode_frame(three[0]))
+        assert got.restarted is (not reset) and decoder.seq_resets == (0 if reset else 1)
+    decoder = FrameDecoder()
+    decoder.max_encoded_len = 60                  # a 70-byte payload encodes to 71 bytes and its 0x00: too long
+    assert decoder.feed(encode_frame(ten[0])) == [] and decoder.bad_frames == 0 and decoder.resync_bytes == 71
+    assert decoder.feed(encode_frame(ten[1])) == [] and decoder.bad_frames == 1
+    decoder.max_encoded_len = 256
+    assert len(decoder.feed(encode_frame(three[0]))) == 1
+
+
+def test_a_chunk_of_delimiters_does_not_reserve_memory_per_byte():
+    import tracemalloc
+
+    tracemalloc.start()
+    try:
+        FrameDecoder().feed_arrays(b"\x00" * 2_000_000)
+        peak = tracemalloc.get_traced_memory()[1]
+    finally:
+        tracemalloc.stop()
+    assert peak < 16e6          # rows for at most one frame per 56 bytes, not one per 0x00 (256 MB)
 
 
 @settings(max_examples=150, deadline=None, suppress_health_check=[HealthCheck.too_slow])
