@@ -22,7 +22,6 @@ from fieldvane.estimator.flags import EstimateFlag
 from fieldvane.estimator.magnitude import DISAGREE_SIGMAS
 
 MAGNITUDE_STRIDE = 16     # samples between evaluations of the calibrated magnitude corrections
-DENSE_SAMPLES = 4 * MAGNITUDE_STRIDE     # a block of at most this many samples is evaluated sample by sample
 _SERIES = 6               # per knot: correction of isotope a, b (nT); fusion weight a, b; sigma_b; sigma_diff (nT)
 _DISAGREE = int(EstimateFlag.MAGNITUDE_DISAGREE)
 _NO_ROWS, _NO_SERIES = np.zeros(0, np.intp), np.zeros((0, _SERIES))     # a dense block's knots (never written)
@@ -33,7 +32,7 @@ class MagnitudeKnots:
 
     def __init__(self, model, gammas_hz_per_nT: np.ndarray, n: int):
         self.model, self.gammas, self.n = model, gammas_hz_per_nT, n
-        self.dense = n <= DENSE_SAMPLES
+        self.dense = n <= 4 * MAGNITUDE_STRIDE
         if self.dense:                    # evaluated sample by sample: no knots (a live batch, every time)
             self.rows, self.series = _NO_ROWS, _NO_SERIES
         else:
@@ -81,16 +80,19 @@ class MagnitudeKnots:
         their own |B| (f / gamma) corrected by the model where it gives one, MAGNITUDE_DISAGREE judged against the
         corrected isotopes' uncertainty (estimator/magnitude.py's rule), given f_hz (N, 2) Hz, u (N, 3) sensor frame
         and sigma_deg (N,) deg. New arrays; the arguments are left as they are."""
-        if self.dense:
-            return correct_samples(self.model, f_hz, u, sigma_deg, b_nT, per_nT, flags, tolerance)
-        from fieldvane.estimator import magnitude_core as core     # compiled: loaded only where |B| is corrected
-
         b = np.array(b_nT, np.float64)
         per = np.array(per_nT, np.float64)
         flags = np.array(flags, np.int64)
         sigma_b = np.empty(b.shape[0])
-        per_c, fused, sb, sd = self.corrected(lo, f_hz, u, sigma_deg)
-        core.apply_corrections(per_c, fused, sb, sd, tolerance, DISAGREE_SIGMAS, _DISAGREE, b, per, flags, sigma_b)
+        if self.dense:
+            self.model.row_corrector()(np.ascontiguousarray(f_hz, np.float64), np.ascontiguousarray(u, np.float64),
+                                       np.ascontiguousarray(sigma_deg, np.float64), tolerance, DISAGREE_SIGMAS,
+                                       _DISAGREE, b, per, flags, sigma_b)
+        else:
+            from fieldvane.estimator import magnitude_core as core     # compiled: loaded only where |B| is corrected
+
+            per_c, fused, sb, sd = self.corrected(lo, f_hz, u, sigma_deg)
+            core.apply_corrections(per_c, fused, sb, sd, tolerance, DISAGREE_SIGMAS, _DISAGREE, b, per, flags, sigma_b)
         return b, per, sigma_b, flags
 
     def corrected(self, lo: int, f_hz: np.ndarray, u: np.ndarray, sigma_deg: np.ndarray):
@@ -111,20 +113,6 @@ class MagnitudeKnots:
         fused = np.where(both, (w * np.where(np.isfinite(per_c), per_c, 0.0)).sum(axis=1),
                          np.where(np.isfinite(per_c[:, 0]), per_c[:, 0], per_c[:, 1]))
         return per_c, fused, np.ascontiguousarray(sigma_b), np.ascontiguousarray(sigma_diff)
-
-
-def correct_samples(model, f_hz: np.ndarray, u: np.ndarray, sigma_deg: np.ndarray, b_nT: np.ndarray,
-                    per_nT: np.ndarray, flags: np.ndarray, tolerance: float):
-    """Return apply()'s (|B| (N,) nT, per isotope (N, 2) nT, sigma_b (N,) nT, flags (N,)) with the model evaluated at
-    every sample (a block of at most 4 strides: a live batch); new arrays, the arguments are left as they are."""
-    b = np.array(b_nT, np.float64)
-    per = np.array(per_nT, np.float64)
-    flags = np.array(flags, np.int64)
-    sigma_b = np.empty(b.shape[0])
-    model.row_corrector()(np.ascontiguousarray(f_hz, np.float64), np.ascontiguousarray(u, np.float64),
-                          np.ascontiguousarray(sigma_deg, np.float64), tolerance, DISAGREE_SIGMAS, _DISAGREE,
-                          b, per, flags, sigma_b)
-    return b, per, sigma_b, flags
 
 
 def _interp_finite(x: np.ndarray, xp: np.ndarray, fp: np.ndarray) -> np.ndarray:

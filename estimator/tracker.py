@@ -48,7 +48,7 @@ from fieldvane.estimator.filter_settings import FilterSettings
 from fieldvane.estimator.flags import EstimateFlag as F
 from fieldvane.estimator.lockin_noise import (autocorrelation, correlation_factor, group_delay_s,
                                               second_difference_variance)
-from fieldvane.estimator.magnitude_knots import DENSE_SAMPLES, MagnitudeKnots, correct_samples
+from fieldvane.estimator.magnitude_knots import MagnitudeKnots
 from fieldvane.estimator.median import median
 from fieldvane.estimator.response import to_real
 from fieldvane.estimator.samples import Sample, SampleBlock, channel_probe
@@ -550,12 +550,9 @@ class Tracker:
         lo.. of the block `knots` was advanced through, or a block of their own."""
         n = len(b)
         if knots is None:
-            mm = getattr(self.calibration, "magnitude_model", None)
-            if mm is None or n == 0:
+            knots = self._knots(n)
+            if knots is None:
                 return b, per, np.full(n, np.nan), flags
-            if n <= DENSE_SAMPLES:           # a live batch: the model at every sample, no knots
-                return correct_samples(mm, f_hz, u, sigma_deg, b, per, flags, self.settings.magnitude_tolerance)
-            knots = MagnitudeKnots(mm, self._gammas_array, n)
             knots.advance(n, f_hz, u, sigma_deg)
         return knots.apply(lo, f_hz, u, sigma_deg, b, per, flags, self.settings.magnitude_tolerance)
 

@@ -4,8 +4,8 @@ One pass over the received bytes splits them at each 0x00, undoes COBS, checks t
 the header, tracks the sequence number and writes each valid frame as one row of two arrays. It is the
 whole of FrameDecoder's state machine (io/wire.py keeps the state in a small int64 array and the bytes of
 an unfinished frame in a buffer between calls), so the counters, the frames and every edge case are the
-ones docs/wire_format.md states; io/wire.py's pure-Python encode/decode of one payload is the reference
-the tests compare it with.
+ones docs/wire_format.md states. The tests compare it with an oracle built on the `cobs` package, binascii and
+struct (tests/test_fuzz_decoder.py, tests/test_live_arrays.py).
 """
 
 from __future__ import annotations
@@ -38,10 +38,14 @@ N_STATE = 17
 O_SEQ, O_T_NS, O_STATUS, O_N_VALUES, O_RESTARTED = 0, 1, 2, 3, 4
 N_OUT_INT = 5
 
-HEADER_SIZE = 36
+# The format's constants (io/wire.py takes them from here: one definition)
+MAGIC = (0x46, 0x56)        # b"FV"
+VERSION = 1
+KIND_SAMPLE = 1
+HEADER_SIZE = 36            # bytes 0..35: magic .. f_b
 SEQ_MODULUS = 1 << 32
-SEQ_HALF = 1 << 31
-_MAGIC0, _MAGIC1, _VERSION, _KIND_SAMPLE = 0x46, 0x56, 1, 1      # 'F', 'V'
+SEQ_HALF = 1 << 31          # a step of more than this is a step backwards (sensor restart)
+_MAGIC0, _MAGIC1 = MAGIC
 
 # outcome of one candidate
 _OK, _CRC, _BAD = 0, 1, 2
@@ -103,7 +107,7 @@ def _candidate(enc, n_enc, payload, word, out_i, out_t, out_f, out_v, row):
         return _CRC
     if n < HEADER_SIZE + 2:
         return _BAD
-    if payload[0] != _MAGIC0 or payload[1] != _MAGIC1 or payload[2] != _VERSION or payload[3] != _KIND_SAMPLE:
+    if payload[0] != _MAGIC0 or payload[1] != _MAGIC1 or payload[2] != VERSION or payload[3] != KIND_SAMPLE:
         return _BAD
     n_values = np.int64(payload[18])
     if n_values != 4 and n_values != 8:

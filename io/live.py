@@ -389,8 +389,9 @@ class LiveLoop:
         for start in range(0, len(samples), size):
             if self._paused_at(samples, host_ns, start):
                 return
-            batch = samples[start:start + size]
-            self.sample_host_times_ns = host_ns[start:start + size]
+            whole = start == 0 and len(samples) <= size         # the usual batch: no copy of it
+            batch = samples if whole else samples[start:start + size]
+            self.sample_host_times_ns = host_ns if whole else host_ns[start:start + size]
             self.samples += len(batch)
             for t in restart_times(batch):
                 self._note_restart(t)

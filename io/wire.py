@@ -9,15 +9,11 @@ import numpy as np
 
 from fieldvane.estimator.samples import CHANNELS_ONE_PROBE, CHANNELS_TWO_PROBES, Sample, SampleBlock
 from fieldvane.io import frame_core as fc
+from fieldvane.io.frame_core import HEADER_SIZE, KIND_SAMPLE, SEQ_HALF, SEQ_MODULUS, VERSION
 from fieldvane.io.framing import CobsError, cobs_decode, cobs_encode, crc16_ccitt_false
 
-MAGIC = b"FV"
-VERSION = 1
-KIND_SAMPLE = 1
-HEADER_SIZE = 36            # bytes 0..35: magic .. f_b
+MAGIC = bytes(fc.MAGIC)
 MAX_ENCODED_LEN = 256       # an encoded frame longer than this (before its 0x00) is garbage
-SEQ_MODULUS = 1 << 32
-SEQ_HALF = 1 << 31          # a step of more than this is a step backwards (sensor restart)
 
 _HEADER = struct.Struct("<2sBBIQHBBdd")
 _CRC = struct.Struct("<H")
