@@ -131,11 +131,20 @@ def clock():
         starts.append(now)
         print(repr(now), flush=True)
     return now
+sent = []                           # when each frame's write into the pty returned (CLOCK_MONOTONIC)
+send = sink.send
+def stamped_send(data, wait, stop):
+    ok = send(data, wait, stop)
+    sent.append(time.monotonic())
+    return ok
+sink.send = stamped_send
 emitter = Emitter(run, sink, clock=clock)
 time.sleep(float(sys.argv[1]))
 emitter.start()
 emitter.wait_sent(1e6)
 print(emitter.stats.records_dropped, flush=True)
+import numpy
+numpy.save(sys.argv[2], numpy.array(sent))
 emitter.stop()
 """
 
@@ -148,7 +157,12 @@ def test_live_latency_frame_to_sink(calibration, tmp_path, rate, outputs):
     --capture DIR --out est.csv` runs it (raw bytes to the capture's writer thread, records to a CSV logger's thread):
     latency from each frame's scheduled send time to the moment its estimate is handed to the last logger (p50, p99,
     max), the part of it after the frame reached the host, frames lost, and the process's CPU time per frame. The
-    baseline in the same run ("floor"): the same loop and decoder with the estimation taken out."""
+    baseline in the same run ("floor"): the same loop and decoder with the estimation taken out.
+
+    "After arrival" starts at the read that brought the frame: a frame that waited in the kernel while the loop was
+    busy is stamped when the loop reads it (the loop reads the port itself), so between designs compare "from the
+    frame's write into the pty", which starts when the sensor process's write returned (the same clock)."""
+    import gc
     import math
     import resource
 
@@ -170,12 +184,15 @@ def test_live_latency_frame_to_sink(calibration, tmp_path, rate, outputs):
     table, _ = load_or_build_table(cal, cache_dir_for(calibration))
     solver = SnapshotSolver.from_calibration(cal, table)
     tracker = Tracker(cal, None, solver.initiate, sample_rate_hz=rate)
-    proc = subprocess.Popen([sys.executable, "-c", SENSOR_PROCESS, "2.0"], stdin=subprocess.PIPE,
+    sent_path = tmp_path / "sent.npy"
+    proc = subprocess.Popen([sys.executable, "-c", SENSOR_PROCESS, "2.0", str(sent_path)], stdin=subprocess.PIPE,
                             stdout=subprocess.PIPE, text=True)
     proc.stdin.write(EXAMPLE_10KHZ % (rate, seconds))
     proc.stdin.close()
     path = proc.stdout.readline().strip()
     latencies, after_arrival, t_start = [], [], []
+    done_t: list[float] = []          # sensor time (s) of each sample whose estimate was handed over ...
+    done_at: list[float] = []         # ... and when (CLOCK_MONOTONIC s)
     in_situ: list[tuple[float, float]] = []          # (wall, thread CPU) s of each batch's estimation
     host_ns: list[int] = []
 
@@ -183,7 +200,9 @@ def test_live_latency_frame_to_sink(calibration, tmp_path, rate, outputs):
         now = time.monotonic()
         if t_start:
             latencies.extend(now - (t_start[0] + t) for t in batch[-1][:count])
-            # the part this tool adds: from the reader thread receiving the frame's last byte
+            done_t.extend(batch[-1][:count])
+            done_at.extend([now] * count)
+            # the part this tool adds: from the read that brought the frame's last byte
             after_arrival.extend(now - ns * 1e-9 for ns in host_ns[:count])
         del batch[-1][:count]
         del host_ns[:count]
@@ -220,6 +239,15 @@ def test_live_latency_frame_to_sink(calibration, tmp_path, rate, outputs):
     link = SerialLink(path, clock=time.monotonic_ns)      # arrival times on the sensor process's clock
     loop = LiveLoop(link, BinarySampleDecoder(), lambda s: None, sinks, capture, log=None,
                     estimate_batch=estimate_batch)
+    gcs: list[list[float]] = []         # [duration s, generation] of each garbage collection in the process
+
+    def collected(phase, info):
+        if phase == "start":
+            gcs.append([time.perf_counter(), info["generation"]])
+        elif gcs:
+            gcs[-1][0] = time.perf_counter() - gcs[-1][0]
+
+    gc.callbacks.append(collected)
     thread = threading.Thread(target=loop.run, daemon=True)
     try:
         thread.start()
@@ -236,13 +264,26 @@ def test_live_latency_frame_to_sink(calibration, tmp_path, rate, outputs):
     lat = np.array(latencies[rate // 2:]) * 1e3        # after the first half second (acquisition, caches)
     p50, p99, worst = np.percentile(lat, 50), np.percentile(lat, 99), lat.max()
     ours = np.array(after_arrival[rate // 2:]) * 1e3
+    # The measure that does not depend on where this process stamps arrival: from the sensor process's write of
+    # the frame into the pty returning to the estimate being handed over (both on CLOCK_MONOTONIC).
+    sent = np.load(sent_path)
+    k = np.rint(np.array(done_t) * rate).astype(np.int64)
+    from_write = ((np.array(done_at) - sent[k]) * 1e3)[rate // 2:]
     total = int(rate * seconds)
     print(f"\n{rate / 1000:g} kHz live, outputs {outputs}: {loop.samples} of {total} frames estimated "
           f"({loop.samples / max(loop.chunks, 1):.1f} per chunk), latency p50 {p50:.3f} ms, p99 {p99:.3f} ms, max "
           f"{worst:.2f} ms; sensor dropped {dropped}; CPU {cpu_us:.0f} us per frame"
           f"\n  of which after arrival at the host: p50 {np.percentile(ours, 50):.3f} ms, "
           f"p99 {np.percentile(ours, 99):.3f} ms, max {ours.max():.2f} ms (the rest is the simulated sensor's "
-          f"own lateness in sending and the pty)")
+          f"own lateness in sending and the pty)"
+          f"\n  from the frame's write into the pty: p50 {np.percentile(from_write, 50):.3f} ms, "
+          f"p99 {np.percentile(from_write, 99):.3f} ms, max {from_write.max():.2f} ms")
+    gc.callbacks.remove(collected)
+    g = np.array(gcs).reshape(-1, 2)
+    print("  garbage collections from the loop's start (generation: count, longest): " + ", ".join(
+        f"{gen}: {int(np.sum(g[:, 1] == gen))}, {np.max(g[g[:, 1] == gen, 0], initial=0) * 1e3:.2f} ms" for gen in range(3)))
+    if loop.samples < total:
+        print("  counters:", loop.counters())
     if in_situ:
         cost = np.array(in_situ[len(in_situ) // 16:]) * 1e6
         print(f"  estimation per batch in the loop: wall p50 {np.percentile(cost[:, 0], 50):.0f} us, p99 "

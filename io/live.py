@@ -1,5 +1,5 @@
-"""The live loop: link -> capture (first, in the link's reader) -> decoder -> estimate -> sinks,
-and capture replay.
+"""The live loop: link -> capture (first, in whichever thread read the bytes) -> decoder -> estimate -> sinks,
+and capture replay. The loop thread itself waits on a plain posix port and reads it (see serial_link).
 
 Every byte read goes to the capture before anything that may drop it: the capture has its own
 bounded buffer and writer thread, and what it cannot store is counted, marked in the files and
@@ -15,6 +15,7 @@ filter, within rounding (the sample rate is learned from the timestamps as they 
 from __future__ import annotations
 
 import dataclasses
+import gc
 import signal
 import sys
 import threading
@@ -85,23 +86,30 @@ def feed_chunk(decoder, chunk) -> list[Sample]:
     return []
 
 
-_turns = {"loops": 0, "before": 0.0}
+_turns = {"loops": 0, "before": 0.0, "froze": False}
 _turns_lock = threading.Lock()
 
 
 def _fast_turns(start: bool) -> None:
-    """Set the live switch interval while any loop runs; the first loop to start keeps the process's own value and
-    the last to end puts it back (loops that overlap do not restore it under one another)."""
+    """While any loop runs: the live switch interval, and every object alive at the start (modules, compiled
+    kernels, the calibration and its table) frozen out of the cyclic garbage collector's reach -- a full
+    collection scanned them all, 65-70 ms with the loop stopped (700 frames at 10 kHz). The first loop to
+    start keeps the process's own settings and the last to end puts them back (overlapping loops do not
+    restore them under one another)."""
     with _turns_lock:
         if start:
             if _turns["loops"] == 0:
                 _turns["before"] = sys.getswitchinterval()
                 sys.setswitchinterval(min(_turns["before"], LIVE_SWITCH_INTERVAL_S))
+                _turns["froze"] = gc.get_freeze_count() == 0      # (a process that froze its own keeps them)
+                gc.freeze()
             _turns["loops"] += 1
         else:
             _turns["loops"] -= 1
             if _turns["loops"] == 0:
                 sys.setswitchinterval(_turns["before"])
+                if _turns["froze"]:
+                    gc.unfreeze()
 
 
 def join_samples(pieces: list) -> SampleBlock | list[Sample]:
@@ -211,6 +219,8 @@ class LiveLoop:
         self.capture: CaptureThread | None = capture
         if capture is not None and link.capture is not capture:
             link.attach_capture(capture)
+        if not link.started:
+            link.share_reads()      # this loop waits on the port itself (a plain posix port): one thread per frame
         self.log = log or (lambda line: None)
         self.log_interval_s = log_interval_s
         self.sink_close_timeout_s = sink_close_timeout_s
@@ -304,12 +314,11 @@ class LiveLoop:
                 if self.estimate_batch is not None:
                     # Everything that arrived meanwhile in one go: a loop that falls behind catches up in larger
                     # batches instead of paying the per-call cost for every chunk.
-                    chunks = self.link.get_many(timeout=0.1)
+                    chunks = self.link.take(timeout=0.1)
                     if chunks:
                         self._process_many(chunks)
                 else:
-                    chunk = self.link.get(timeout=0.1)
-                    if chunk is not None:
+                    for chunk in self.link.take(timeout=0.1, limit=1):
                         self._process(chunk)
                 now = self._clock()
                 if now >= next_check:

@@ -1,8 +1,17 @@
-"""The serial link: a reader thread that only reads bytes, stamps host receive times, hands them
-to the capture first and then to a bounded queue for the estimator; reopens with back-off when
-the port vanishes. Ports are opened by pyserial URL (a device path, a pty path, `loop://`,
-`socket://HOST:PORT`, ...) without the input flush pyserial does on open, so nothing that
-arrived before the open is thrown away."""
+"""The serial link: reads bytes, stamps host receive times, hands them to the capture first and
+then to a bounded queue for the estimator; reopens with back-off when the port vanishes. Ports
+are opened by pyserial URL (a device path, a pty path, `loop://`, `socket://HOST:PORT`, ...)
+without the input flush pyserial does on open, so nothing that arrived before the open is thrown
+away.
+
+Who reads: a background thread, always, for ports without a plain descriptor. For a posix serial
+port or pty whose consumer asked for it (`share_reads`, as the live loop does), the consumer reads
+the port itself in `take` while it is waiting for bytes anyway, and the thread only opens the port
+and reads what the consumer has left waiting for `watch_s` (while it estimates a long batch, or
+is held up). One thread waking per frame instead of two, and no hand-over of Python's interpreter
+lock between them: at 10 kHz that was most of the loop's latency. Every read and its hand-over
+happen under one lock, so chunks keep the order they were read in whoever read them.
+"""
 
 from __future__ import annotations
 
@@ -16,6 +25,9 @@ from collections.abc import Callable
 from fieldvane.io.capture import EVENT_LINK_OPEN, EVENT_LOST, Chunk
 
 DEFAULT_MAX_QUEUED_BYTES = 16 * 1024 * 1024
+# With shared reads, the thread reads what the consumer left in the port this long (s): the kernel
+# holds at most about this much of the stream (6 KB at 10 kHz) whatever the consumer is doing.
+DEFAULT_WATCH_S = 0.01
 
 
 class ChunkQueue:
@@ -114,7 +126,8 @@ class SerialLink:
                  chunk_size: int = 4096, max_queued_bytes: int = DEFAULT_MAX_QUEUED_BYTES,
                  reconnect_min_s: float = 0.05, reconnect_max_s: float = 2.0,
                  opener: Callable[[], object] | None = None,
-                 clock: Callable[[], int] = time.time_ns, capture=None, **serial_kwargs):
+                 clock: Callable[[], int] = time.time_ns, capture=None,
+                 watch_s: float = DEFAULT_WATCH_S, **serial_kwargs):
         self.url = url
         self.baudrate = baudrate
         self.read_timeout = read_timeout
@@ -131,7 +144,15 @@ class SerialLink:
         self._state = threading.Condition()
         self._waiting = 0               # threads in wait_for (only they need a notification per read)
         self._port = None
+        self._fd: int | None = None
         self._direct = False            # read the port's descriptor with os.read (a posix serial port)
+        self._wake = threading.Event()   # the port closed or a stop: the thread's wait in _watch ends
+        self._io = threading.Lock()     # held by whoever reads the port, until the chunk is handed on
+        self._generation = 0            # counts opens and closes: a read checks it still has the same port
+        self.watch_s = watch_s
+        self._shared = False            # the consumer reads the port in take() (share_reads)
+        self._consumer_waiting = False  # the consumer is in take()'s wait for the port
+        self._consumer_at = 0.0         # time.monotonic() the consumer last left take()
         self._thread: threading.Thread | None = None
         self.opens = 0
         self.open_failures = 0
@@ -148,6 +169,17 @@ class SerialLink:
         if self._thread is not None:
             raise RuntimeError("attach the capture before the link starts")
         self.capture = capture
+
+    def share_reads(self) -> None:
+        """Let the consumer read a plain posix port itself in take() (before the start; other ports ignore it)."""
+        if self._thread is not None:
+            raise RuntimeError("share the reads before the link starts")
+        self._shared = True
+
+    @property
+    def reads_shared(self) -> bool:
+        """Return True while the consumer reads the port itself (shared reads on a plain posix port)."""
+        return self._shared and self._direct and self._port is not None
 
     def _prepare(self, port) -> int | None:
         """Return a file descriptor to wait on (port made non-blocking), or None to block in read."""
@@ -207,6 +239,7 @@ class SerialLink:
     def stop(self, timeout: float = 2.0) -> bool:
         """Stop the reader thread and close the port; return True if the thread ended in time."""
         self._stop.set()
+        self._wake.set()
         port = self._port
         if port is not None:
             try:
@@ -255,35 +288,104 @@ class SerialLink:
             with self._state:
                 self._state.notify_all()
 
+    def take(self, timeout: float | None = None, limit: int = 4096) -> list[Chunk]:
+        """Return every received Chunk waiting (up to limit), waiting up to timeout s for the first; with shared
+        reads the wait is on the port itself, and what it brings is read here (capture first, then the queue)."""
+        got = self.queue.get_many(0, limit)
+        port, fd, generation = self._port, self._fd, self._generation
+        if got or not (self._shared and self._direct and port is not None and fd is not None):
+            if got or (timeout is not None and timeout <= 0):
+                return got
+            return self.queue.get_many(timeout, limit)
+        self._consumer_waiting = True
+        try:
+            ready, _, _ = select.select([fd], [], [], timeout)
+        except (OSError, ValueError):        # closed under us (the thread found the device gone)
+            ready = []
+        finally:
+            self._consumer_waiting = False
+            self._consumer_at = time.monotonic()
+        if ready:
+            with self._io:
+                if generation == self._generation:
+                    self._read_waiting(fd, ready=True)
+        return self.queue.get_many(0, limit)
+
+    def _handoff(self, data: bytes) -> None:
+        """Stamp, count and hand on one read (the capture first: it must see every byte); caller holds _io."""
+        chunk = Chunk(self._clock(), data)
+        self.bytes_read += len(data)
+        self.chunks_read += 1
+        if self.capture is not None:
+            self.capture.put(chunk)
+        self.queue.put(chunk)
+
+    def _read_waiting(self, fd: int, ready: bool = False) -> None:
+        """Read everything waiting in a plain posix port now, handing each read on; caller holds _io.
+
+        A vanished device (readable but empty, or an error) closes the port here and is counted as a
+        disconnect; the thread reopens it."""
+        read = 0
+        try:
+            while read < 1024 * 1024:
+                # Readiness first: a tty set up for non-blocking reads (VMIN = VTIME = 0) answers an empty read
+                # with no bytes, not EAGAIN, and that must not look like the device going away.
+                if not (ready or select.select([fd], [], [], 0)[0]):
+                    break
+                ready = False
+                try:
+                    data = os.read(fd, self.chunk_size)
+                except BlockingIOError:
+                    break
+                if not data:        # as pyserial says it: readable but empty is a vanished device
+                    raise OSError("device reports readiness to read but returned no data (device disconnected?)")
+                self._handoff(data)
+                read += len(data)
+        except OSError as exc:
+            if not self._stop.is_set():
+                self.disconnects += 1
+                self.last_error = f"read failed: {exc}"
+            self._close_port_locked()
+            read = read or -1
+        finally:
+            if read:
+                self._notify()
+
     def _run(self) -> None:
         delay = self.reconnect_min_s
-        fd = None
         try:
             while not self._stop.is_set():
                 if self._port is None:
+                    port = None
                     try:
-                        self._port = self._opener()
-                        fd = self._prepare(self._port)
+                        port = self._opener()
+                        fd = self._prepare(port)
                     except Exception as exc:
-                        self._close_port()
+                        self._close(port)
                         self.open_failures += 1
                         self.last_error = f"open failed: {exc}"
                         self._notify()
                         self._stop.wait(delay)
                         delay = min(delay * 2, self.reconnect_max_s)
                         continue
-                    self.opens += 1
                     delay = self.reconnect_min_s
                     opened = Chunk(self._clock(), b"", EVENT_LINK_OPEN)
-                    if self.capture is not None:
-                        self.capture.put(opened)
-                    self.queue.put(opened)
+                    with self._io:
+                        self._port, self._fd = port, fd
+                        self._generation += 1
+                        self.opens += 1
+                        if self.capture is not None:
+                            self.capture.put(opened)
+                        self.queue.put(opened)
                     self.connected.set()
                     self._notify()
                     if self._stop.is_set():
                         break
+                if self._shared and self._direct and self._fd is not None:
+                    self._watch()
+                    continue
                 try:
-                    data = self._read_some(self._port, fd)
+                    data = self._read_some(self._port, self._fd)
                 except Exception as exc:            # the port vanished (EIO, socket closed...)
                     if self._stop.is_set():
                         break
@@ -294,20 +396,43 @@ class SerialLink:
                     self._stop.wait(delay)
                     continue
                 if data:
-                    chunk = Chunk(self._clock(), bytes(data))
-                    self.bytes_read += len(data)
-                    self.chunks_read += 1
-                    if self.capture is not None:      # the capture first: it must see every byte
-                        self.capture.put(chunk)
-                    self.queue.put(chunk)
+                    with self._io:
+                        self._handoff(bytes(data))
                     self._notify()
         finally:
             self._close_port()
             self._notify()
 
+    def _watch(self) -> None:
+        """With shared reads: wait watch_s (or until the port closes), then read what the consumer has left in
+        the port (it is busy)."""
+        self._wake.wait(self.watch_s)
+        self._wake.clear()
+        if self._port is None:                     # the consumer found it gone: reopen after the usual pause
+            self._stop.wait(self.reconnect_min_s)
+            return
+        if self._stop.is_set() or self._consumer_waiting or time.monotonic() - self._consumer_at < self.watch_s:
+            return
+        with self._io:
+            fd = self._fd
+            if fd is not None:
+                self._read_waiting(fd)
+        if self._port is None:
+            self._stop.wait(self.reconnect_min_s)
+
     def _close_port(self) -> None:
-        port, self._port = self._port, None
+        with self._io:
+            self._close_port_locked()
+
+    def _close_port_locked(self) -> None:
+        port, self._port, self._fd = self._port, None, None
+        self._generation += 1
+        self._wake.set()
         self.connected.clear()
+        self._close(port)
+
+    @staticmethod
+    def _close(port) -> None:
         if port is not None:
             try:
                 port.close()

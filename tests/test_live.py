@@ -706,13 +706,33 @@ def test_a_sensor_restart_is_counted_and_said_once_on_the_batch_path():
     assert said == [f"fieldvane live: the sensor restarted (sequence reset) at t={restart_t!r}; tracking starts afresh"]
 
 
-def test_overlapping_loops_put_the_switch_interval_back_only_when_the_last_ends():
+def test_overlapping_loops_put_the_switch_interval_and_the_frozen_heap_back_only_when_the_last_ends():
+    import gc
+
     from fieldvane.io.live import LIVE_SWITCH_INTERVAL_S, _fast_turns
 
     before = sys.getswitchinterval()
+    assert gc.get_freeze_count() == 0
     _fast_turns(True)
+    assert gc.get_freeze_count() > 0            # what was alive at the start is out of the collector's scans
     _fast_turns(True)
     _fast_turns(False)
     assert sys.getswitchinterval() == pytest.approx(LIVE_SWITCH_INTERVAL_S)      # the second loop still runs
+    assert gc.get_freeze_count() > 0
     _fast_turns(False)
-    assert sys.getswitchinterval() == before
+    assert sys.getswitchinterval() == before and gc.get_freeze_count() == 0
+
+
+def test_a_process_that_froze_its_own_heap_keeps_it_frozen_after_a_loop():
+    import gc
+
+    from fieldvane.io.live import _fast_turns
+
+    gc.freeze()
+    try:
+        frozen = gc.get_freeze_count()
+        _fast_turns(True)
+        _fast_turns(False)
+        assert gc.get_freeze_count() >= frozen
+    finally:
+        gc.unfreeze()

@@ -6,8 +6,10 @@ import os
 import random
 import socket
 import threading
+import time
 import tty
 
+import pytest
 import serial
 
 from fieldvane.io.capture import EVENT_LINK_OPEN, EVENT_LOST, CaptureWriter, Chunk, read_capture
@@ -18,16 +20,17 @@ TIMEOUT = 10.0
 
 
 def collect(link, n_bytes, max_chunks=100000):
-    """Return the bytes and chunks of the link until n_bytes arrived (bounded in count and time)."""
+    """Return the bytes and chunks of the link until n_bytes arrived (bounded in count and time), taken as the
+    live loop takes them (with shared reads: read here)."""
     chunks = []
     total = 0
     for _ in range(max_chunks):
         if total >= n_bytes:
             break
-        c = link.get(timeout=TIMEOUT)
-        assert c is not None, f"timed out after {total} of {n_bytes} bytes"
-        chunks.append(c)
-        total += len(c.data)
+        got = link.take(timeout=TIMEOUT)
+        assert got, f"timed out after {total} of {n_bytes} bytes"
+        chunks += got
+        total += sum(len(c.data) for c in got)
     return b"".join(c.data for c in chunks), chunks
 
 
@@ -62,10 +65,14 @@ def make_pty(link_path):
     return master, slave
 
 
-def test_pty_vanishes_and_returns(tmp_path):
+@pytest.mark.parametrize("shared", [False, True])
+def test_pty_vanishes_and_returns(tmp_path, shared):
     path = str(tmp_path / "sensor")
     master, slave = make_pty(path)
-    link = SerialLink(path, reconnect_min_s=0.01, reconnect_max_s=0.05).start()
+    link = SerialLink(path, reconnect_min_s=0.01, reconnect_max_s=0.05)
+    if shared:
+        link.share_reads()
+    link.start()
     try:
         assert link.wait_for(lambda l: l.opens == 1, TIMEOUT)
         first = bytes(range(256)) * 20
@@ -151,14 +158,18 @@ def test_chunk_queue_is_bounded_in_bytes():
     assert q.get(0).data == b"c" * 40 and q.get(0) is None
 
 
-def test_bytes_waiting_before_the_open_are_kept(tmp_path):
+@pytest.mark.parametrize("shared", [False, True])
+def test_bytes_waiting_before_the_open_are_kept(tmp_path, shared):
     # pyserial flushes a port's input when it opens it; the link must not (the bytes a sensor
     # sent while the port was being opened would vanish uncounted).
     path = str(tmp_path / "sensor")
     master, slave = make_pty(path)
     early = bytes(range(1, 256)) * 8
     os.write(master, early)                       # sent before the link opens the port
-    link = SerialLink(path).start()
+    link = SerialLink(path)
+    if shared:
+        link.share_reads()
+    link.start()
     try:
         data, _ = collect(link, len(early))
         assert data == early and link.counters()["bytes_read"] == len(early)
@@ -202,3 +213,118 @@ def test_the_capture_gets_every_byte_even_when_the_queue_drops(tmp_path):
     assert c["bytes_dropped"] > 0 and c["bytes_dropped"] + c["queued_bytes"] == len(sent)
     assert b"".join(ch.data for ch in read_capture(tmp_path / "cap")) == sent
     assert capture.counters()["bytes_lost"] == 0
+
+
+class ThreadNotingCapture:
+    """A capture stand-in: keeps every chunk it is given and the name of the thread that gave it."""
+
+    def __init__(self):
+        self.chunks: list[Chunk] = []
+        self.threads: list[str] = []
+
+    def put(self, chunk):
+        self.chunks.append(chunk)
+        self.threads.append(threading.current_thread().name)
+        return True
+
+
+def test_shared_reads_keep_every_byte_in_order_whichever_thread_reads():
+    # The consumer reads the port itself while it waits in take(); while it is busy for longer than
+    # watch_s the link's thread reads instead. Both hand on under one lock: the consumer, the capture
+    # and the queue see the stream in order, with host times that never go back.
+    master, slave = os.openpty()
+    tty.setraw(slave)
+    capture = ThreadNotingCapture()
+    link = SerialLink(os.ttyname(slave), capture=capture, watch_s=0.003)
+    link.share_reads()
+    link.start()
+    rng = random.Random(21)
+    sent = bytes(rng.randrange(256) for _ in range(300_000))
+
+    def writer():
+        i = 0
+        while i < len(sent):
+            n = rng.randrange(1, 3000)
+            view = memoryview(sent)[i:i + n]
+            while view:
+                view = view[os.write(master, view):]
+            i += n
+            time.sleep(rng.choice([0, 0, 0.0005, 0.002]))
+
+    th = threading.Thread(target=writer)
+    busy = random.Random(22)
+    try:
+        assert link.wait_for(lambda l: l.opens == 1, TIMEOUT)
+        assert link.reads_shared
+        th.start()
+        chunks, total = [], 0
+        while total < len(sent):
+            got = link.take(timeout=TIMEOUT)
+            assert got, f"timed out after {total} of {len(sent)} bytes"
+            chunks += got
+            total += sum(len(c.data) for c in got)
+            time.sleep(busy.choice([0, 0, 0, 0.001, 0.012]))       # now and then a long batch
+    finally:
+        if th.ident is not None:
+            th.join(TIMEOUT)
+        assert link.stop(TIMEOUT)
+        os.close(master)
+        os.close(slave)
+    data = [c for c in chunks if c.data]
+    assert b"".join(c.data for c in data) == sent
+    assert b"".join(c.data for c in capture.chunks) == sent
+    assert [c.host_time_ns for c in capture.chunks if c.data] == [c.host_time_ns for c in data]
+    times = [c.host_time_ns for c in data]
+    assert times == sorted(times)
+    readers = set(capture.threads[1:])          # (the first is the open event)
+    assert threading.current_thread().name in readers                        # the consumer read the port
+    assert any(name.startswith("fieldvane-link") for name in readers)        # and the link's thread did
+    c = link.counters()
+    assert c["bytes_read"] == len(sent) and c["chunks_dropped"] == 0
+
+
+def test_shared_reads_notice_a_vanished_device_in_the_consumer_and_reopen(tmp_path):
+    path = str(tmp_path / "sensor")
+    master, slave = make_pty(path)
+    link = SerialLink(path, reconnect_min_s=0.01, reconnect_max_s=0.05, watch_s=30.0)  # the thread would not look
+    link.share_reads()
+    link.start()
+    try:
+        assert link.wait_for(lambda l: l.opens == 1, TIMEOUT)
+        assert [c.event for c in link.take(timeout=TIMEOUT)] == [EVENT_LINK_OPEN]
+        closer = threading.Timer(0.05, lambda: (os.unlink(path), os.close(master), os.close(slave)))
+        closer.start()
+        start = time.monotonic()
+        while link.disconnects == 0 and time.monotonic() - start < TIMEOUT:
+            assert link.take(timeout=TIMEOUT) == []         # the consumer, waiting on the port, finds it gone
+        closer.join()
+        assert link.disconnects == 1 and "read failed" in link.last_error and not link.connected.is_set()
+        master, slave = make_pty(path)
+        assert link.wait_for(lambda l: l.opens == 2, TIMEOUT)
+        os.write(master, b"back again")
+        data, chunks = collect(link, 10)
+        assert data == b"back again" and chunks[0].event == EVENT_LINK_OPEN
+    finally:
+        assert link.stop(TIMEOUT)
+        os.close(master)
+        os.close(slave)
+
+
+def test_a_live_loop_shares_the_reads_of_a_plain_port_only():
+    from fieldvane.io.live import LiveLoop, make_decoder
+
+    pty_link = SerialLink("/dev/null")
+    LiveLoop(pty_link, make_decoder("binary"), lambda s: None, [], None, log=None)
+    assert pty_link._shared
+    port = serial.serial_for_url("loop://", timeout=0.05)
+    loop_link = SerialLink("loop://", opener=lambda: port)
+    LiveLoop(loop_link, make_decoder("binary"), lambda s: None, [], None, log=None)
+    loop_link.start()
+    try:
+        assert loop_link.wait_for(lambda l: l.opens == 1, TIMEOUT)
+        assert not loop_link.reads_shared                  # loop:// has no descriptor: its thread reads
+        port.write(b"abc")
+        assert collect(loop_link, 3)[0] == b"abc"
+    finally:
+        assert loop_link.stop(TIMEOUT)
+
