@@ -8,9 +8,10 @@ Who reads: a background thread, always, for ports without a plain descriptor. Fo
 port or pty whose consumer asked for it (`share_reads`, as the live loop does), the consumer reads
 the port itself in `take` while it is waiting for bytes anyway, and the thread only opens the port
 and reads what the consumer has left waiting for `watch_s` (while it estimates a long batch, or
-is held up). One thread waking per frame instead of two, and no hand-over of Python's interpreter
-lock between them: at 10 kHz that was most of the loop's latency. Every read and its hand-over
-happen under one lock, so chunks keep the order they were read in whoever read them.
+is held up), so nothing waits in the kernel much longer than that. One thread wakes per frame
+instead of two, without handing Python's interpreter lock between them (at 10 kHz, 52-55 us of
+CPU per frame against 59-62). Every read and its hand-over happen under one lock, so chunks keep
+the order they were read in whoever read them.
 """
 
 from __future__ import annotations
