@@ -31,6 +31,19 @@ DEFAULT_MAX_QUEUED_BYTES = 16 * 1024 * 1024
 DEFAULT_WATCH_S = 0.01
 
 
+def _readable(fd: int, timeout: float | None) -> bool:
+    """Return True if fd has bytes (or news: a hang-up, an error) within timeout s; False if closed meanwhile.
+
+    poll, not select: select cannot take a descriptor of 1024 or more (a process with many files open)."""
+    poller = select.poll()
+    poller.register(fd, select.POLLIN | select.POLLPRI)
+    try:
+        events = poller.poll(None if timeout is None else max(0, int(timeout * 1000 + 0.999)))
+    except (OSError, ValueError):
+        return False
+    return bool(events) and not any(ev & select.POLLNVAL for _fd, ev in events)
+
+
 class ChunkQueue:
     """A FIFO of Chunks bounded in bytes: a put that would overflow it is refused (and counted).
 
@@ -154,6 +167,7 @@ class SerialLink:
         self._shared = False            # the consumer reads the port in take() (share_reads)
         self._consumer_waiting = False  # the consumer is in take()'s wait for the port
         self._consumer_at = 0.0         # time.monotonic() the consumer last left take()
+        self._in_hand = b""             # bytes read and not yet given to the capture
         self._thread: threading.Thread | None = None
         self.opens = 0
         self.open_failures = 0
@@ -204,8 +218,7 @@ class SerialLink:
         if fd is not None:
             # Wait for readability ourselves, then take everything there in one read: a
             # socket:// port's in_waiting only says "at least one byte".
-            ready, _, _ = select.select([fd], [], [], self.read_timeout)
-            if not ready:
+            if not _readable(fd, self.read_timeout):
                 return b""
             if not self._direct:
                 return port.read(self.chunk_size)
@@ -300,16 +313,18 @@ class SerialLink:
             return self.queue.get_many(timeout, limit)
         self._consumer_waiting = True
         try:
-            ready, _, _ = select.select([fd], [], [], timeout)
-        except (OSError, ValueError):        # closed under us (the thread found the device gone)
-            ready = []
+            with self._io:          # what the thread read just before it saw us waiting is in the queue now
+                got = self.queue.get_many(0, limit)
+            if got:
+                return got
+            ready = _readable(fd, timeout)
         finally:
             self._consumer_waiting = False
             self._consumer_at = time.monotonic()
         if ready:
             with self._io:
                 if generation == self._generation:
-                    self._read_waiting(fd, ready=True)
+                    self._read_waiting(fd)       # (readiness asked again: the thread may have read it meanwhile)
         return self.queue.get_many(0, limit)
 
     def _handoff(self, data: bytes) -> None:
@@ -319,9 +334,10 @@ class SerialLink:
         self.chunks_read += 1
         if self.capture is not None:
             self.capture.put(chunk)
+        self._in_hand = b""
         self.queue.put(chunk)
 
-    def _read_waiting(self, fd: int, ready: bool = False) -> None:
+    def _read_waiting(self, fd: int) -> None:
         """Read everything waiting in a plain posix port now, handing each read on; caller holds _io.
 
         A vanished device (readable but empty, or an error) closes the port here and is counted as a
@@ -331,11 +347,10 @@ class SerialLink:
             while read < 1024 * 1024:
                 # Readiness first: a tty set up for non-blocking reads (VMIN = VTIME = 0) answers an empty read
                 # with no bytes, not EAGAIN, and that must not look like the device going away.
-                if not (ready or select.select([fd], [], [], 0)[0]):
+                if not _readable(fd, 0):
                     break
-                ready = False
                 try:
-                    data = os.read(fd, self.chunk_size)
+                    self._in_hand = data = os.read(fd, self.chunk_size)
                 except BlockingIOError:
                     break
                 if not data:        # as pyserial says it: readable but empty is a vanished device
@@ -348,6 +363,14 @@ class SerialLink:
                 self.last_error = f"read failed: {exc}"
             self._close_port_locked()
             read = read or -1
+        except BaseException:
+            # A second Ctrl-C (KeyboardInterrupt in the loop's thread, which reads now) between a read and the
+            # capture: the bytes go to the capture all the same before the interrupt goes on.
+            if self._in_hand and self.capture is not None:
+                self.capture.put(Chunk(self._clock(), self._in_hand))
+                self.bytes_read += len(self._in_hand)
+            self._in_hand = b""
+            raise
         finally:
             if read:
                 self._notify()
@@ -383,7 +406,14 @@ class SerialLink:
                     if self._stop.is_set():
                         break
                 if self._shared and self._direct and self._fd is not None:
-                    self._watch()
+                    try:
+                        self._watch()
+                    except Exception as exc:        # never let an odd error end the link: count it, reopen
+                        self.disconnects += 1
+                        self.last_error = f"read failed: {exc!r}"
+                        self._close_port()
+                        self._notify()
+                        self._stop.wait(delay)
                     continue
                 try:
                     data = self._read_some(self._port, self._fd)
@@ -401,6 +431,10 @@ class SerialLink:
                         self._handoff(bytes(data))
                     self._notify()
         finally:
+            if self._shared and self._direct:
+                with self._io:              # what arrived during the loop's last batch: into the capture too
+                    if self._fd is not None:
+                        self._read_waiting(self._fd)
             self._close_port()
             self._notify()
 

@@ -281,6 +281,7 @@ def test_shared_reads_keep_every_byte_in_order_whichever_thread_reads():
     assert any(name.startswith("fieldvane-link") for name in readers)        # and the link's thread did
     c = link.counters()
     assert c["bytes_read"] == len(sent) and c["chunks_dropped"] == 0
+    assert (c["disconnects"], c["opens"]) == (0, 1)      # neither reader took the other's empty port for a vanished one
 
 
 def test_shared_reads_notice_a_vanished_device_in_the_consumer_and_reopen(tmp_path):
@@ -328,3 +329,97 @@ def test_a_live_loop_shares_the_reads_of_a_plain_port_only():
     finally:
         assert loop_link.stop(TIMEOUT)
 
+
+
+class HoldingCapture:
+    """A capture stand-in that holds the link's thread inside its first put of data (the thread holds the port's
+    lock meanwhile): the consumer can then be made to arrive while the thread is reading."""
+
+    def __init__(self):
+        self.chunks: list[Chunk] = []
+        self.entered = threading.Event()
+        self.release = threading.Event()
+
+    def put(self, chunk):
+        self.chunks.append(chunk)
+        if chunk.data and threading.current_thread().name.startswith("fieldvane-link") and not self.entered.is_set():
+            self.entered.set()
+            self.release.wait(TIMEOUT)
+        return True
+
+
+def test_a_consumer_that_loses_the_port_to_the_thread_does_not_see_a_vanished_device():
+    master, slave = os.openpty()
+    tty.setraw(slave)
+    capture = HoldingCapture()
+    link = SerialLink(os.ttyname(slave), capture=capture, watch_s=0.005, reconnect_min_s=0.01)
+    link.share_reads()
+    link.start()
+    releaser = threading.Timer(0.2, capture.release.set)
+    try:
+        assert link.wait_for(lambda l: l.opens == 1, TIMEOUT)
+        assert [c.event for c in link.take(timeout=0)] == [EVENT_LINK_OPEN]
+        os.write(master, b"first ")
+        assert capture.entered.wait(TIMEOUT)       # the consumer was away: the thread read it and is handing it on
+        os.write(master, b"second")                # the port is readable again while the thread holds the lock
+        releaser.start()
+        got = link.take(timeout=TIMEOUT)           # select says ready; the thread reads "second" before we get the lock
+        data = b"".join(c.data for c in got)
+        if len(data) < 12:
+            data += collect(link, 12 - len(data))[0]
+        assert data == b"first second"
+        assert (link.disconnects, link.opens, link.last_error) == (0, 1, None)
+    finally:
+        releaser.cancel()
+        capture.release.set()
+        assert link.stop(TIMEOUT)
+        os.close(master)
+        os.close(slave)
+
+
+def test_bytes_waiting_in_the_port_at_the_stop_reach_the_capture():
+    master, slave = os.openpty()
+    tty.setraw(slave)
+    capture = ThreadNotingCapture()
+    link = SerialLink(os.ttyname(slave), capture=capture, watch_s=0.5)   # (long: the thread has not looked yet)
+    link.share_reads()
+    link.start()
+    try:
+        assert link.wait_for(lambda l: l.opens == 1, TIMEOUT)
+        assert [c.event for c in link.take(timeout=0.01)] == [EVENT_LINK_OPEN]
+        os.write(master, b"the sensor's last frames")     # arrive while the loop estimates its last batch
+    finally:
+        assert link.stop(TIMEOUT)
+        os.close(master)
+        os.close(slave)
+    assert b"".join(c.data for c in capture.chunks) == b"the sensor's last frames"
+
+
+def test_shared_reads_work_on_a_descriptor_above_1024():
+    import resource
+
+    soft, _hard = resource.getrlimit(resource.RLIMIT_NOFILE)
+    if soft < 1200:
+        pytest.skip("needs a file limit above 1200")
+    held = []
+    master = slave = None
+    link = None
+    try:
+        held = [os.open(os.devnull, os.O_RDONLY) for _ in range(1100)]      # a long run with many files open
+        master, slave = os.openpty()
+        tty.setraw(slave)
+        link = SerialLink(os.ttyname(slave), reconnect_min_s=0.01)
+        link.share_reads()
+        link.start()
+        assert link.wait_for(lambda l: l.opens == 1, TIMEOUT)
+        assert link._fd >= 1024
+        os.write(master, b"abc")
+        got = link.take(timeout=0.01) + link.take(timeout=2.0)
+        assert b"".join(c.data for c in got) == b"abc"
+        time.sleep(0.05)                          # the consumer away longer than watch_s: the thread looks
+        assert link._thread.is_alive() and link.connected.is_set()
+    finally:
+        if link is not None:
+            link.stop(TIMEOUT)
+        for fd in held + [fd for fd in (master, slave) if fd is not None]:
+            os.close(fd)
