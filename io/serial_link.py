@@ -405,19 +405,12 @@ class SerialLink:
                     self._notify()
                     if self._stop.is_set():
                         break
-                if self._shared and self._direct and self._fd is not None:
-                    try:
-                        self._watch()
-                    except Exception as exc:        # never let an odd error end the link: count it, reopen
-                        self.disconnects += 1
-                        self.last_error = f"read failed: {exc!r}"
-                        self._close_port()
-                        self._notify()
-                        self._stop.wait(delay)
-                    continue
                 try:
+                    if self._shared and self._direct and self._fd is not None:
+                        self._watch()
+                        continue
                     data = self._read_some(self._port, self._fd)
-                except Exception as exc:            # the port vanished (EIO, socket closed...)
+                except Exception as exc:            # the port vanished (EIO, socket closed...), or an odd error
                     if self._stop.is_set():
                         break
                     self.disconnects += 1
