@@ -423,3 +423,37 @@ def test_shared_reads_work_on_a_descriptor_above_1024():
             link.stop(TIMEOUT)
         for fd in held + [fd for fd in (master, slave) if fd is not None]:
             os.close(fd)
+
+
+def test_a_forced_stop_between_a_read_and_the_capture_still_captures_the_bytes():
+    # With shared reads the loop's thread reads, and a second Ctrl-C raises KeyboardInterrupt there. Here it
+    # comes just after a read, before the chunk reached the capture (the clock that stamps it raises once).
+    master, slave = os.openpty()
+    tty.setraw(slave)
+    capture = ThreadNotingCapture()
+    calls = {"n": 0, "armed": False}
+
+    def clock():
+        if calls["armed"]:
+            calls["armed"] = False
+            raise KeyboardInterrupt
+        calls["n"] += 1
+        return time.time_ns()
+
+    link = SerialLink(os.ttyname(slave), capture=capture, clock=clock, watch_s=30.0)
+    link.share_reads()
+    link.start()
+    try:
+        assert link.wait_for(lambda l: l.opens == 1, TIMEOUT)
+        assert [c.event for c in link.take(timeout=0)] == [EVENT_LINK_OPEN]
+        os.write(master, b"the last frame")
+        calls["armed"] = True
+        with pytest.raises(KeyboardInterrupt):
+            while True:
+                link.take(timeout=TIMEOUT)
+    finally:
+        assert link.stop(TIMEOUT)
+        os.close(master)
+        os.close(slave)
+    assert b"".join(c.data for c in capture.chunks) == b"the last frame"
+    assert link.bytes_read == len(b"the last frame")
