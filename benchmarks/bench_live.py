@@ -118,7 +118,9 @@ def test_baseline_bare_reader_time_to_first_frame(benchmark):
 
 
 SENSOR_PROCESS = """
-import sys, time
+import os, sys, time
+if os.environ.get("FIELDVANE_BENCH_SENSOR_CPUS"):     # e.g. 0, with this benchmark run under `taskset -c 1`
+    os.sched_setaffinity(0, {int(c) for c in os.environ["FIELDVANE_BENCH_SENSOR_CPUS"].split(",")})
 from fieldvane.firmware_sim.emitter import Emitter, PtySink
 from fieldvane.firmware_sim.scenario import loads_scenario, simulate
 run = simulate(loads_scenario(sys.stdin.read()))
@@ -158,6 +160,10 @@ def test_live_latency_frame_to_sink(calibration, tmp_path, rate, outputs):
     latency from each frame's scheduled send time to the moment its estimate is handed to the last logger (p50, p99,
     max), the part of it after the frame reached the host, frames lost, and the process's CPU time per frame. The
     baseline in the same run ("floor"): the same loop and decoder with the estimation taken out.
+
+    A real sensor is its own hardware; this one is a Python process on the same cores. To keep them apart, run
+    `FIELDVANE_BENCH_SENSOR_CPUS=0 taskset -c 1 pytest benchmarks/bench_live.py ...` (the sensor on core 0, this
+    process on core 1).
 
     "After arrival" starts at the read that brought the frame: a frame that waited in the kernel while the loop was
     busy is stamped when the loop reads it (the loop reads the port itself), so between designs compare "from the
