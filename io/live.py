@@ -90,10 +90,10 @@ _turns = {"loops": 0, "before": 0.0, "froze": False}
 _turns_lock = threading.Lock()
 
 
-def _fast_turns(start: bool) -> None:
+def _live_process_settings(start: bool) -> None:
     """While any loop runs: the live switch interval, and every object alive at the start (modules, compiled
     kernels, the calibration and its table) frozen out of the cyclic garbage collector's reach -- a full
-    collection scanned them all, 65-70 ms with the loop stopped (700 frames at 10 kHz). The first loop to
+    collection scanned them all, 65-83 ms with the loop stopped (650-830 frames at 10 kHz). The first loop to
     start keeps the process's own settings and the last to end puts them back (overlapping loops do not
     restore them under one another)."""
     with _turns_lock:
@@ -296,11 +296,11 @@ class LiveLoop:
 
     def run(self) -> LiveSummary:
         """Process chunks until stop(); then shut down within ~1.5 s and return the summary."""
-        _fast_turns(True)
+        _live_process_settings(True)
         try:
             return self._run()
         finally:
-            _fast_turns(False)
+            _live_process_settings(False)
 
     def _run(self) -> LiveSummary:
         interrupted = False

@@ -31,12 +31,17 @@ DEFAULT_MAX_QUEUED_BYTES = 16 * 1024 * 1024
 DEFAULT_WATCH_S = 0.01
 
 
-def _readable(fd: int, timeout: float | None) -> bool:
-    """Return True if fd has bytes (or news: a hang-up, an error) within timeout s; False if closed meanwhile.
-
-    poll, not select: select cannot take a descriptor of 1024 or more (a process with many files open)."""
+def _poller(fd: int):
+    """Return a poll object watching fd for bytes (poll, not select: select cannot take a descriptor of 1024
+    or more, as in a process with many files open). One per thread: a poll object is not shared."""
     poller = select.poll()
     poller.register(fd, select.POLLIN | select.POLLPRI)
+    return poller
+
+
+def _readable(poller, timeout: float | None) -> bool:
+    """Return True if the polled descriptor has bytes (or news: a hang-up, an error) within timeout s; False if
+    it was closed meanwhile."""
     try:
         events = poller.poll(None if timeout is None else max(0, int(timeout * 1000 + 0.999)))
     except (OSError, ValueError):
@@ -159,6 +164,7 @@ class SerialLink:
         self._waiting = 0               # threads in wait_for (only they need a notification per read)
         self._port = None
         self._fd: int | None = None
+        self._pollers = None            # two poll objects on _fd while it is open
         self._direct = False            # read the port's descriptor with os.read (a posix serial port)
         self._wake = threading.Event()   # the port closed or a stop: the thread's wait in _watch ends
         self._io = threading.Lock()     # held by whoever reads the port, until the chunk is handed on
@@ -218,7 +224,7 @@ class SerialLink:
         if fd is not None:
             # Wait for readability ourselves, then take everything there in one read: a
             # socket:// port's in_waiting only says "at least one byte".
-            if not _readable(fd, self.read_timeout):
+            if not _readable(_poller(fd), self.read_timeout):
                 return b""
             if not self._direct:
                 return port.read(self.chunk_size)
@@ -304,28 +310,26 @@ class SerialLink:
 
     def take(self, timeout: float | None = None, limit: int = 4096) -> list[Chunk]:
         """Return every received Chunk waiting (up to limit), waiting up to timeout s for the first; with shared
-        reads the wait is on the port itself, and what it brings is read here (capture first, then the queue)."""
-        got = self.queue.get_many(0, limit)
-        port, fd, generation = self._port, self._fd, self._generation
-        if got or not (self._shared and self._direct and port is not None and fd is not None):
-            if got or (timeout is not None and timeout <= 0):
-                return got
-            return self.queue.get_many(timeout, limit)
+        reads the wait is on the port itself, and what it brings is read here (capture first, then the queue).
+        From one consumer thread."""
+        queue = self.queue
+        pollers, generation = self._pollers, self._generation
+        if len(queue) or not (self._shared and self._direct and pollers is not None):
+            return queue.get_many(timeout, limit)
         self._consumer_waiting = True
         try:
             with self._io:          # what the thread read just before it saw us waiting is in the queue now
-                got = self.queue.get_many(0, limit)
-            if got:
-                return got
-            ready = _readable(fd, timeout)
+                if len(queue):
+                    return queue.get_many(0, limit)
+            ready = _readable(pollers[0], timeout)
         finally:
             self._consumer_waiting = False
             self._consumer_at = time.monotonic()
         if ready:
             with self._io:
                 if generation == self._generation:
-                    self._read_waiting(fd)       # (readiness asked again: the thread may have read it meanwhile)
-        return self.queue.get_many(0, limit)
+                    self._read_waiting()         # (readiness asked again: the thread may have read it meanwhile)
+        return queue.get_many(0, limit)
 
     def _handoff(self, data: bytes) -> None:
         """Stamp, count and hand on one read (the capture first: it must see every byte); caller holds _io."""
@@ -337,17 +341,20 @@ class SerialLink:
         self._in_hand = b""
         self.queue.put(chunk)
 
-    def _read_waiting(self, fd: int) -> None:
+    def _read_waiting(self) -> None:
         """Read everything waiting in a plain posix port now, handing each read on; caller holds _io.
 
         A vanished device (readable but empty, or an error) closes the port here and is counted as a
         disconnect; the thread reopens it."""
+        if self._pollers is None:
+            return
+        fd, poller = self._fd, self._pollers[1]
         read = 0
         try:
             while read < 1024 * 1024:
                 # Readiness first: a tty set up for non-blocking reads (VMIN = VTIME = 0) answers an empty read
                 # with no bytes, not EAGAIN, and that must not look like the device going away.
-                if not _readable(fd, 0):
+                if not _readable(poller, 0):
                     break
                 try:
                     self._in_hand = data = os.read(fd, self.chunk_size)
@@ -396,6 +403,8 @@ class SerialLink:
                     opened = Chunk(self._clock(), b"", EVENT_LINK_OPEN)
                     with self._io:
                         self._port, self._fd = port, fd
+                        # (the consumer's, and the one for reads under _io)
+                        self._pollers = None if fd is None else (_poller(fd), _poller(fd))
                         self._generation += 1
                         self.opens += 1
                         if self.capture is not None:
@@ -426,8 +435,7 @@ class SerialLink:
         finally:
             if self._shared and self._direct:
                 with self._io:              # what arrived during the loop's last batch: into the capture too
-                    if self._fd is not None:
-                        self._read_waiting(self._fd)
+                    self._read_waiting()
             self._close_port()
             self._notify()
 
@@ -442,9 +450,7 @@ class SerialLink:
         if self._stop.is_set() or self._consumer_waiting or time.monotonic() - self._consumer_at < self.watch_s:
             return
         with self._io:
-            fd = self._fd
-            if fd is not None:
-                self._read_waiting(fd)
+            self._read_waiting()
         if self._port is None:
             self._stop.wait(self.reconnect_min_s)
 
@@ -453,7 +459,7 @@ class SerialLink:
             self._close_port_locked()
 
     def _close_port_locked(self) -> None:
-        port, self._port, self._fd = self._port, None, None
+        port, self._port, self._fd, self._pollers = self._port, None, None, None
         self._generation += 1
         self._wake.set()
         self.connected.clear()

@@ -709,31 +709,31 @@ def test_a_sensor_restart_is_counted_and_said_once_on_the_batch_path():
 def test_overlapping_loops_put_the_switch_interval_and_the_frozen_heap_back_only_when_the_last_ends():
     import gc
 
-    from fieldvane.io.live import LIVE_SWITCH_INTERVAL_S, _fast_turns
+    from fieldvane.io.live import LIVE_SWITCH_INTERVAL_S, _live_process_settings
 
     before = sys.getswitchinterval()
     assert gc.get_freeze_count() == 0
-    _fast_turns(True)
+    _live_process_settings(True)
     assert gc.get_freeze_count() > 0            # what was alive at the start is out of the collector's scans
-    _fast_turns(True)
-    _fast_turns(False)
+    _live_process_settings(True)
+    _live_process_settings(False)
     assert sys.getswitchinterval() == pytest.approx(LIVE_SWITCH_INTERVAL_S)      # the second loop still runs
     assert gc.get_freeze_count() > 0
-    _fast_turns(False)
+    _live_process_settings(False)
     assert sys.getswitchinterval() == before and gc.get_freeze_count() == 0
 
 
 def test_a_process_that_froze_its_own_heap_keeps_it_frozen_after_a_loop():
     import gc
 
-    from fieldvane.io.live import _fast_turns
+    from fieldvane.io.live import _live_process_settings
 
     gc.freeze()
     try:
         frozen = gc.get_freeze_count()
-        _fast_turns(True)
+        _live_process_settings(True)
         assert gc.get_freeze_count() == frozen      # left as the process had it
-        _fast_turns(False)
+        _live_process_settings(False)
         assert gc.get_freeze_count() == frozen
     finally:
         gc.unfreeze()
