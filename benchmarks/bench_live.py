@@ -179,7 +179,7 @@ def test_live_latency_frame_to_sink(calibration, tmp_path, rate, outputs):
     from fieldvane.estimator.tracker import Tracker
     from fieldvane.io.calfile import load_calibration
     from fieldvane.io.capture import CaptureWriter
-    from fieldvane.io.estimates_csv import record_rows
+    from fieldvane.io.estimates_csv import record_block
     from fieldvane.io.live import BinarySampleDecoder, LiveLoop
     from fieldvane.io.serial_link import SerialLink
     from fieldvane.io.sinks import Sink, open_sink
@@ -221,6 +221,11 @@ def test_live_latency_frame_to_sink(calibration, tmp_path, rate, outputs):
             handed(1)
             return ok
 
+        def emit_block(self, block):
+            taken = Sink.emit_block(self, block)
+            handed(len(block))
+            return taken
+
     batch: list = [[]]
 
     def estimate_batch(samples):
@@ -230,7 +235,7 @@ def test_live_latency_frame_to_sink(calibration, tmp_path, rate, outputs):
             handed(len(samples))
             return [None] * len(samples)
         wall, cpu = time.perf_counter(), time.thread_time()
-        rows = record_rows(tracker.step_record(samples))        # as `fieldvane run` does
+        rows = record_block(tracker.step_record(samples))        # as `fieldvane run` does
         in_situ.append((time.perf_counter() - wall, time.thread_time() - cpu))
         if not sinks:
             handed(len(samples))

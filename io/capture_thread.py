@@ -12,6 +12,10 @@ from fieldvane.io.capture import EVENT_LINK_OPEN, EVENT_LOST, CaptureWriter, Chu
 
 DEFAULT_CAPTURE_BUFFER_BYTES = 64 * 1024 * 1024
 MAX_BATCH_BYTES = 256 * 1024          # bytes handed to the writer at once (what a forced stop may leave in flight)
+# Chunks handed to the writer at once: it frames each in Python (about 1.5 us), holding the interpreter, and lets go
+# of it in the file write after them. 350 chunks at once (50 ms at 10 kHz) held the live loop up for 0.2 ms (the
+# switch interval) at a time; 64 hold it at most about 0.1 ms.
+MAX_BATCH_CHUNKS = 64
 # The writer wakes when this much is buffered or after WRITE_INTERVAL_S, not at every chunk: at 10 kHz a wake-up per
 # frame took the interpreter from the live loop thousands of times a second; the bytes are as safe in this buffer.
 WAKE_BYTES = 64 * 1024
@@ -41,6 +45,7 @@ class CaptureThread:
         self._stop = False
         self._abandon = False
         self._in_flight = 0
+        self._more = False                  # the last batch left chunks behind: take them without waiting
         self.bytes_in = 0
         self.lost_overflow = 0
         self.lost_abandoned = 0
@@ -157,17 +162,19 @@ class CaptureThread:
 
     def _take(self) -> list[Chunk] | None:
         with self._cond:
-            waited = False
+            waited = self._more
             while not self._stop and self._bytes < self._wake_bytes and not (waited and self._items):
                 self._cond.wait(WRITE_INTERVAL_S)
                 waited = True
             if not self._items:
                 return None
             batch, size = [], 0
-            while self._items and (not batch or size + len(self._items[0].data) <= MAX_BATCH_BYTES):
+            while self._items and (not batch or (size + len(self._items[0].data) <= MAX_BATCH_BYTES
+                                                  and len(batch) < MAX_BATCH_CHUNKS)):
                 c = self._items.popleft()
                 batch.append(c)
                 size += len(c.data)
+            self._more = bool(self._items)
             self._bytes -= size
             self._in_flight = size
             return batch

@@ -20,6 +20,7 @@ from fieldvane.estimator.estimate import ESTIMATE_COLUMNS, Estimate
 from fieldvane.io.errors import InputError, JobError
 from fieldvane.io.byte_lines import ByteLines
 from fieldvane.io.recording import fast_parse_lines
+from fieldvane.io.row_block import RowBlock
 
 WRITE_BLOCK_ROWS = 8192        # rows formatted per compiled call (bounds the text buffer: ~3.5 MB)
 READ_CHUNK_ROWS = 65536        # lines parsed per compiled call when reading
@@ -41,13 +42,37 @@ def estimate_columns(t, u, b_nT, sigma_deg, flags, extras: Mapping[str, np.ndarr
     return cols
 
 
+_FLOAT_BASE = ("t", "ux", "uy", "uz", "b_nT", "bx_nT", "by_nT", "bz_nT", "sigma_deg")   # the matrix's first columns
+
+
+def record_block(record) -> RowBlock:
+    """Return a TrackRecord's estimates CSV columns as a RowBlock (the live path: one per batch to each logger);
+    its values are estimate_columns' (bx_nT..bz_nT = b_nT * u)."""
+    extras = record.extra_columns()
+    fx = [k for k, v in extras.items() if v.dtype == np.float64 and v.ndim == 1]
+    ix = [k for k, v in extras.items() if v.dtype == np.int64 and v.ndim == 1]
+    if len(fx) + len(ix) < len(extras):
+        return RowBlock(estimate_columns(record.t, record.u, record.b_nT, record.sigma_deg, record.flags, extras))
+    n = len(record.t)
+    floats = np.empty((n, 9 + len(fx)))
+    floats[:, 0] = record.t
+    floats[:, 1:4] = record.u
+    floats[:, 4] = record.b_nT
+    np.multiply(record.u, record.b_nT[:, None], out=floats[:, 5:8])
+    floats[:, 8] = record.sigma_deg
+    for j, k in enumerate(fx):
+        floats[:, 9 + j] = extras[k]
+    ints = np.empty((n, 1 + len(ix)), np.int64)
+    ints[:, 0] = record.flags
+    for j, k in enumerate(ix):
+        ints[:, 1 + j] = extras[k]
+    return RowBlock.of_matrices(_FLOAT_BASE + tuple(fx), floats, ("flags", *ix), ints,
+                                ESTIMATE_COLUMNS + tuple(extras))
+
+
 def record_rows(record) -> list[dict]:
-    """Return a TrackRecord's estimates CSV rows (name -> float or int), as Estimate.row() gives them: the live path."""
-    columns = estimate_columns(record.t, record.u, record.b_nT, record.sigma_deg, record.flags,
-                               record.extra_columns())
-    names = list(columns)
-    lists = [v.tolist() if isinstance(v, np.ndarray) else np.asarray(v).tolist() for v in columns.values()]
-    return [dict(zip(names, values)) for values in zip(*lists)]
+    """Return a TrackRecord's estimates CSV rows (name -> float or int), as Estimate.row() gives them."""
+    return record_block(record).rows()
 
 
 def _as_column(values) -> np.ndarray | None:
@@ -74,32 +99,26 @@ def _as_column(values) -> np.ndarray | None:
 
 
 def _block_columns(names: Sequence[str], columns: Mapping[str, Sequence]):
-    """Return (arrays in `names` order, None where absent; utc position or None; utc (N,) POSIX s; the formatter) for
-    the compiled block formatter, or None when a column holds values only the per-record path writes (mixed, None, text)."""
+    """Return (arrays in `names` order, None where absent; the position of `utc` or None) for the compiled block
+    formatter, or None when a column holds values only the per-record path writes (mixed, None, text)."""
     arrays = [None if name not in columns else _as_column(columns[name]) for name in names]
     if any(a is None and name in columns for a, name in zip(arrays, names)):
         return None
     try:
-        from fieldvane.io.float_text import format_rows
+        from fieldvane.io import float_text  # noqa: F401
     except ImportError:                 # no compiler: the per-record path
         return None
     utc_at = names.index("utc") if "utc" in names and "utc" in columns else None
     if utc_at is not None and arrays[utc_at].dtype.kind != "f":
         return None                     # `utc` as ints or flags: the sink's own rendering
-    utc = None
-    if utc_at is not None:              # `utc` is ISO 8601 text, as the CSV sink renders it
-        utc, arrays[utc_at] = arrays[utc_at], None
-    return arrays, utc_at, utc, format_rows
+    return arrays, utc_at
 
 
 def _block_text(block, lo: int, hi: int, out: np.ndarray | None = None) -> bytes | memoryview:
     """Return rows lo..hi-1 of a _block_columns block as CSV lines, formatted in one compiled pass."""
-    arrays, utc_at, utc, format_rows = block
-    text = format_rows([None if a is None else a[lo:hi] for a in arrays], out=out)
-    if utc_at is None:
-        return text
-    from fieldvane.io.utc_text import insert_field, iso_texts
-    return insert_field(text, utc_at, iso_texts(utc[lo:hi]))
+    from fieldvane.io.float_text import format_rows
+    arrays, utc_at = block
+    return format_rows([None if a is None else a[lo:hi] for a in arrays], out=out, utc=utc_at)
 
 
 def records_text(names: Sequence[str], records: Sequence[Mapping]) -> str | None:
@@ -113,6 +132,42 @@ def records_text(names: Sequence[str], records: Sequence[Mapping]) -> str | None
     if block is None:
         return None
     return bytes(_block_text(block, 0, len(records))).decode("ascii")
+
+
+def block_text(names: Sequence[str], block: RowBlock) -> str | None:
+    """Return the CSV lines of a RowBlock in columns `names` (an absent one empty), the bytes CsvFormatter.format
+    writes for each row, in one compiled pass straight from its matrices (the CSV logger's live batches); None
+    when a column needs the per-record path (a type other than float64 or int64)."""
+    try:
+        from fieldvane.io.float_text import KIND_EMPTY, KIND_FLOAT, KIND_INT, KIND_UTC, format_matrix
+    except ImportError:                 # no compiler: the per-record path
+        return None
+    n_f, n_i = block.floats.shape[1], block.ints.shape[1]
+    float_others, int_others, kinds, src = [], [], [], []
+    for name in names:
+        if name not in block._where:
+            kinds.append(KIND_EMPTY)
+            src.append(0)
+            continue
+        group, j = block._where[name]
+        if group == "o":
+            col = block.others[name]
+            if col.dtype == np.float64:
+                group, j = "f", n_f + len(float_others)
+                float_others.append(col)
+            elif col.dtype == np.int64 and name != "utc":
+                group, j = "i", n_i + len(int_others)
+                int_others.append(col)
+            else:
+                return None
+        if group == "f":
+            kinds.append(KIND_UTC if name == "utc" else KIND_FLOAT)
+        elif name == "utc":
+            return None                 # `utc` as ints: the sink's own rendering
+        else:
+            kinds.append(KIND_INT)
+        src.append(j)
+    return bytes(format_matrix(block.floats, float_others, block.ints, int_others, kinds, src)).decode("ascii")
 
 
 class EstimatesWriter:
@@ -189,8 +244,8 @@ class EstimatesWriter:
             self._write_records(columns, n)
             return
         if self._buffer is None:
-            from fieldvane.io.float_text import MAX_FIELD_CHARS
-            self._buffer = np.empty(WRITE_BLOCK_ROWS * len(names) * (MAX_FIELD_CHARS + 1), np.uint8)
+            from fieldvane.io.float_text import text_capacity
+            self._buffer = np.empty(text_capacity(WRITE_BLOCK_ROWS, len(names), "utc" in names), np.uint8)
         for lo in range(0, n, WRITE_BLOCK_ROWS):
             self._put(_block_text(block, lo, min(lo + WRITE_BLOCK_ROWS, n), self._buffer))
         self.rows += n

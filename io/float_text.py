@@ -6,9 +6,12 @@ are shortest. The layout then follows CPython's repr of a float: positional betw
 (with '.0' on integers), otherwise 'd.ddde+XX' with at least two exponent digits; 'nan', 'inf',
 '-inf', '-0.0'. Tests compare every byte with repr() on millions of doubles.
 
-`format_rows` turns columns (float64, int64 or absent) into CSV lines in one compiled pass; it is
-what EstimatesWriter.write_columns uses, and it must stay byte-identical to the CSV sink's
-per-record formatter (io/sinks.py CsvFormatter: repr for floats, str for ints, '' when absent).
+`format_rows` turns columns (float64, int64, POSIX seconds as ISO 8601 UTC text, or absent) into CSV
+lines in one compiled pass; it is what EstimatesWriter.write_columns and the CSV logger use, and it
+must stay byte-identical to the CSV sink's per-record formatter (io/sinks.py CsvFormatter: repr for
+floats, str for ints, utc_iso for `utc`, '' when absent).
+
+The UTC dates come from H. Hinnant's civil_from_days ("chrono-Compatible Low-Level Date Algorithms").
 """
 
 from __future__ import annotations
@@ -17,7 +20,11 @@ import numpy as np
 from fieldvane.kernels import entry, helper
 
 MAX_FIELD_CHARS = 24                 # '-2.2250738585072014e-308' is the longest float text
-KIND_FLOAT, KIND_INT, KIND_EMPTY = 0, 1, 2
+UTC_FIELD_CHARS = 27                 # '2026-12-03T07:30:00.123456Z'
+KIND_FLOAT, KIND_INT, KIND_EMPTY, KIND_UTC = 0, 1, 2, 3
+# datetime's range (years 1 to 9999) in microseconds from 1970: outside it the sinks write an empty field
+_FIRST_US, _LAST_US = -62135596800_000000, 253402300799_999999
+_US_PER_DAY = 86400_000000
 
 _POW5_INV_BITCOUNT = 125
 _POW5_BITCOUNT = 125
@@ -312,8 +319,57 @@ def _put_int(buf, p, v):
     return p + n
 
 
+@helper(cache=True)
+def _put_fixed(buf, end, v, width):
+    """Write v >= 0 as exactly `width` decimal digits ending before buf[end]."""
+    for i in range(width):
+        buf[end - 1 - i] = _ZERO_CH + v % 10
+        v //= 10
+
+
+@helper(cache=True)
+def _put_utc(buf, p, bits):
+    """Write POSIX seconds (the double with these bits) as 'YYYY-MM-DDThh:mm:ss.ffffffZ' at buf[p:], microseconds
+    rounded half to even (as Python's round()); nothing outside years 1-9999 or when not finite. Return the new
+    position."""
+    x = np.uint64(bits).view(np.float64)
+    m = np.rint(x * 1e6)
+    if not (m >= -9.2e18 and m <= 9.2e18):            # not finite, or beyond int64: no date
+        return p
+    us = np.int64(m)
+    if us < _FIRST_US or us > _LAST_US:
+        return p
+    days = us // _US_PER_DAY                           # floor division: days before 1970 too
+    rest = us - days * _US_PER_DAY
+    z = days + 719468                                  # civil_from_days: days from 0000-03-01
+    era = z // 146097
+    doe = z - era * 146097
+    yoe = (doe - doe // 1460 + doe // 36524 - doe // 146096) // 365
+    doy = doe - (365 * yoe + yoe // 4 - yoe // 100)
+    mp = (5 * doy + 2) // 153
+    day = doy - (153 * mp + 2) // 5 + 1
+    month = mp + 3 if mp < 10 else mp - 9
+    year = yoe + era * 400 + (1 if month <= 2 else 0)
+    secs = rest // 1000000
+    _put_fixed(buf, p + 4, year, 4)
+    buf[p + 4] = 45
+    _put_fixed(buf, p + 7, month, 2)
+    buf[p + 7] = 45
+    _put_fixed(buf, p + 10, day, 2)
+    buf[p + 10] = 84                                   # T
+    _put_fixed(buf, p + 13, secs // 3600, 2)
+    buf[p + 13] = 58
+    _put_fixed(buf, p + 16, secs // 60 % 60, 2)
+    buf[p + 16] = 58
+    _put_fixed(buf, p + 19, secs % 60, 2)
+    buf[p + 19] = _DOT
+    _put_fixed(buf, p + 26, rest % 1000000, 6)
+    buf[p + 26] = 90                                   # Z
+    return p + UTC_FIELD_CHARS
+
+
 @entry("i8(i8, u8[:, ::1], i8[:, ::1], i8[::1], i8[::1], u1[::1])",
-       cache=True, nogil=True)        # nogil: replay formats one block while the next is estimated
+       cache=True, nogil=True)        # nogil: the logger and replay format while the estimation goes on
 def _format_rows(n, fbits, ivals, kinds, src, buf):
     """Write n CSV lines into buf from float bits (F, n) and ints (I, n) per column kind; return the length."""
     p = 0
@@ -325,20 +381,30 @@ def _format_rows(n, fbits, ivals, kinds, src, buf):
                 p = _put_float(buf, p, fbits[src[c], r])
             elif k == 1:
                 p = _put_int(buf, p, ivals[src[c], r])
+            elif k == 3:
+                p = _put_utc(buf, p, fbits[src[c], r])
             buf[p] = _COMMA if c + 1 < ncol else _NL
             p += 1
     return p
 
 
-def format_rows(columns: list[np.ndarray | None], out: np.ndarray | None = None) -> bytes | memoryview:
-    """Return CSV lines (ASCII, '\\n' endings) of equal-length columns: float64 as repr, int64 as str, None empty.
+def text_capacity(rows: int, columns: int, utc: bool = False) -> int:
+    """Return the bytes `rows` CSV lines of `columns` fields can take at most (one of them `utc` text if utc)."""
+    return rows * (columns * (MAX_FIELD_CHARS + 1) + (UTC_FIELD_CHARS - MAX_FIELD_CHARS if utc else 0))
 
-    With `out` (a uint8 buffer of at least rows * columns * (MAX_FIELD_CHARS + 1) bytes) the text is
+
+def format_rows(columns: list[np.ndarray | None], out: np.ndarray | None = None, utc: int | None = None
+                ) -> bytes | memoryview:
+    """Return CSV lines (ASCII, '\\n' endings) of equal-length columns: float64 as repr, int64 as str, None empty;
+    column number `utc` (float64 POSIX s) as ISO 8601 UTC text with microseconds (io/sinks.py utc_iso; empty when
+    not finite or outside years 1-9999).
+
+    With `out` (a uint8 buffer of at least text_capacity(rows, columns, utc is not None) bytes) the text is
     written there and a memoryview of it is returned, valid until the buffer is reused.
     """
     n = next((len(c) for c in columns if c is not None), 0)
     floats, ints, kinds, src = [], [], [], []
-    for col in columns:
+    for c, col in enumerate(columns):
         if col is None:
             kinds.append(KIND_EMPTY)
             src.append(0)
@@ -347,22 +413,22 @@ def format_rows(columns: list[np.ndarray | None], out: np.ndarray | None = None)
         if col.shape != (n,):
             raise ValueError(f"columns must be 1-D of one length {n}, got shape {col.shape}")
         if col.dtype == np.float64:
-            kinds.append(KIND_FLOAT)
+            kinds.append(KIND_UTC if c == utc else KIND_FLOAT)
             src.append(len(floats))
             floats.append(col.view(np.uint64))
-        elif col.dtype == np.int64:
+        elif col.dtype == np.int64 and c != utc:
             kinds.append(KIND_INT)
             src.append(len(ints))
             ints.append(col)
         else:
-            raise TypeError(f"columns must be float64 or int64, got {col.dtype}")
+            raise TypeError(f"columns must be float64 or int64 (utc: float64), got {col.dtype}")
     fbits = np.empty((len(floats), n), np.uint64)
     for k, col in enumerate(floats):
         fbits[k] = col
     ivals = np.empty((len(ints), n), np.int64)
     for k, col in enumerate(ints):
         ivals[k] = col
-    need = n * len(columns) * (MAX_FIELD_CHARS + 1)
+    need = text_capacity(n, len(columns), utc is not None)
     if out is None:
         buf = np.empty(need, np.uint8)
     elif out.dtype != np.uint8 or out.ndim != 1 or out.size < need:
@@ -371,6 +437,27 @@ def format_rows(columns: list[np.ndarray | None], out: np.ndarray | None = None)
         buf = out
     length = _format_rows(n, fbits, ivals, np.array(kinds, np.int64), np.array(src, np.int64), buf)
     return memoryview(buf)[:length] if out is not None else buf[:length].tobytes()
+
+
+def format_matrix(floats: np.ndarray, more_floats: list[np.ndarray], ints: np.ndarray, more_ints: list[np.ndarray],
+                  kinds: list[int], src: list[int]) -> bytes:
+    """Return CSV lines of N rows whose fields come from float64 (N, F) and int64 (N, I) matrices and further (N,)
+    columns: field c is kinds[c] (KIND_FLOAT, KIND_INT, KIND_UTC: POSIX s as ISO 8601 text, KIND_EMPTY) of
+    column src[c] of the floats (F.. are more_floats) or ints (I.. are more_ints)."""
+    n, n_f = floats.shape
+    fbits = np.empty((n_f + len(more_floats), n), np.uint64)
+    as_floats = fbits.view(np.float64)
+    as_floats[:n_f] = floats.T
+    for k, col in enumerate(more_floats):
+        as_floats[n_f + k] = col
+    n_i = ints.shape[1]
+    ivals = np.empty((n_i + len(more_ints), n), np.int64)
+    ivals[:n_i] = ints.T
+    for k, col in enumerate(more_ints):
+        ivals[n_i + k] = col
+    kinds_a = np.array(kinds, np.int64)
+    buf = np.empty(text_capacity(n, len(kinds), KIND_UTC in kinds), np.uint8)
+    return buf[:_format_rows(n, fbits, ivals, kinds_a, np.array(src, np.int64), buf)].tobytes()
 
 
 def float_texts(values: np.ndarray) -> list[str]:

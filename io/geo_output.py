@@ -171,15 +171,11 @@ class GeoOutput:
         sb = np.array([e.extras.get("sigma_b_nT", math.nan) for e in estimates], float)
         return self.columns(t, u, b, s, sb, host_utc)
 
-    def add_to_rows(self, rows: list[dict], record, host_utc=None) -> list[dict]:
-        """Return the record dicts (live sinks) with the added columns of their TrackRecord filled in."""
-        if not self.enabled or not rows:
-            return rows
-        cols = {k: np.asarray(v).tolist() for k, v in self.for_record(record, host_utc).items()}
-        for i, row in enumerate(rows):
-            for k, v in cols.items():
-                row[k] = v[i]
-        return rows
+    def add_to_block(self, block, record, host_utc=None):
+        """Return the RowBlock of a TrackRecord (the live loggers' batch) with the added columns."""
+        if not self.enabled or not len(block):
+            return block
+        return block.with_columns(self.for_record(record, host_utc))
 
     def metadata(self) -> dict[str, str]:
         """Return the estimates file's '# key: value' lines: start_utc, its source, the mounting and the site."""

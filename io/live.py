@@ -30,13 +30,15 @@ from fieldvane.io.capture_thread import DEFAULT_CAPTURE_BUFFER_BYTES, CaptureThr
 from fieldvane.io.csv_lines import CsvLineDecoder
 from fieldvane.io.errors import EXIT_CAPTURE_LOST, EXIT_FAILURE, EXIT_INTERRUPTED, InputError
 from fieldvane.io.serial_link import SerialLink
+from fieldvane.io.row_block import RowBlock
 from fieldvane.io.sinks import Sink, TcpServerTransport, close_sinks, open_sink
 from fieldvane.io.wire import VERSION as WIRE_VERSION
 from fieldvane.io.wire import FrameDecoder
 
 INPUT_FORMATS = ("binary", "csv")
 Estimate = Callable[[Sample], "Mapping | None"]
-EstimateBatch = Callable[[list], "list[Mapping | None]"]
+# A batch's records: one per sample (None: no estimate), or a RowBlock of them (handed to each logger whole).
+EstimateBatch = Callable[[list], "list[Mapping | None] | RowBlock"]
 REPEAT_LOG_S = 10.0          # a continuing problem is logged again at most this often
 # Python hands its interpreter lock between threads every 5 ms by default: the link's reader, the loop and the
 # loggers' writers would wait that long for one another. While the loop runs they take turns every 0.2 ms.
@@ -206,7 +208,8 @@ class LiveLoop:
         # counters()); it replaces the periodic counter line. counters_report(loop, final) shows the counters
         # on SIGUSR1 (final=False) and at the end (final=True, instead of the one-line final summary).
         self.status, self.status_interval_s, self.counters_report = status, status_interval_s, counters_report
-        self.last_record: Mapping | None = None
+        self._last_record: Mapping | None = None
+        self._last_block: RowBlock | None = None
         # host receive time (ns) of the chunk that completed each sample handed to the current estimate
         # call, one per sample (a capture replay gives the samples the same times: runs_from_capture)
         self.sample_host_times_ns: list[int] = []
@@ -412,8 +415,11 @@ class LiveLoop:
                 if self.estimate_errors <= self.max_logged_errors * len(batch):
                     self.log(f"fieldvane live: estimate failed at t={batch[0].t!r}..{batch[-1].t!r}: {exc!r}")
                 continue
-            for record in records:
-                self._deliver(record)
+            if isinstance(records, RowBlock):
+                self._deliver_block(records)
+            else:
+                for record in records:
+                    self._deliver(record)
 
     def _paused_at(self, samples: list[Sample], host_ns: list[int], i: int) -> bool:
         """Return True (samples[i:] kept for later) when the loop must pause before sample i."""
@@ -433,9 +439,25 @@ class LiveLoop:
         if record is None:
             return
         self.records += 1
-        self.last_record = record
+        self._last_record, self._last_block = record, None
         for sink in self.sinks:
             sink.emit(record)
+
+    def _deliver_block(self, block: RowBlock) -> None:
+        """Count a batch's estimate records and hand the whole block to every sink (one queue entry each)."""
+        if not len(block):
+            return
+        self.records += len(block)
+        self._last_block = block
+        for sink in self.sinks:
+            sink.emit_block(block)
+
+    @property
+    def last_record(self) -> Mapping | None:
+        """Return the latest estimate record handed to the sinks (a dict), None before the first."""
+        if self._last_block is not None:
+            return self._last_block[-1]
+        return self._last_record
 
     # -- reporting problems at once (from this thread only)
 

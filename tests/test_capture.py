@@ -8,6 +8,7 @@ import json
 import os
 import random
 import struct
+import time
 import zlib
 
 import pytest
@@ -311,3 +312,38 @@ def test_capture_thread_accounts_every_byte(tmp_path, monkeypatch):
     kinds = [(ch.event, ch.lost) for ch in read_capture(tmp_path) if ch.event]
     assert kinds == [(EVENT_LINK_OPEN, 0), (EVENT_LOST, 7 * 75)]
     assert [k for k, _ in th.events()] == ["overflow"]
+
+
+class BatchNotingWriter:
+    """A CaptureWriter stand-in that notes each batch it is handed."""
+
+    def __init__(self):
+        self.batches, self.bytes_lost = [], 0
+
+    def write_chunks(self, chunks):
+        self.batches.append(list(chunks))
+
+    def close(self):
+        pass
+
+
+def test_capture_thread_hands_over_bounded_batches_and_takes_the_rest_without_waiting(monkeypatch):
+    # The writer frames each chunk while holding the interpreter: batches are kept short, and what a short batch
+    # left behind is taken at once, not after the next write interval.
+    from fieldvane.io import capture_thread
+
+    monkeypatch.setattr(capture_thread, "WRITE_INTERVAL_S", 60.0)
+    w = BatchNotingWriter()
+    th = CaptureThread(w, max_buffered_bytes=1000)        # wakes once 500 bytes wait
+    n = 5 * capture_thread.MAX_BATCH_CHUNKS + 3
+    assert th.put(Chunk(0, b"y" * 500))
+    for i in range(1, n + 1):
+        assert th.put(Chunk(i, b"x"))
+    th.start()
+    deadline = time.monotonic() + 10.0
+    while sum(map(len, w.batches)) < n + 1 and time.monotonic() < deadline:
+        time.sleep(0.01)
+    assert sum(map(len, w.batches)) == n + 1                  # all of it, long before the 60 s interval
+    assert max(map(len, w.batches)) <= capture_thread.MAX_BATCH_CHUNKS
+    assert [c.host_time_ns for b in w.batches for c in b] == list(range(n + 1))
+    assert th.close(10.0)

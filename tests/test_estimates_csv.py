@@ -1,6 +1,7 @@
 """Estimates CSV: compiled float text equal to Python's repr, block writer byte-identical to the CSV
 sink, exact round trip through the reader, clear errors, nothing left behind on failure."""
 
+import datetime
 import math
 import os
 
@@ -12,9 +13,10 @@ from hypothesis import strategies as st
 from fieldvane.estimator.estimate import ESTIMATE_COLUMNS, Estimate
 from fieldvane.io.errors import InputError, JobError
 from fieldvane.estimator.tracker import TrackRecord
-from fieldvane.io.estimates_csv import (EstimatesWriter, estimate_columns, read_estimates, record_rows,
-                                        records_text)
+from fieldvane.io.estimates_csv import (EstimatesWriter, block_text, estimate_columns, read_estimates,
+                                        record_block, record_rows, records_text)
 from fieldvane.io.float_text import float_texts, format_rows
+from fieldvane.io.row_block import RowBlock
 from fieldvane.io.sinks import make_formatter
 
 # ---------------------------------------------------------------- float text against repr()
@@ -107,6 +109,11 @@ def test_record_rows_equal_the_rows_of_its_estimates(n, optional):
                       ints[1], 20000 + values[3], 20000 - values[3], np.abs(values[2]), readouts, **extra)
     rows, reference = record_rows(rec), [e.row() for e in rec.estimates()]
     assert len(rows) == len(reference) == n
+    block = record_block(rec)
+    assert len(block) == n and repr(list(block)) == repr(rows)              # (repr: nan equals nan)
+    if n:
+        assert list(block.keys()) == list(rows[0])
+        assert repr(block[-1]) == repr(rows[-1]) and repr(list(block[1:])) == repr(rows[1:])
     for row, ref in zip(rows, reference):
         assert list(row) == list(ref)
         for key, value in ref.items():
@@ -180,6 +187,61 @@ def test_csv_logger_batches_are_the_bytes_of_its_single_records():
     assert fmt.format_many(whole) == [fmt.format(r) for r in whole]
     assert fmt.format(whole[0]).endswith(",2023-11-14T22:13:20.000000Z\n")    # 1.7e9 s after 1970, as date(1) says
     assert ",1,-48.4" in fmt.format(records[0]) and fmt.format(records[0]).endswith("Z\n")     # bool 1, utc text
+
+
+def _utc_reference(x: float) -> str:
+    # Reference: Python's datetime (proleptic Gregorian, years 1-9999), microseconds rounded half to even as
+    # round() does; empty outside datetime's range or when not finite (the sinks' rule, io/sinks.py utc_iso).
+    if not math.isfinite(x):
+        return ""
+    try:
+        d = datetime.datetime(1970, 1, 1) + datetime.timedelta(microseconds=round(x * 1e6))
+    except OverflowError:
+        return ""
+    return f"{d.year:04d}-{d.month:02d}-{d.day:02d}T{d.hour:02d}:{d.minute:02d}:{d.second:02d}.{d.microsecond:06d}Z"
+
+
+def test_compiled_utc_text_matches_pythons_datetime():
+    rng = np.random.default_rng(21)
+    first, last = -62135596800.0, 253402300799.999999                # 0001-01-01 and the end of 9999
+    x = np.concatenate([
+        rng.uniform(first - 1e9, last + 1e9, 30_000),                 # every era, and beyond both ends
+        1.7e9 + rng.uniform(0, 3e8, 20_000),                           # this century, sub-microsecond parts
+        np.round(rng.uniform(-1e10, 1e10, 5_000) * 1e6) / 1e6 + 0.5e-6,  # near the half-microsecond ties
+        [0.0, -0.0, 0.5e-6, 1.5e-6, 2.5e-6, -0.5e-6, -1e-7, first, first - 1e-6, first - 0.4e-6, last,
+         last + 1e-6, 951782400.0, 951868800.0, 4107542400.0, -2203891200.0,   # 2000-02-29, 2000-03-01, 2100, 1900
+         math.nan, math.inf, -math.inf, 1e300, -1e300, 9.3e12]])
+    got = format_rows([x], utc=0).decode("ascii").split("\n")[:-1]
+    want = [_utc_reference(v) for v in x.tolist()]
+    bad = [(v, g, w) for v, g, w in zip(x.tolist(), got, want) if g != w]
+    assert not bad, bad[:5]
+    # 2000 is a leap year, 1900 and 2100 are not (the Gregorian rule)
+    assert got[-10:-6] == ["2000-02-29T00:00:00.000000Z", "2000-03-01T00:00:00.000000Z",
+                           "2100-03-01T00:00:00.000000Z", "1900-03-01T00:00:00.000000Z"]
+    # Between other columns, in the width the buffer allows for it.
+    cols = [np.array([1.5, -2.0]), np.array([1.8e9, math.nan]), np.array([3, -4], np.int64)]
+    assert format_rows(cols, utc=1) == b"1.5,2027-01-15T08:00:00.000000Z,3\n-2.0,,-4\n"
+    with pytest.raises(TypeError):
+        format_rows([np.array([3], np.int64)], utc=0)                 # utc must be POSIX seconds (float64)
+
+
+def test_csv_logger_row_blocks_are_the_bytes_of_its_single_records():
+    # The live loop hands the CSV logger one RowBlock per batch; its columns are formatted in one compiled pass.
+    # The reference is the logger's own per-record format (repr of each float, utc_iso for utc).
+    cols = _random_columns(120, seed=17)
+    cols["utc"] = 1.8e9 + np.arange(120) * 1e-4
+    cols["flags"] = np.arange(120, dtype=np.int64) * 3
+    blocks = [RowBlock({k: v[lo:hi] for k, v in cols.items()}) for lo, hi in ((0, 1), (1, 3), (3, 120))]
+    fmt = make_formatter("csv", None)
+    fmt.bind(blocks[0].columns)
+    records = [r for b in blocks for r in b]
+    want = [fmt.format(r) for r in records]
+    assert fmt.format_items(blocks) == want
+    assert fmt.format_items([blocks[0], records[1], blocks[2]]) == [want[0], want[1]] + want[3:]   # mixed items
+    assert block_text(ESTIMATE_COLUMNS + fmt.extras, blocks[2]) is not None            # the compiled path
+    other = RowBlock({k: v[:2] for k, v in cols.items() if k != "nis"})                            # other columns
+    assert fmt.format_items([blocks[0], other]) == [want[0]] + [fmt.format(r) for r in other]
+    assert fmt.format_items([]) == []
 
 
 def test_explicit_extras_absent_columns_are_empty(tmp_path):

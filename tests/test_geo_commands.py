@@ -22,6 +22,7 @@ from fieldvane.io.geo_output import HostClock, read_metadata
 from fieldvane.io.recording import read_recording
 from fieldvane.io.sinks import make_formatter
 from fieldvane.io.sitefile import parse_utc
+from fieldvane.io.row_block import RowBlock
 from fieldvane.io.utc_text import iso_texts, posix_from_texts
 from fieldvane.io.wire import Frame, encode_frame
 
@@ -335,7 +336,8 @@ def test_live_rows_get_utc_and_the_sites_columns():
     rec = SimpleNamespace(t=np.arange(n) * 0.005, u=np.tile(b_s / np.linalg.norm(b_s), (n, 1)),
                           b_nT=np.full(n, np.linalg.norm(b_s)), sigma_deg=np.full(n, 0.03),
                           sigma_b_nT=np.full(n, 0.5))
-    rows = geo.add_to_rows([{"t": float(t)} for t in rec.t], rec, np.array([1.0, 1.0, 2.0, 2.0]) + 1.8e9)
+    block = geo.add_to_block(RowBlock({"t": rec.t}), rec, np.array([1.0, 1.0, 2.0, 2.0]) + 1.8e9)
+    rows = list(block)
     want = elements(b_ned[None])
     for row in rows:
         assert row["D_deg"] == pytest.approx(float(want.d_deg[0]), abs=1e-9)

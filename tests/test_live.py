@@ -22,6 +22,7 @@ from cobs import cobs
 
 from fieldvane.io.capture import CaptureWriter, read_capture
 from fieldvane.io.live import LiveLoop, frames_from_capture, make_decoder, replay_capture
+from fieldvane.io.row_block import RowBlock
 from fieldvane.io.serial_link import SerialLink
 from fieldvane.io.sinks import (CsvFormatter, Sink, TcpServerTransport, Transport,
                                 close_sinks, open_sink)
@@ -127,7 +128,14 @@ def replay_to(capture_dir, path, fmt="csv", input_format=None):
     return counters
 
 
-def test_loop_url_faults_slow_loggers_capture_and_replay(tmp_path):
+def toy_block(samples):
+    """toy_estimate over a batch, as one RowBlock of its records (what `fieldvane run` hands the loggers)."""
+    rows = [r for r in map(toy_estimate, samples) if r is not None]
+    return RowBlock({k: np.array([r[k] for r in rows]) for k in rows[0]} if rows else {})
+
+
+@pytest.mark.parametrize("batched", [False, True], ids=["records", "row-blocks"])
+def test_loop_url_faults_slow_loggers_capture_and_replay(tmp_path, batched):
     stream, expected = faulty_stream(1, 300)
     port = serial.serial_for_url("loop://", timeout=0.05)
     link = SerialLink("loop://", opener=lambda: port)
@@ -142,7 +150,7 @@ def test_loop_url_faults_slow_loggers_capture_and_replay(tmp_path):
     assert tcp.wait_clients(1, TIMEOUT)
     logs = []
     loop = LiveLoop(link, make_decoder("binary"), toy_estimate, sinks, capture, log=logs.append,
-                    log_interval_s=0.0, sink_close_timeout_s=0.5)
+                    log_interval_s=0.0, sink_close_timeout_s=0.5, estimate_batch=toy_block if batched else None)
     th, result = start_loop(loop)
     try:
         assert link.connected.wait(TIMEOUT)
@@ -185,6 +193,8 @@ def test_loop_url_faults_slow_loggers_capture_and_replay(tmp_path):
     assert rep["decoder"] == {k: v for k, v in dec.items()}
     lines = (tmp_path / "live.csv").read_text().splitlines()
     assert len(lines) == 1 + records and lines[0].endswith("flags,f_b,n_channels")
+    last = toy_estimate(next(s for s in reversed(list(frames_from_capture(cap_dir))) if toy_estimate(s) is not None))
+    assert loop.last_record == last
 
 
 def _pty(path):

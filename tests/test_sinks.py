@@ -20,6 +20,7 @@ from hypothesis import given, settings
 from hypothesis import strategies as st
 
 from fieldvane.io.errors import InputError
+from fieldvane.io.row_block import RowBlock
 from fieldvane.io.sinks import (ESTIMATE_COLUMNS, NMEA_MNEMONIC, CsvFormatter, JsonlFormatter, NmeaFormatter,
                                 Sink, SinkSpec, StreamTransport, TcpServerTransport, Transport,
                                 close_sinks, nmea_checksum, open_sink, parse_sink_spec, utc_iso)
@@ -294,6 +295,49 @@ def test_blocked_writer_never_blocks_caller_and_counts_drops():
     c = sink.counters()
     assert c["written"] == 33 and c["dropped"] == 968 and c["queued"] == 0
     assert [json.loads(x)["t"] for x in t.lines] == [record(i)["t"] for i in range(33)]
+
+
+def _block(lo, hi):
+    rows = [record(i) for i in range(lo, hi)]
+    return RowBlock({k: np.array([r[k] for r in rows]) for k in rows[0]})
+
+
+def test_row_blocks_count_as_their_records_in_the_bounded_queue():
+    # The live loop hands each sink one RowBlock per batch: the queue's bound, the drops and the counters are in
+    # records, a block that does not fit is cut (its first records kept), and every format writes its rows.
+    t = BlockingTransport()
+    sink = Sink(JsonlFormatter(), t, queue_size=10, max_batch=4)
+    assert sink.emit_block(_block(0, 1)) == 1
+    assert t.entered.wait(TIMEOUT)        # the writer holds one batch (one record) and is stuck in write()
+    assert sink.emit_block(_block(1, 7)) == 6
+    assert sink.emit(record(7))
+    assert sink.emit_block(_block(8, 14)) == 3          # room for 3 of 6
+    assert sink.emit_block(_block(14, 16)) == 0
+    assert not sink.emit(record(16))
+    c = sink.counters()
+    assert (c["accepted"], c["dropped"], c["queued"]) == (11, 6, 11)
+    t.release.set()
+    assert sink.flush(TIMEOUT)
+    assert sink.close(TIMEOUT)
+    assert sink.emit_block(_block(20, 22)) == 0          # closed: refused, counted
+    c = sink.counters()
+    assert (c["written"], c["dropped"], c["queued"]) == (11, 8, 0)
+    assert [json.loads(x)["t"] for x in t.lines] == [record(i)["t"] for i in range(11)]
+    one = JsonlFormatter()
+    one.bind(record(3))
+    assert json.loads(t.lines[3]) == json.loads(one.format(record(3)))
+
+
+def test_csv_sink_writes_row_blocks_as_their_records(tmp_path):
+    a, b = open_sink(str(tmp_path / "blocks.csv")), open_sink(str(tmp_path / "records.csv"))
+    blocks = [_block(0, 1), _block(1, 40), _block(40, 41), _block(41, 300)]
+    for blk in blocks:
+        a.emit_block(blk)
+        for r in blk:
+            b.emit(r)
+    assert close_sinks([a, b], TIMEOUT)
+    text = (tmp_path / "blocks.csv").read_text()
+    assert text == (tmp_path / "records.csv").read_text() and text.count("\n") == 301
 
 
 def _read_lines(sock, n, out, stop, cond=None):
