@@ -352,7 +352,7 @@ class MagnitudeModel:
 
             if self._core is None:
                 self._core = self._core_arrays()
-            self._rows = bind(core.correct_rows, *self._core)
+            self._rows = bind(core.correct_rows, *self._core, trusted=True)
         return self._rows
 
     def correct(self, f_hz: np.ndarray, u: np.ndarray, u_cov=None) -> tuple[np.ndarray, np.ndarray, np.ndarray]:

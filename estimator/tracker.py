@@ -463,7 +463,7 @@ class Tracker:
         if prepare_rows is None:      # the tracker's constants, checked once
             prepare_rows = self._bound_prepare = bind(prepare_core.prepare_rows, self._gammas_array,
                                                       self._prepare_limits, self._sigma, self.model.starts,
-                                                      *self._model_error_arrays())
+                                                      *self._model_error_arrays(), trusted=True)
         prepare_rows(f, zr, b, per, flags, seg_t, seg, merr, zw)
         restart = np.zeros(n, np.int64) if restarted is None else np.ascontiguousarray(restarted, np.int64)
         return PreparedInput(t, zw, b, per, flags, seg, seg_t, restart, merr, z)
@@ -524,19 +524,21 @@ class Tracker:
         self._run_prepared(inp, fout, iout, sample_at)
         return fout, iout
 
-    def _record(self, t, fout, iout, b, per, readouts, f_hz, knots=None, lo=0) -> TrackRecord:
+    def _record(self, t, fout, iout, b, per, readouts, f_hz, knots=None, lo=0, own=False) -> TrackRecord:
         """Return the TrackRecord of core outputs (degrees, delay removed) with |B| from the magnitude model (samples
-        lo.. of the block `knots` belongs to; a block of their own without)."""
+        lo.. of the block `knots` belongs to; a block of their own without). own: fout and iout are this record's
+        alone (step_record's), so its columns are views of them rather than copies."""
+        if not own:
+            fout, iout = fout.copy(), iout.copy()
         with np.errstate(invalid="ignore"):
             bound_deg = np.degrees(np.sqrt(fout[:, core.O_BOUND2]))
-        u = fout[:, core.O_UX:core.O_UZ + 1].copy()
-        sigma = fout[:, core.O_SIGMA].copy()
-        flags = iout[:, core.J_FLAGS].copy()
+        u = fout[:, core.O_UX:core.O_UZ + 1].copy()         # (contiguous: the kernels take it)
+        sigma = fout[:, core.O_SIGMA]
         f_hz = np.atleast_2d(np.asarray(f_hz, float))
-        b, per, sigma_b, flags = self._magnitude(f_hz, u, sigma, b, per, flags, knots, lo)
-        return TrackRecord(t - self.delay_s, u, b, sigma, flags, fout[:, core.O_NIS].copy(), iout[:, core.J_DOF].copy(),
-                           per[:, 0].copy(), per[:, 1].copy(), bound_deg, readouts, fout[:, core.O_NOISE].copy(),
-                           iout[:, core.J_PROBES].copy(), fout[:, core.O_LOGLIK].copy(), sigma_b)
+        b, per, sigma_b, flags = self._magnitude(f_hz, u, sigma, b, per, iout[:, core.J_FLAGS], knots, lo)
+        return TrackRecord(t - self.delay_s, u, b, sigma, flags, fout[:, core.O_NIS], iout[:, core.J_DOF],
+                           per[:, 0].copy(), per[:, 1].copy(), bound_deg, readouts, fout[:, core.O_NOISE],
+                           iout[:, core.J_PROBES], fout[:, core.O_LOGLIK], sigma_b)
 
     def _knots(self, n: int) -> MagnitudeKnots | None:
         """Return the magnitude knots of a block of n samples, or None without a calibrated magnitude model."""
@@ -560,7 +562,7 @@ class Tracker:
         """Run the core over prepared samples, asking the initiator whenever the core stops for a (re)start."""
         run_filter = self.__dict__.get("_bound_filter")
         if run_filter is None:        # the filter's own arrays, checked once (the live path calls this per batch)
-            run_filter = self._bound_filter = bind(core.run_filter, *self._arrays.kernel_args())
+            run_filter = self._bound_filter = bind(core.run_filter, *self._arrays.kernel_args(), trusted=True)
         i, n = 0, len(inp.t)
         pending, answer = 0, (False, _NO_U, _NO_U, _NO_COV)
         while True:
@@ -637,7 +639,7 @@ class Tracker:
         iout = np.zeros((n, core.N_IOUT), np.int64)
         self._run_prepared(inp, fout, iout, sample_at)
         readouts = channel_readouts(inp.z, self.channels) if self.report_channels else {}
-        return self._record(t, fout, iout, inp.b_nT, inp.per_isotope_nT, readouts, f)
+        return self._record(t, fout, iout, inp.b_nT, inp.per_isotope_nT, readouts, f, own=True)
 
     _first_times: list
 

@@ -7,6 +7,7 @@ ahead-of-time build compiles exactly those); that wrong arrays are refused rathe
 a module older than its sources is not used; and that the live and replay paths never import numba.
 """
 
+import functools
 import importlib
 import json
 import os
@@ -241,6 +242,45 @@ def test_bound_entry_points_check_their_fixed_arrays_once_and_the_rest_at_every_
             kernels.bind(float_text._format_rows, 5, np.zeros((1, 5)))     # a fixed one: checked when bound
         with pytest.raises(TypeError, match="2 more, got 1"):
             bound(src)
+
+
+def test_trusted_binds_skip_the_per_call_checks_only_outside_the_test_suite(monkeypatch):
+    # The live path's own arrays are made with the declared types: its binds skip the per-call checks, except
+    # under FIELDVANE_CHECK_KERNELS=1, which tests/conftest.py sets so that every test checks them all.
+    from fieldvane.io import float_text
+
+    rows = np.arange(5.0).view(np.uint64).reshape(1, 5)
+    ints, kinds, src = np.zeros((0, 5), np.int64), np.zeros(1, np.int64), np.zeros(1, np.int64)
+    assert kernels.always_check()
+    checked = kernels.bind(float_text._format_rows, 5, rows, ints, kinds, trusted=True)
+    monkeypatch.setenv("FIELDVANE_CHECK_KERNELS", "")
+    fast = kernels.bind(float_text._format_rows, 5, rows, ints, kinds, trusted=True)
+    a, b = np.zeros(200, np.uint8), np.zeros(200, np.uint8)
+    assert fast(src, a) == checked(src, b) > 0 and np.array_equal(a, b)
+    if kernels.compiled_module() is not None:
+        with pytest.raises(TypeError, match="argument 5"):
+            checked(src, np.zeros(400, np.uint8)[::2])
+        assert isinstance(fast, functools.partial)            # no check of its own
+        with pytest.raises(TypeError, match="argument 1"):
+            kernels.bind(float_text._format_rows, 5, np.zeros((1, 5)), trusted=True)     # fixed ones: still checked
+
+
+def test_the_tracker_gives_the_same_estimates_with_and_without_the_per_call_checks(monkeypatch):
+    from fieldvane.estimator.filter_settings import FilterSettings
+    from fieldvane.estimator.snapshot import SnapshotSolver
+    from fieldvane.estimator.tracker import Tracker
+    from fieldvane.io.calfile import load_calibration
+    from fieldvane.io.recording import read_recording
+
+    cal = load_calibration(GOLDEN / "golden_cal.json")
+    block, _ = read_recording(GOLDEN / "golden_stream.csv")
+    runs = []
+    for check in ("1", ""):
+        monkeypatch.setenv("FIELDVANE_CHECK_KERNELS", check)
+        tracker = Tracker(cal, FilterSettings(), SnapshotSolver.from_calibration(cal).initiate)   # binds afresh
+        rec = [tracker.step_record(block[i:i + 3]) for i in range(0, min(len(block), 900), 3)]
+        runs.append(np.concatenate([np.column_stack([r.u, r.b_nT, r.sigma_deg, r.flags]) for r in rec]))
+    np.testing.assert_array_equal(runs[0], runs[1])
 
 
 def test_signature_parser_reads_each_array_argument():
