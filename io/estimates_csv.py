@@ -20,7 +20,7 @@ from fieldvane.estimator.estimate import ESTIMATE_COLUMNS, Estimate
 from fieldvane.io.errors import InputError, JobError
 from fieldvane.io.byte_lines import ByteLines
 from fieldvane.io.recording import fast_parse_lines
-from fieldvane.io.row_block import RowBlock
+from fieldvane.io.row_block import RowBlock, matrix_layout
 
 WRITE_BLOCK_ROWS = 8192        # rows formatted per compiled call (bounds the text buffer: ~3.5 MB)
 READ_CHUNK_ROWS = 65536        # lines parsed per compiled call when reading
@@ -45,14 +45,33 @@ def estimate_columns(t, u, b_nT, sigma_deg, flags, extras: Mapping[str, np.ndarr
 _FLOAT_BASE = ("t", "ux", "uy", "uz", "b_nT", "bx_nT", "by_nT", "bz_nT", "sigma_deg")   # the matrix's first columns
 
 
+_BLOCK_PLANS: dict[tuple, tuple | None] = {}     # the extras' (name, dtype, rank) -> (floats, ints, layout)
+
+
+def _block_plan(extras: Mapping[str, np.ndarray]) -> tuple | None:
+    """Return (float extras, int extras, layout) of records with these extra columns; None when one is of another
+    type (the general RowBlock then)."""
+    key = tuple((k, v.dtype.char, v.ndim) for k, v in extras.items())
+    if key in _BLOCK_PLANS:
+        return _BLOCK_PLANS[key]
+    fx = [k for k, v in extras.items() if v.dtype == np.float64 and v.ndim == 1]
+    ix = [k for k, v in extras.items() if v.dtype == np.int64 and v.ndim == 1]
+    plan = None
+    if len(fx) + len(ix) == len(extras):
+        plan = fx, ix, matrix_layout(ESTIMATE_COLUMNS + tuple(extras), _FLOAT_BASE + tuple(fx), ("flags", *ix))
+    if len(_BLOCK_PLANS) < 256:
+        _BLOCK_PLANS[key] = plan
+    return plan
+
+
 def record_block(record) -> RowBlock:
     """Return a TrackRecord's estimates CSV columns as a RowBlock (the live path: one per batch to each logger);
     its values are estimate_columns' (bx_nT..bz_nT = b_nT * u)."""
     extras = record.extra_columns()
-    fx = [k for k, v in extras.items() if v.dtype == np.float64 and v.ndim == 1]
-    ix = [k for k, v in extras.items() if v.dtype == np.int64 and v.ndim == 1]
-    if len(fx) + len(ix) < len(extras):
+    plan = _block_plan(extras)
+    if plan is None:
         return RowBlock(estimate_columns(record.t, record.u, record.b_nT, record.sigma_deg, record.flags, extras))
+    fx, ix, layout = plan
     n = len(record.t)
     floats = np.empty((n, 9 + len(fx)))
     floats[:, 0] = record.t
@@ -66,8 +85,7 @@ def record_block(record) -> RowBlock:
     ints[:, 0] = record.flags
     for j, k in enumerate(ix):
         ints[:, 1 + j] = extras[k]
-    return RowBlock.of_matrices(_FLOAT_BASE + tuple(fx), floats, ("flags", *ix), ints,
-                                ESTIMATE_COLUMNS + tuple(extras))
+    return RowBlock.of_layout(layout, floats, ints)
 
 
 def record_rows(record) -> list[dict]:

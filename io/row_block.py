@@ -15,6 +15,7 @@ import numpy as np
 
 _F8, _I8 = np.dtype(np.float64), np.dtype(np.int64)
 _LAYOUTS: dict[tuple, dict] = {}        # one layout object per set of columns: blocks alike are told by identity
+_ADDED: dict[tuple, tuple] = {}         # (layout id, added names) -> (that layout, names, the layout with them)
 
 
 class RowBlock(Sequence):
@@ -47,9 +48,17 @@ class RowBlock(Sequence):
                     names: Sequence[str] | None = None) -> RowBlock:
         """Return a block of float64 (N, F) and int64 (N, I) matrices whose columns are these names (row keys in
         `names` order, by default the floats' then the ints')."""
-        block = cls.__new__(cls)
         order = tuple(names) if names is not None else tuple(float_names) + tuple(int_names)
-        block._set(order, float_names, floats, int_names, ints, {})
+        return cls.of_layout(matrix_layout(order, float_names, int_names), floats, ints)
+
+    @classmethod
+    def of_layout(cls, layout: tuple[tuple[str, ...], dict], floats: np.ndarray, ints: np.ndarray) -> RowBlock:
+        """Return a block of float64 (N, F) and int64 (N, I) matrices laid out as matrix_layout() said (the live
+        path: the layout made once, the block per batch)."""
+        block = cls.__new__(cls)
+        block.names, block._where = layout
+        block.floats, block.ints, block.others = floats, ints, {}
+        block._n, block._rows = floats.shape[0], None
         return block
 
     def _set(self, names, float_names, floats, int_names, ints, others) -> None:
@@ -102,13 +111,22 @@ class RowBlock(Sequence):
             raise ValueError(f"added columns must have {self._n} rows")
         others = dict(self.others)
         others.update(more)
-        names = self.names + tuple(k for k in more if k not in self._where)      # a replaced column keeps its place
-        fnames = [k for k, (g, _) in self._where.items() if g == "f" and k not in more]
-        inames = [k for k, (g, _) in self._where.items() if g == "i" and k not in more]
-        if len(fnames) < self.floats.shape[1] or len(inames) < self.ints.shape[1]:
-            return RowBlock({k: others[k] if k in others else self.column(k) for k in names})
+        key = (id(self._where), tuple(more))
+        known = _ADDED.get(key)
+        if known is None or known[0] is not self._where:
+            if any(self._where.get(k, ("o",))[0] != "o" for k in more):      # a matrix column replaced: rebuild
+                names = self.names + tuple(k for k in more if k not in self._where)
+                return RowBlock({k: others[k] if k in others else self.column(k) for k in names})
+            names = self.names + tuple(k for k in more if k not in self._where)      # a replaced column keeps its place
+            where = dict(self._where)
+            where.update({k: ("o", k) for k in more})
+            known = (self._where, names, where)
+            if len(_ADDED) < 1024:
+                _ADDED[key] = known
         block = RowBlock.__new__(RowBlock)
-        block._set(names, fnames, self.floats, inames, self.ints, others)
+        block.names, block._where = known[1], known[2]
+        block.floats, block.ints, block.others = self.floats, self.ints, others
+        block._n, block._rows = self._n, None
         return block
 
     @staticmethod
@@ -142,3 +160,9 @@ def _layout(names: tuple, float_names, int_names, others) -> dict:
         if len(_LAYOUTS) < 1024:                # (a handful in practice: one per set of options)
             _LAYOUTS[key] = where
     return where
+
+
+def matrix_layout(names: Sequence[str], float_names: Sequence[str], int_names: Sequence[str]
+                  ) -> tuple[tuple[str, ...], dict]:
+    """Return (names, layout) of blocks whose float and int matrix columns are these names, for RowBlock.of_layout."""
+    return tuple(names), _layout(tuple(names), float_names, int_names, {})
