@@ -88,11 +88,6 @@ def record_block(record) -> RowBlock:
     return RowBlock.of_layout(layout, floats, ints)
 
 
-def record_rows(record) -> list[dict]:
-    """Return a TrackRecord's estimates CSV rows (name -> float or int), as Estimate.row() gives them."""
-    return record_block(record).rows()
-
-
 def _as_column(values) -> np.ndarray | None:
     """Return values as a float64 or int64 array when that writes the same text as the sink, else None."""
     if isinstance(values, np.ndarray):

@@ -4,7 +4,7 @@ The float64 columns sit in one (N, F) matrix and the int64 ones in one (N, I) ma
 joins the dozens of small batches it gathers with two array calls instead of one per column (at 10 kHz
 the per-column joins cost the CSV logger more than its formatting). A logger that writes text in compiled
 blocks (the CSV logger) formats the columns directly; any other takes the rows, the same dicts that
-`estimates_csv.record_rows` gives (name -> float or int, in column order).
+`Estimate.row()` gives (name -> float or int, in column order).
 """
 
 from __future__ import annotations
@@ -40,8 +40,19 @@ class RowBlock(Sequence):
         ints = np.empty((n, len(inames)), np.int64)
         for j, k in enumerate(inames):
             ints[:, j] = arrays[k]
-        grouped = set(fnames) | set(inames)
-        self._set(tuple(arrays), fnames, floats, inames, ints, {k: v for k, v in arrays.items() if k not in grouped})
+        others = {k: v for k, v in arrays.items() if k not in set(fnames) | set(inames)}
+        names = tuple(arrays)
+        self._fill(names, _layout(names, fnames, inames, others), floats, ints, others)
+
+    @classmethod
+    def _made(cls, names, where, floats, ints, others) -> RowBlock:
+        block = cls.__new__(cls)
+        block._fill(names, where, floats, ints, others)
+        return block
+
+    def _fill(self, names, where, floats, ints, others) -> None:
+        self.names, self._where, self.floats, self.ints, self.others = names, where, floats, ints, others
+        self._n, self._rows = floats.shape[0], None
 
     @classmethod
     def of_matrices(cls, float_names: Sequence[str], floats: np.ndarray, int_names: Sequence[str], ints: np.ndarray,
@@ -55,17 +66,7 @@ class RowBlock(Sequence):
     def of_layout(cls, layout: tuple[tuple[str, ...], dict], floats: np.ndarray, ints: np.ndarray) -> RowBlock:
         """Return a block of float64 (N, F) and int64 (N, I) matrices laid out as matrix_layout() said (the live
         path: the layout made once, the block per batch)."""
-        block = cls.__new__(cls)
-        block.names, block._where = layout
-        block.floats, block.ints, block.others = floats, ints, {}
-        block._n, block._rows = floats.shape[0], None
-        return block
-
-    def _set(self, names, float_names, floats, int_names, ints, others) -> None:
-        self.names, self.floats, self.ints, self.others = names, floats, ints, others
-        self._where = _layout(names, float_names, int_names, others)
-        self._n = floats.shape[0]
-        self._rows: list[dict] | None = None
+        return cls._made(layout[0], layout[1], floats, ints, {})
 
     def __len__(self) -> int:
         return self._n
@@ -73,11 +74,8 @@ class RowBlock(Sequence):
     def __getitem__(self, index):
         """Row i as a dict, or a slice of rows as a RowBlock."""
         if isinstance(index, slice):
-            block = RowBlock.__new__(RowBlock)
-            block.names, block.floats, block.ints = self.names, self.floats[index], self.ints[index]
-            block.others = {k: v[index] for k, v in self.others.items()}
-            block._where, block._n, block._rows = self._where, block.floats.shape[0], None
-            return block
+            return RowBlock._made(self.names, self._where, self.floats[index], self.ints[index],
+                                  {k: v[index] for k, v in self.others.items()})
         return self.rows()[index]
 
     def __iter__(self):
@@ -114,20 +112,15 @@ class RowBlock(Sequence):
         key = (id(self._where), tuple(more))
         known = _ADDED.get(key)
         if known is None or known[0] is not self._where:
-            if any(self._where.get(k, ("o",))[0] != "o" for k in more):      # a matrix column replaced: rebuild
-                names = self.names + tuple(k for k in more if k not in self._where)
-                return RowBlock({k: others[k] if k in others else self.column(k) for k in names})
             names = self.names + tuple(k for k in more if k not in self._where)      # a replaced column keeps its place
+            if any(self._where.get(k, ("o",))[0] != "o" for k in more):      # a matrix column replaced: rebuild
+                return RowBlock({k: others[k] if k in others else self.column(k) for k in names})
             where = dict(self._where)
             where.update({k: ("o", k) for k in more})
             known = (self._where, names, where)
             if len(_ADDED) < 1024:
                 _ADDED[key] = known
-        block = RowBlock.__new__(RowBlock)
-        block.names, block._where = known[1], known[2]
-        block.floats, block.ints, block.others = self.floats, self.ints, others
-        block._n, block._rows = self._n, None
-        return block
+        return RowBlock._made(known[1], known[2], self.floats, self.ints, others)
 
     @staticmethod
     def join(blocks: Sequence[RowBlock]) -> RowBlock | None:
@@ -139,13 +132,9 @@ class RowBlock(Sequence):
             return first
         if any(b._where is not first._where for b in blocks):
             return None
-        block = RowBlock.__new__(RowBlock)
-        block.names, block._where, block._rows = first.names, first._where, None
-        block.floats = np.concatenate([b.floats for b in blocks])
-        block.ints = np.concatenate([b.ints for b in blocks])
-        block.others = {k: np.concatenate([b.others[k] for b in blocks]) for k in first.others}
-        block._n = block.floats.shape[0]
-        return block
+        return RowBlock._made(first.names, first._where, np.concatenate([b.floats for b in blocks]),
+                              np.concatenate([b.ints for b in blocks]),
+                              {k: np.concatenate([b.others[k] for b in blocks]) for k in first.others})
 
 
 def _layout(names: tuple, float_names, int_names, others) -> dict:

@@ -181,16 +181,22 @@ def records_of(items: Iterable[Mapping | RowBlock]) -> list[Mapping]:
     return records
 
 
+def _records_in(item: Mapping | RowBlock) -> int:
+    """Return how many records a queued item holds."""
+    return len(item) if type(item) is RowBlock else 1
+
+
 class _Formatter:
     """Turns records into lines; columns fixed first, extras after them in a stable order."""
 
     def __init__(self, extras: Sequence[str] | None = None):
         self.extras: tuple[str, ...] | None = tuple(extras) if extras is not None else None
 
-    def bind(self, record: Mapping) -> None:
-        """Fix the extra columns from the first record (sorted names) unless given explicitly."""
+    def bind(self, names: Iterable[str]) -> None:
+        """Fix the extra columns from the first record's column names (a record, or its keys), sorted, unless
+        given explicitly."""
         if self.extras is None:
-            self.extras = tuple(sorted(k for k in record if k not in ESTIMATE_COLUMNS))
+            self.extras = tuple(sorted(k for k in names if k not in ESTIMATE_COLUMNS))
 
     def header(self) -> str | None:
         """Return the header line (with line ending) or None when the format has none."""
@@ -842,17 +848,17 @@ class Sink:
                 if self.gather_s > 0 and not self._stop.is_set() and self.accepted - self._taken < self.max_batch:
                     time.sleep(self.gather_s)        # one wake-up per gathered batch, not per record (no wait for a backlog)
                 batch = [first]
-                rows = len(first) if type(first) is RowBlock else 1
+                rows = _records_in(first)
                 while rows < self.max_batch:
                     try:
                         item = q.get_nowait()
                     except queue.Empty:
                         break
                     batch.append(item)
-                    rows += len(item) if type(item) is RowBlock else 1
+                    rows += _records_in(item)
                 self._taken += rows
                 if not self._header_done:
-                    formatter.bind(first.columns if type(first) is RowBlock else first)
+                    formatter.bind(first.keys())          # (a record's or a RowBlock's column names)
                     self._write_header()
                 try:
                     lines = formatter.format_items(batch)

@@ -14,7 +14,7 @@ from fieldvane.estimator.estimate import ESTIMATE_COLUMNS, Estimate
 from fieldvane.io.errors import InputError, JobError
 from fieldvane.estimator.tracker import TrackRecord
 from fieldvane.io.estimates_csv import (EstimatesWriter, block_text, estimate_columns, read_estimates,
-                                        record_block, record_rows, records_text)
+                                        record_block, records_text)
 from fieldvane.io.float_text import float_texts, format_rows
 from fieldvane.io.row_block import RowBlock
 from fieldvane.io.sinks import make_formatter
@@ -94,8 +94,8 @@ def _sink_text(cols, extras=None):
 
 @pytest.mark.parametrize("optional", [True, False])
 @pytest.mark.parametrize("n", [0, 1, 40])
-def test_record_rows_equal_the_rows_of_its_estimates(n, optional):
-    """record_rows (the live loop's path) gives what Estimate.row() gives, value for value and type for type."""
+def test_record_block_rows_equal_the_rows_of_its_estimates(n, optional):
+    """record_block (the live loop's path) gives the rows Estimate.row() gives, value for value and type for type."""
     rng = np.random.default_rng(n)
     u = rng.normal(size=(n, 3))
     u /= np.linalg.norm(u, axis=1)[:, None]
@@ -107,7 +107,7 @@ def test_record_rows_equal_the_rows_of_its_estimates(n, optional):
     readouts = {"phase_1a_deg": values[4], "amp_1a_1b": -values[4]} if optional else {}
     rec = TrackRecord(np.arange(n) * 0.005, u, 20000 + values[0], np.abs(values[1]), ints[0], values[2] ** 2,
                       ints[1], 20000 + values[3], 20000 - values[3], np.abs(values[2]), readouts, **extra)
-    rows, reference = record_rows(rec), [e.row() for e in rec.estimates()]
+    rows, reference = record_block(rec).rows(), [e.row() for e in rec.estimates()]
     assert len(rows) == len(reference) == n
     block = record_block(rec)
     assert len(block) == n and repr(list(block)) == repr(rows)              # (repr: nan equals nan)
