@@ -1118,6 +1118,42 @@ def run_filter(cfg, icfg, w_table, exps, comp_probe, chan_probe, normalizers, ga
     return stop
 
 
+# ---- columns of a live batch's rows (estimator/tracker.py's ROW_FLOAT_COLUMNS and ROW_INT_COLUMNS name them)
+N_ROW_FLOATS, N_ROW_INTS = 15, 3
+
+
+@entry("i8(f8[:, ::1], i8[:, ::1], f8[::1], f8, f8[::1], f8[:, ::1], f8[::1], f8[:, ::1], i8[:, ::1])", cache=True,
+       nogil=True, error_model="numpy")
+def record_rows(fout, iout, t, delay, b, per, sigma_b, floats, ints):
+    """Write a batch's estimate rows: floats (N, N_ROW_FLOATS) t - delay s, u (3, sensor frame), |B| nT, B (3) nT,
+    sigma deg, NIS, |B| per isotope (2) nT, bound deg, sigma_b nT, noise scale; ints (N, N_ROW_INTS) flags, NIS
+    dof, probes used; from the core's outputs, the sample times t (N,) s and the corrected |B| (N,), per isotope
+    (N, 2) and sigma_b (N,) nT. The values the tracker's TrackRecord holds, bit for bit; return N."""
+    n = fout.shape[0]
+    for i in range(n):
+        ux, uy, uz, bi = fout[i, O_UX], fout[i, O_UY], fout[i, O_UZ], b[i]
+        floats[i, 0] = t[i] - delay
+        floats[i, 1] = ux
+        floats[i, 2] = uy
+        floats[i, 3] = uz
+        floats[i, 4] = bi
+        floats[i, 5] = ux * bi
+        floats[i, 6] = uy * bi
+        floats[i, 7] = uz * bi
+        floats[i, 8] = fout[i, O_SIGMA]
+        floats[i, 9] = fout[i, O_NIS]
+        floats[i, 10] = per[i, 0]
+        floats[i, 11] = per[i, 1]
+        bound2 = fout[i, O_BOUND2]
+        floats[i, 12] = math.sqrt(bound2) * (180.0 / math.pi) if bound2 >= 0.0 else math.nan   # numpy.degrees
+        floats[i, 13] = sigma_b[i]
+        floats[i, 14] = fout[i, O_NOISE]
+        ints[i, 0] = iout[i, J_FLAGS]
+        ints[i, 1] = iout[i, J_DOF]
+        ints[i, 2] = iout[i, J_PROBES]
+    return n
+
+
 @helper(cache=True, nogil=True, inline="always")
 def _stage(fout, iout, i, flags, present, t, nis, dof, bound2, ll):
     """Keep sample i's partial output while Python asks the initiator (finish_acquisition completes it)."""

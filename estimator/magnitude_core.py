@@ -19,6 +19,7 @@ from __future__ import annotations
 import math
 
 import numpy as np
+from fieldvane.estimator.filter_core import J_FLAGS, O_SIGMA, O_UX, O_UY, O_UZ
 from fieldvane.kernels import entry, helper
 
 # Envelope codes (magnitude_model.ENVELOPES, in order) and the kinds of direction uncertainty.
@@ -369,13 +370,10 @@ def apply_corrections(per_c, fused, sigma_b, sigma_diff, tolerance, n_sigma, bit
     return n
 
 
-@entry("i8(f8[::1], i8[::1], f8, i8[::1], f8[:, :, ::1], f8[:, :, ::1], i8[:, ::1], f8[:, :, ::1], f8[::1], "
-       "f8[:, ::1], i8, f8[:, ::1], f8[:, ::1], f8[::1], " + _ROWS + ")", cache=True, nogil=True, error_model="numpy")
-def correct_rows(gammas, codes, reference, degrees, coef, unit_cov, exps, to_harm, log_levels, noise, newton_steps,
-                 f, u, sigma_deg, tolerance, n_sigma, bit, b, per, flags, sigma_b_out):
-    """Correct the tracker's rows in place by the magnitude model (its arrays first, as estimate_rows takes them) at
-    frequencies f (N, 2) Hz, directions u (N, 3) sensor frame with total angular 1-sigma sigma_deg (N,) deg, each
-    sample evaluated (a live batch); return N."""
+@helper(cache=True, nogil=True, error_model="numpy")
+def _correct_rows(gammas, codes, reference, degrees, coef, unit_cov, exps, to_harm, log_levels, noise, newton_steps,
+                  f, u, sigma_deg, tolerance, n_sigma, bit, b, per, flags, sigma_b_out):
+    """correct_rows' body (its arguments)."""
     n = f.shape[0]
     sigma = np.empty(n)
     for r in range(n):
@@ -385,4 +383,38 @@ def correct_rows(gammas, codes, reference, degrees, coef, unit_cov, exps, to_har
     for r in range(n):
         _apply_row(r, out[r, OUT_B_ISO], out[r, OUT_B_ISO + 1], out[r, OUT_B], out[r, OUT_SIGMA_B],
                    out[r, OUT_SIGMA_DIFF], tolerance, n_sigma, bit, b, per, flags, sigma_b_out)
+    return n
+
+
+_MODEL = "f8[::1], i8[::1], f8, i8[::1], f8[:, :, ::1], f8[:, :, ::1], i8[:, ::1], f8[:, :, ::1], f8[::1], f8[:, ::1], i8, "
+
+
+@entry("i8(" + _MODEL + "f8[:, ::1], f8[:, ::1], f8[::1], " + _ROWS + ")", cache=True, nogil=True, error_model="numpy")
+def correct_rows(gammas, codes, reference, degrees, coef, unit_cov, exps, to_harm, log_levels, noise, newton_steps,
+                 f, u, sigma_deg, tolerance, n_sigma, bit, b, per, flags, sigma_b_out):
+    """Correct the tracker's rows in place by the magnitude model (its arrays first, as estimate_rows takes them) at
+    frequencies f (N, 2) Hz, directions u (N, 3) sensor frame with total angular 1-sigma sigma_deg (N,) deg, each
+    sample evaluated (a live batch); return N."""
+    return _correct_rows(gammas, codes, reference, degrees, coef, unit_cov, exps, to_harm, log_levels, noise,
+                         newton_steps, f, u, sigma_deg, tolerance, n_sigma, bit, b, per, flags, sigma_b_out)
+
+
+@entry("i8(" + _MODEL + "f8[:, ::1], f8[:, ::1], i8[:, ::1], f8, f8, i8, f8[::1], f8[:, ::1], f8[::1])", cache=True,
+       nogil=True, error_model="numpy")
+def correct_core_rows(gammas, codes, reference, degrees, coef, unit_cov, exps, to_harm, log_levels, noise,
+                      newton_steps, f, fout, iout, tolerance, n_sigma, bit, b, per, sigma_b_out):
+    """correct_rows on the filter core's own outputs: u, sigma and flags read from fout (N, N_FOUT) and iout
+    (N, N_IOUT) (estimator/filter_core.py's O_* and J_* columns), the flags corrected in iout; return N."""
+    n = f.shape[0]
+    u = np.empty((n, 3))
+    sigma_deg = np.empty(n)
+    flags = np.empty(n, np.int64)
+    for r in range(n):
+        u[r, 0], u[r, 1], u[r, 2] = fout[r, O_UX], fout[r, O_UY], fout[r, O_UZ]
+        sigma_deg[r] = fout[r, O_SIGMA]
+        flags[r] = iout[r, J_FLAGS]
+    _correct_rows(gammas, codes, reference, degrees, coef, unit_cov, exps, to_harm, log_levels, noise, newton_steps,
+                  f, u, sigma_deg, tolerance, n_sigma, bit, b, per, flags, sigma_b_out)
+    for r in range(n):
+        iout[r, J_FLAGS] = flags[r]
     return n

@@ -27,12 +27,17 @@ _DISAGREE = int(EstimateFlag.MAGNITUDE_DISAGREE)
 _NO_ROWS, _NO_SERIES = np.zeros(0, np.intp), np.zeros((0, _SERIES))     # a dense block's knots (never written)
 
 
+def evaluated_per_sample(n: int) -> bool:
+    """Return True when a block of n samples has the model evaluated at every sample (no knots)."""
+    return n <= 4 * MAGNITUDE_STRIDE
+
+
 class MagnitudeKnots:
     """The magnitude model's corrections at the knots of one block of n samples, filled as the filter advances."""
 
     def __init__(self, model, gammas_hz_per_nT: np.ndarray, n: int):
         self.model, self.gammas, self.n = model, gammas_hz_per_nT, n
-        self.dense = n <= 4 * MAGNITUDE_STRIDE
+        self.dense = evaluated_per_sample(n)
         if self.dense:                    # evaluated sample by sample: no knots (a live batch, every time)
             self.rows, self.series = _NO_ROWS, _NO_SERIES
         else:

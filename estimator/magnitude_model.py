@@ -275,7 +275,7 @@ class MagnitudeModel:
     rejected_rows: tuple[int, int] = (0, 0)
     degree_scores: tuple[dict, dict] = field(default_factory=lambda: ({}, {}))
     _core: tuple | None = field(default=None, init=False, repr=False, compare=False)   # estimate()'s kernel arrays
-    _rows: object = field(default=None, init=False, repr=False, compare=False)         # row_corrector()
+    _rows: object = field(default=None, init=False, repr=False, compare=False)         # row_corrector()'s two
 
     def __post_init__(self) -> None:
         self.gammas_hz_per_nt = np.asarray(self.gammas_hz_per_nt, float)
@@ -344,16 +344,19 @@ class MagnitudeModel:
                                  sigma_difference_nT=out[:, core.OUT_SIGMA_DIFF],
                                  weights=out[:, core.OUT_W:core.OUT_W + 2])
 
-    def row_corrector(self):
-        """Return magnitude_core.correct_rows with this model's arrays bound (checked once): the tracker's live rows."""
-        if self._rows is None:
+    def row_corrector(self, of_core: bool = False):
+        """Return magnitude_core.correct_rows with this model's arrays bound (checked once): the tracker's live rows;
+        of_core: correct_core_rows, which reads the directions and flags from the filter core's outputs."""
+        bound = self._rows
+        if bound is None:
             from fieldvane.estimator import magnitude_core as core
             from fieldvane.kernels import bind
 
             if self._core is None:
                 self._core = self._core_arrays()
-            self._rows = bind(core.correct_rows, *self._core, trusted=True)
-        return self._rows
+            bound = self._rows = (bind(core.correct_rows, *self._core, trusted=True),
+                                  bind(core.correct_core_rows, *self._core, trusted=True))
+        return bound[of_core]
 
     def correct(self, f_hz: np.ndarray, u: np.ndarray, u_cov=None) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
         """Return (|B| (N,) nT, per-isotope |B| (N, 2) nT, 1-sigma of |B| (N,) nT); arguments as in estimate()."""

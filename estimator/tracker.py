@@ -48,7 +48,8 @@ from fieldvane.estimator.filter_settings import FilterSettings
 from fieldvane.estimator.flags import EstimateFlag as F
 from fieldvane.estimator.lockin_noise import (autocorrelation, correlation_factor, group_delay_s,
                                               second_difference_variance)
-from fieldvane.estimator.magnitude_knots import MagnitudeKnots
+from fieldvane.estimator.magnitude import DISAGREE_SIGMAS
+from fieldvane.estimator.magnitude_knots import MagnitudeKnots, evaluated_per_sample
 from fieldvane.estimator.median import median
 from fieldvane.estimator.response import to_real
 from fieldvane.estimator.samples import Sample, SampleBlock, channel_probe
@@ -228,6 +229,14 @@ def gate_thresholds(settings: FilterSettings, n_meas: int) -> np.ndarray:
     return np.concatenate([[np.inf], chi2_quantile(settings.gate_probability, np.arange(1, n_meas + 1))])
 
 
+# The columns of Tracker.step_rows' two matrices (filter_core.record_rows writes them), and the extra
+# columns' written order (TrackRecord.extra_columns without channel readouts).
+ROW_FLOAT_COLUMNS = ("t", "ux", "uy", "uz", "b_nT", "bx_nT", "by_nT", "bz_nT", "sigma_deg", "nis", "b_a_nT", "b_b_nT",
+                     "bound_deg", "sigma_b_nT", "noise_scale")
+ROW_INT_COLUMNS = ("flags", "nis_dof", "probes_used")
+ROW_EXTRAS = ("nis", "nis_dof", "b_a_nT", "b_b_nT", "bound_deg", "sigma_b_nT", "noise_scale", "probes_used")
+
+
 @dataclass
 class PreparedInput:
     """Samples checked and converted once, vectorized, for the compiled core."""
@@ -242,6 +251,7 @@ class PreparedInput:
     restarted: np.ndarray  # (N,) 1 where the source restarted before the sample
     model_error: np.ndarray  # (N,) calibration model-error variance ratio at this |B|
     z: np.ndarray        # (N, C) complex, calibration channel order
+    f_hz: np.ndarray     # (N, 2) Hz, the isotopes' Larmor frequencies as given
 
 
 class Tracker:
@@ -466,7 +476,7 @@ class Tracker:
                                                       *self._model_error_arrays(), trusted=True)
         prepare_rows(f, zr, b, per, flags, seg_t, seg, merr, zw)
         restart = np.zeros(n, np.int64) if restarted is None else np.ascontiguousarray(restarted, np.int64)
-        return PreparedInput(t, zw, b, per, flags, seg, seg_t, restart, merr, z)
+        return PreparedInput(t, zw, b, per, flags, seg, seg_t, restart, merr, z, f)
 
     def _model_error_arrays(self) -> tuple[np.ndarray, np.ndarray]:
         """Return the model-error table (log|B| grid, worst-channel ratio), built at first use (the calibration's
@@ -616,6 +626,31 @@ class Tracker:
     def step_record(self, samples) -> TrackRecord:
         """Return the TrackRecord of a few live samples, Samples or a SampleBlock (one core call; channel sets may
         differ between calls)."""
+        inp, f, fout, iout = self._step(samples)
+        readouts = channel_readouts(inp.z, self.channels) if self.report_channels else {}
+        return self._record(inp.t, fout, iout, inp.b_nT, inp.per_isotope_nT, readouts, f, own=True)
+
+    def step_rows(self, samples) -> tuple[np.ndarray, np.ndarray]:
+        """Return a few live samples' estimates as rows (the live loggers' batch): floats (N, 15) and ints (N, 3),
+        the columns ROW_FLOAT_COLUMNS and ROW_INT_COLUMNS name (u sensor frame, |B| nT, sigma deg); the values
+        step_record gives, bit for bit (without channel readouts: step_record has them)."""
+        inp, f, fout, iout = self._step(samples)
+        n = len(inp.t)
+        b, per, sigma_b = inp.b_nT, inp.per_isotope_nT, np.empty(n)
+        mm = getattr(self.calibration, "magnitude_model", None)
+        if mm is not None and n and evaluated_per_sample(n):     # the usual live batch: one compiled call
+            mm.row_corrector(of_core=True)(f, fout, iout, self.settings.magnitude_tolerance, DISAGREE_SIGMAS,
+                                           int(F.MAGNITUDE_DISAGREE), b, per, sigma_b)
+        else:
+            u = fout[:, core.O_UX:core.O_UZ + 1].copy()
+            b, per, sigma_b, iout[:, core.J_FLAGS] = self._magnitude(f, u, fout[:, core.O_SIGMA], b, per,
+                                                                      iout[:, core.J_FLAGS])
+        floats, ints = np.empty((n, core.N_ROW_FLOATS)), np.empty((n, core.N_ROW_INTS), np.int64)
+        self._bound_rows(fout, iout, inp.t, self.delay_s, b, per, sigma_b, floats, ints)
+        return floats, ints
+
+    def _step(self, samples) -> tuple[PreparedInput, np.ndarray, np.ndarray, np.ndarray]:
+        """Run the core over a few live samples; return (prepared input, f (N, 2) Hz, fout, iout) of this batch."""
         if isinstance(samples, SampleBlock):
             t, f, z, channels, restarted = samples.t, samples.f, samples.z, samples.channels, samples.restarted
             sample_at = samples.sample
@@ -634,12 +669,18 @@ class Tracker:
         if not self._rate_known:
             self._note_times(t)
         inp = self.prepare(t, f, z, channels, restarted)
-        n = len(t)
+        n = len(inp.t)
         fout = np.empty((n, core.N_FOUT))
         iout = np.zeros((n, core.N_IOUT), np.int64)
         self._run_prepared(inp, fout, iout, sample_at)
-        readouts = channel_readouts(inp.z, self.channels) if self.report_channels else {}
-        return self._record(t, fout, iout, inp.b_nT, inp.per_isotope_nT, readouts, f, own=True)
+        return inp, inp.f_hz, fout, iout
+
+    @property
+    def _bound_rows(self):
+        bound = self.__dict__.get("_rows_kernel")
+        if bound is None:
+            bound = self._rows_kernel = bind(core.record_rows, trusted=True)
+        return bound
 
     _first_times: list
 

@@ -88,6 +88,22 @@ def record_block(record) -> RowBlock:
     return RowBlock.of_layout(layout, floats, ints)
 
 
+_TRACK_LAYOUT: tuple | None = None      # the layout of Tracker.step_rows' matrices (made at first use)
+
+
+def live_block(tracker, samples) -> RowBlock:
+    """Return the estimates of a few live samples as a RowBlock (one per batch to each logger): the tracker's
+    step_rows matrices as they are, or record_block(step_record(...)) when it reports channel readouts."""
+    if tracker.report_channels:
+        return record_block(tracker.step_record(samples))
+    global _TRACK_LAYOUT
+    if _TRACK_LAYOUT is None:
+        from fieldvane.estimator.tracker import ROW_EXTRAS, ROW_FLOAT_COLUMNS, ROW_INT_COLUMNS
+
+        _TRACK_LAYOUT = matrix_layout(ESTIMATE_COLUMNS + ROW_EXTRAS, ROW_FLOAT_COLUMNS, ROW_INT_COLUMNS)
+    return RowBlock.of_layout(_TRACK_LAYOUT, *tracker.step_rows(samples))
+
+
 def _as_column(values) -> np.ndarray | None:
     """Return values as a float64 or int64 array when that writes the same text as the sink, else None."""
     if isinstance(values, np.ndarray):

@@ -171,11 +171,16 @@ class GeoOutput:
         sb = np.array([e.extras.get("sigma_b_nT", math.nan) for e in estimates], float)
         return self.columns(t, u, b, s, sb, host_utc)
 
-    def add_to_block(self, block, record, host_utc=None):
-        """Return the RowBlock of a TrackRecord (the live loggers' batch) with the added columns."""
+    def add_to_block(self, block, host_utc=None):
+        """Return an estimates RowBlock (the live loggers' batch) with the added columns (its own t, u, |B|, sigmas)."""
         if not self.enabled or not len(block):
             return block
-        return block.with_columns(self.for_record(record, host_utc))
+        if self.site is None:               # utc only (the live default): no need of the other columns
+            return block.with_columns(self.columns(block.column("t"), None, None, None, None, host_utc))
+        col = block.column
+        u = np.column_stack([col("ux"), col("uy"), col("uz")])
+        sigma_b = col("sigma_b_nT") if "sigma_b_nT" in block.keys() else None
+        return block.with_columns(self.columns(col("t"), u, col("b_nT"), col("sigma_deg"), sigma_b, host_utc))
 
     def metadata(self) -> dict[str, str]:
         """Return the estimates file's '# key: value' lines: start_utc, its source, the mounting and the site."""

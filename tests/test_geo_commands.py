@@ -323,8 +323,6 @@ def test_bad_geographic_input_gets_one_line_and_exit_2(bad_files, capsys, name, 
 
 def test_live_rows_get_utc_and_the_sites_columns():
     # What `run --site` adds to each logger record: the same numbers as the block path of replay.
-    from types import SimpleNamespace
-
     from fieldvane.estimator.geomagnetic import attitude_matrix, elements, mounting_from_rotation_deg
     from fieldvane.io.geo_output import setup
 
@@ -333,10 +331,11 @@ def test_live_rows_get_utc_and_the_sites_columns():
     b_ned = np.array([21905.0, 1330.0, 42870.0])
     b_s = (attitude_matrix(131.5, 0.35, -0.6) @ geo.mounting).T @ b_ned
     n = 4
-    rec = SimpleNamespace(t=np.arange(n) * 0.005, u=np.tile(b_s / np.linalg.norm(b_s), (n, 1)),
-                          b_nT=np.full(n, np.linalg.norm(b_s)), sigma_deg=np.full(n, 0.03),
-                          sigma_b_nT=np.full(n, 0.5))
-    block = geo.add_to_block(RowBlock({"t": rec.t}), rec, np.array([1.0, 1.0, 2.0, 2.0]) + 1.8e9)
+    u = np.tile(b_s / np.linalg.norm(b_s), (n, 1))
+    given = RowBlock({"t": np.arange(n) * 0.005, "ux": u[:, 0], "uy": u[:, 1], "uz": u[:, 2],
+                      "b_nT": np.full(n, np.linalg.norm(b_s)), "sigma_deg": np.full(n, 0.03),
+                      "sigma_b_nT": np.full(n, 0.5)})
+    block = geo.add_to_block(given, np.array([1.0, 1.0, 2.0, 2.0]) + 1.8e9)
     rows = list(block)
     want = elements(b_ned[None])
     for row in rows:

@@ -61,6 +61,17 @@ MAGNITUDE_CASE = textwrap.dedent("""
             b, p, sigma_b, flags = knots.apply(0, f[:n], u[:n], np.full(n, 0.5), per[:n].mean(axis=1), per[:n],
                                                np.zeros(n, np.int64), 1e-3)
             out += [b, p[:, 0], p[:, 1], sigma_b, flags.astype(float)]
+        # The same live batch read from the filter core's outputs (correct_core_rows, the live loggers' rows).
+        from fieldvane.estimator import filter_core as fc
+        from fieldvane.estimator.flags import EstimateFlag
+        from fieldvane.estimator.magnitude import DISAGREE_SIGMAS
+        n = 20
+        fout, iout = np.zeros((n, fc.N_FOUT)), np.zeros((n, fc.N_IOUT), np.int64)
+        fout[:, fc.O_UX:fc.O_UZ + 1], fout[:, fc.O_SIGMA] = u[:n], 0.5
+        b, p, sigma_b = per[:n].mean(axis=1), per[:n].copy(), np.empty(n)
+        model.row_corrector(of_core=True)(np.ascontiguousarray(f[:n]), fout, iout, 1e-3, DISAGREE_SIGMAS,
+                                          int(EstimateFlag.MAGNITUDE_DISAGREE), b, p, sigma_b)
+        out += [b, p[:, 0], p[:, 1], sigma_b, iout[:, fc.J_FLAGS].astype(float)]
         return np.concatenate(out)
 """)
 
@@ -102,6 +113,7 @@ JIT_RUN = textwrap.dedent("""
     block, _ = read_recording(sys.argv[1] + "/golden_stream.csv")
     rec = Tracker(cal, FilterSettings(), SnapshotSolver.from_calibration(cal).initiate).run_arrays(block)
     text = float_text.format_rows([rec.u[:, 0], rec.flags, None, rec.sigma_deg]).decode()
+    Tracker(cal, FilterSettings(), SnapshotSolver.from_calibration(cal).initiate).step_rows(block[:40])
     exec(sys.argv[3])
     np.save(sys.argv[2] + "/magnitude.npy", magnitude_case())
     np.save(sys.argv[2] + "/frames.npy", frames_case())
@@ -169,6 +181,9 @@ def test_jit_and_this_process_correct_magnitudes_alike(jit_run):
     assert np.all(np.isfinite(here))
     assert np.allclose(here, jit_run["magnitude"], rtol=1e-12, atol=0)
     assert here.shape == jit_run["magnitude"].shape
+    # the live batch read from the core's outputs equals the same batch corrected from its own arrays
+    m = (len(here) - 100 - 500 - 100) // 3
+    assert np.array_equal(here[-100:], here[3 * m:3 * m + 100])
 
 
 def test_jit_and_this_process_decode_the_same_frames(jit_run):

@@ -82,7 +82,7 @@ def run(args) -> int:
     from fieldvane.firmware_sim.scenario import builtin_scenario_path, load_scenario, simulate
     from fieldvane.io.commands.calibrate import calibrate_file, summary_text
     from fieldvane.io.errors import InputError, JobError
-    from fieldvane.io.estimates_csv import record_block
+    from fieldvane.io.estimates_csv import live_block
     from fieldvane.io.estimation import settings_for_stream
     from fieldvane.io.live import run_live, runs_from_capture
     from fieldvane.io.recording import read_recording, write_recording
@@ -163,7 +163,7 @@ def run(args) -> int:
     _say("\n[4/6] tracking live (capture -> decode -> track -> logger files):")
     summary = run_live(sink.path, "binary", lambda s: tracker.step(s).row(), outputs, str(out / "capture"),
                        log=None, on_ready=drive, status=lambda lp: status.update(lp.last_record, lp.counters()),
-                       estimate_batch=lambda samples: record_block(tracker.step_record(samples)))
+                       estimate_batch=lambda samples: live_block(tracker, samples))
     status.close()
     emitter.stop()
     if summary.interrupted:
