@@ -465,7 +465,8 @@ class Tracker:
         z = self.calibrated_z(z, channels)
         t = np.ascontiguousarray(t, float)           # a column of a larger table arrives strided
         f = np.ascontiguousarray(np.atleast_2d(np.asarray(f_hz, float)))
-        zr = to_real(z)
+        # complex128's own layout is to_real's [X, Y, ...] per row: a C-ordered z is viewed, not copied
+        zr = z.view(np.float64) if z.flags.c_contiguous else to_real(z)
         n = len(zr)
         b, per, flags = np.empty(n), np.empty((n, 2)), np.empty(n, np.int64)
         seg, seg_t, merr, zw = np.empty(n, np.int64), np.empty(n), np.empty(n), np.empty(zr.shape)
@@ -630,10 +631,11 @@ class Tracker:
         readouts = channel_readouts(inp.z, self.channels) if self.report_channels else {}
         return self._record(inp.t, fout, iout, inp.b_nT, inp.per_isotope_nT, readouts, f, own=True)
 
-    def step_rows(self, samples) -> tuple[np.ndarray, np.ndarray]:
-        """Return a few live samples' estimates as rows (the live loggers' batch): floats (N, 15) and ints (N, 3),
-        the columns ROW_FLOAT_COLUMNS and ROW_INT_COLUMNS name (u sensor frame, |B| nT, sigma deg); the values
-        step_record gives, bit for bit (without channel readouts: step_record has them)."""
+    def step_rows(self, samples, spare_columns: int = 0) -> tuple[np.ndarray, np.ndarray]:
+        """Return a few live samples' estimates as rows (the live loggers' batch): floats (N, 15 + spare_columns)
+        and ints (N, 3), the columns ROW_FLOAT_COLUMNS and ROW_INT_COLUMNS name (u sensor frame, |B| nT, sigma
+        deg), the spare ones left for the caller; the values step_record gives, bit for bit (without channel
+        readouts: step_record has them)."""
         inp, f, fout, iout = self._step(samples)
         n = len(inp.t)
         b, per, sigma_b = inp.b_nT, inp.per_isotope_nT, np.empty(n)
@@ -645,7 +647,7 @@ class Tracker:
             u = fout[:, core.O_UX:core.O_UZ + 1].copy()
             b, per, sigma_b, iout[:, core.J_FLAGS] = self._magnitude(f, u, fout[:, core.O_SIGMA], b, per,
                                                                       iout[:, core.J_FLAGS])
-        floats, ints = np.empty((n, core.N_ROW_FLOATS)), np.empty((n, core.N_ROW_INTS), np.int64)
+        floats, ints = np.empty((n, core.N_ROW_FLOATS + spare_columns)), np.empty((n, core.N_ROW_INTS), np.int64)
         self._bound_rows(fout, iout, inp.t, self.delay_s, b, per, sigma_b, floats, ints)
         return floats, ints
 

@@ -88,20 +88,28 @@ def record_block(record) -> RowBlock:
     return RowBlock.of_layout(layout, floats, ints)
 
 
-_TRACK_LAYOUT: tuple | None = None      # the layout of Tracker.step_rows' matrices (made at first use)
+_TRACK_LAYOUTS: dict[bool, tuple] = {}     # with a utc column or not -> the layout of Tracker.step_rows' matrices
 
 
-def live_block(tracker, samples) -> RowBlock:
+def live_block(tracker, samples, utc: np.ndarray | None = None) -> RowBlock:
     """Return the estimates of a few live samples as a RowBlock (one per batch to each logger): the tracker's
-    step_rows matrices as they are, or record_block(step_record(...)) when it reports channel readouts."""
+    step_rows matrices as they are, or record_block(step_record(...)) when it reports channel readouts; utc (N,)
+    POSIX s: a `utc` column after the others (in the float matrix's spare column, no copy of the block)."""
     if tracker.report_channels:
-        return record_block(tracker.step_record(samples))
-    global _TRACK_LAYOUT
-    if _TRACK_LAYOUT is None:
+        block = record_block(tracker.step_record(samples))
+        return block if utc is None else block.with_columns({"utc": np.asarray(utc, np.float64)})
+    with_utc = utc is not None
+    layout = _TRACK_LAYOUTS.get(with_utc)
+    if layout is None:
         from fieldvane.estimator.tracker import ROW_EXTRAS, ROW_FLOAT_COLUMNS, ROW_INT_COLUMNS
 
-        _TRACK_LAYOUT = matrix_layout(ESTIMATE_COLUMNS + ROW_EXTRAS, ROW_FLOAT_COLUMNS, ROW_INT_COLUMNS)
-    return RowBlock.of_layout(_TRACK_LAYOUT, *tracker.step_rows(samples))
+        added = ("utc",) if with_utc else ()
+        layout = _TRACK_LAYOUTS[with_utc] = matrix_layout(ESTIMATE_COLUMNS + ROW_EXTRAS + added,
+                                                          ROW_FLOAT_COLUMNS + added, ROW_INT_COLUMNS)
+    floats, ints = tracker.step_rows(samples, spare_columns=int(with_utc))
+    if with_utc:
+        floats[:, -1] = utc
+    return RowBlock.of_layout(layout, floats, ints)
 
 
 def _as_column(values) -> np.ndarray | None:

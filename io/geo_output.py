@@ -171,6 +171,11 @@ class GeoOutput:
         sb = np.array([e.extras.get("sigma_b_nT", math.nan) for e in estimates], float)
         return self.columns(t, u, b, s, sb, host_utc)
 
+    @property
+    def host_utc_only(self) -> bool:
+        """Return True when the only added column is utc from the host's receive times (`run` without a site)."""
+        return self.site is None and self.start_utc is None and self.host_clock
+
     def add_to_block(self, block, host_utc=None):
         """Return an estimates RowBlock (the live loggers' batch) with the added columns (its own t, u, |B|, sigmas)."""
         if not self.enabled or not len(block):

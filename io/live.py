@@ -55,6 +55,11 @@ class BinarySampleDecoder:
         """Return the samples of the frames completed by data (first after a seq reset: restarted)."""
         return self.frames.feed_arrays(data).samples()
 
+    def feed_many(self, pieces) -> tuple[SampleBlock | list[Sample], list[int]]:
+        """Return the samples of the frames completed by several reads, in order, and how many each completed."""
+        arrays, counts = self.frames.feed_many(pieces)
+        return arrays.samples(), counts
+
     def resync(self, lost: bool = False) -> None:
         """Start afresh at the next byte (link reopened, or bytes lost before it)."""
         self.frames.resync()
@@ -360,16 +365,36 @@ class LiveLoop:
     def _process_many(self, chunks) -> None:
         pieces = []
         host_ns: list[int] = []
+        many = getattr(self.decoder, "feed_many", None)
+        run: list = []              # data chunks in a row: decoded in one call where the decoder can
         for chunk in chunks:
             if chunk.event == EVENT_DATA:
                 self.chunks += 1
                 self.bytes += len(chunk.data)
+                if many is not None:
+                    run.append(chunk)
+                    continue
+            elif run:
+                self._decode_run(many, run, pieces, host_ns)
+                run = []
             got = feed_chunk(self.decoder, chunk)
             if len(got):
                 pieces.append(got)
                 host_ns.extend([chunk.host_time_ns] * len(got))
+        if run:
+            self._decode_run(many, run, pieces, host_ns)
         self._estimate_all(join_samples(pieces), host_ns)
         self._notify_progress()
+
+    @staticmethod
+    def _decode_run(many, run: list, pieces: list, host_ns: list[int]) -> None:
+        """Decode data chunks in one call; append their samples, and each sample's chunk's receive time."""
+        got, counts = many([chunk.data for chunk in run])
+        if len(got):
+            pieces.append(got)
+            for chunk, count in zip(run, counts):
+                if count:
+                    host_ns.extend([chunk.host_time_ns] * count)
 
     def _must_pause(self) -> bool:
         if self._deadline is None:

@@ -11,6 +11,7 @@ from fieldvane.estimator.samples import CHANNELS_ONE_PROBE, CHANNELS_TWO_PROBES,
 from fieldvane.io import frame_core as fc
 from fieldvane.io.frame_core import HEADER_SIZE, KIND_SAMPLE, SEQ_HALF, SEQ_MODULUS, VERSION
 from fieldvane.io.framing import CobsError, cobs_decode, cobs_encode, crc16_ccitt_false
+from fieldvane.kernels import bind
 
 MAGIC = bytes(fc.MAGIC)
 MAX_ENCODED_LEN = 256       # an encoded frame longer than this (before its 0x00) is garbage
@@ -165,6 +166,8 @@ class FrameDecoder:
         self._state = np.zeros(fc.N_STATE, np.int64)
         self._state[fc.ST_FRESH] = 1
         self._pending = np.zeros(0, np.uint8)
+        # (its per-call arrays are made here with the declared types: the call skips their checks)
+        self._decode = bind(fc.decode_stream, trusted=True)
         self.max_encoded_len = max_encoded_len
         self.resyncs = 0              # resync() calls (link opened again, bytes lost upstream)
 
@@ -217,16 +220,30 @@ class FrameDecoder:
 
     def feed_arrays(self, data) -> FrameArrays:
         """Return the frames completed by data as arrays, in order; malformed input is counted, never raised."""
-        if not isinstance(data, (bytes, bytearray)):
-            data = bytes(data)
+        return self.feed_many([data])[0]
+
+    def feed_many(self, pieces) -> tuple[FrameArrays, list[int]]:
+        """Return the frames completed by several reads, in order, as one FrameArrays, and how many each read
+        completed (the live loop's reads since its last batch: no join of their samples afterwards)."""
+        pieces = [p if isinstance(p, (bytes, bytearray)) else bytes(p) for p in pieces]
         # A frame ends at a 0x00 and takes at least MIN_FRAME_BYTES with it: rows for at most that many.
-        rows = min(data.count(0), (self.pending + len(data)) // MIN_FRAME_BYTES + 1)
+        rows = min(sum(p.count(0) for p in pieces),
+                   (self.pending + sum(map(len, pieces))) // MIN_FRAME_BYTES + len(pieces))
         ints, t = np.empty((rows, fc.N_OUT_INT), np.int64), np.empty(rows)
         f, values = np.empty((rows, 2)), np.empty((rows, 8))
-        n = fc.decode_stream(self._pending, self._state, np.frombuffer(data, np.uint8), ints, t, f, values)
+        counts, n, kinds, decode = [], 0, 0, self._decode
+        for p in pieces:
+            if n:
+                got = decode(self._pending, self._state, np.frombuffer(p, np.uint8), ints[n:], t[n:], f[n:],
+                             values[n:])
+            else:
+                got = decode(self._pending, self._state, np.frombuffer(p, np.uint8), ints, t, f, values)
+            kinds |= int(self._state[fc.ST_KINDS])
+            counts.append(got)
+            n += got
         if n < rows:
             ints, t, f, values = ints[:n], t[:n], f[:n], values[:n]
-        return FrameArrays(ints, t, f, values, int(self._state[fc.ST_KINDS]))
+        return FrameArrays(ints, t, f, values, kinds), counts
 
     def feed(self, data: bytes) -> list[Frame]:
         """Return the frames completed by data, in order; malformed input is counted, never raised."""

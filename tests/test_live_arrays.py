@@ -206,3 +206,26 @@ def test_the_live_samples_of_any_split_stream_are_its_frames_samples(stream, cut
         assert (sample.channels, sample.status, sample.restarted) == (ref.channels, ref.status, ref.restarted)
         assert struct.pack("<3d", sample.t, sample.f_a, sample.f_b) == struct.pack("<3d", ref.t, ref.f_a, ref.f_b)
         assert np.asarray(sample.z).tobytes() == np.asarray(ref.z).tobytes()       # NaN payloads too
+
+
+@settings(max_examples=150, deadline=None, suppress_health_check=[HealthCheck.too_slow])
+@given(stream=streams(), cuts=st.lists(st.integers(0, 4000), max_size=8), mix=st.booleans())
+def test_reads_decoded_in_one_call_equal_them_decoded_one_by_one(stream, cuts, mix):
+    """FrameDecoder.feed_many (the live loop's reads since its last batch) gives the rows, the count per read and
+    the counters that feeding the reads one by one gives. Reference: feed_arrays per read, joined with numpy."""
+    if mix:         # one-probe frames among two-probe ones: the rows come as Samples
+        stream += b"".join(encode_frame(f) for f in _frames(np.random.default_rng(len(stream)), 3, 4, seq0=7))
+    bounds = [0] + sorted(c for c in set(cuts) if c < len(stream)) + [len(stream)]
+    reads = [stream[a:b] for a, b in zip(bounds, bounds[1:])]
+    one_by_one, together = FrameDecoder(), FrameDecoder()
+    parts = [one_by_one.feed_arrays(r) for r in reads]
+    arrays, counts = together.feed_many(reads)
+    assert counts == [len(p) for p in parts]
+    assert together.counters() == one_by_one.counters()
+    assert arrays.kinds == (np.bitwise_or.reduce([p.kinds for p in parts]) if parts else 0)
+    for name in ("ints", "t", "f", "values"):
+        want = np.concatenate([getattr(p, name) for p in parts])
+        assert getattr(arrays, name).tobytes() == want.tobytes(), name      # NaN payloads too
+    live = BinarySampleDecoder()
+    samples, live_counts = live.feed_many(reads)
+    assert live_counts == counts and len(samples) == len(arrays)

@@ -11,6 +11,7 @@ magnitude knots) that replay uses; the replay's own bytes are compared with the 
 from __future__ import annotations
 
 import dataclasses
+from datetime import datetime, timezone
 from pathlib import Path
 
 import numpy as np
@@ -108,3 +109,31 @@ def test_the_row_columns_are_the_records_columns(calibrated):
     assert floats.dtype == np.float64 and ints.dtype == np.int64
     empty = Tracker(cal, settings, initiate).step_rows(block[:0])
     assert empty[0].shape == (0, len(ROW_FLOAT_COLUMNS)) and empty[1].shape == (0, len(ROW_INT_COLUMNS))
+
+
+@pytest.mark.parametrize("readouts", [False, True])
+def test_a_live_blocks_utc_column_is_the_added_ones(calibrated, readouts):
+    """`run`'s utc written into the block's spare column gives the columns and the CSV logger's bytes that adding
+    it afterwards gives (GeoOutput.add_to_block). Reference: the per-record CsvFormatter.format of each row."""
+    from fieldvane.io.geo_output import setup
+    from fieldvane.io.sinks import CsvFormatter
+
+    cal, initiate = calibrated
+    block, settings = _stream("dropouts", 3)
+    geo = setup(None, None, str(GOLDEN / "golden_cal.json"), host_clock=True)
+    assert geo.host_utc_only
+    a = Tracker(cal, settings, initiate, report_channels=readouts)
+    b = Tracker(cal, settings, initiate, report_channels=readouts)
+    got, want = [], []
+    for lo, hi in _batches(len(block)):
+        utc = 1.8e9 + np.arange(lo, hi) * 1e-3 + 1e-7
+        got.append(live_block(a, block[lo:hi], utc))
+        want.append(geo.add_to_block(record_block(b.step_record(block[lo:hi])), utc))
+        _assert_same_block(got[-1], want[-1], f"samples {lo}..{hi}")
+    assert got[0].keys()[-1] == "utc"
+    formatter = CsvFormatter()
+    formatter.bind(want[0].keys())
+    lines = formatter.format_items(got)
+    assert lines == [formatter.format(row) for w in want for row in w.rows()]
+    # the utc text, ISO 8601 (reference: Python's datetime)
+    assert "," + datetime.fromtimestamp(1.8e9, timezone.utc).strftime("%Y-%m-%dT%H:%M:%S.") in lines[0]

@@ -183,7 +183,10 @@ def run(args) -> int:
     status = StatusLine(sys.stderr, interval_s=args.log_interval)
 
     def estimate_batch(samples):
-        return geo.add_to_block(live_block(tracker, samples), host_clock.utc(len(samples)))
+        utc = host_clock.utc(len(samples))
+        if geo.host_utc_only:           # the utc column written into the block itself
+            return live_block(tracker, samples, utc)
+        return geo.add_to_block(live_block(tracker, samples), utc)
 
     def estimate(sample):
         return estimate_batch([sample])[0]
