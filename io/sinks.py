@@ -833,11 +833,20 @@ class Sink:
         formatter, transport, q = self.formatter, self.transport, self._q
         if formatter.extras is not None:
             self._write_header()
+        streaming = False          # the last batch had records: the next one is gathered by sleeping first
         try:
             while True:
+                # One wake-up per gathered batch, not per record (no wait for a backlog): while records keep
+                # coming, the writer sleeps gather_s and takes what arrived; idle, it waits for the next record.
+                gather = self.gather_s > 0 and not self._stop.is_set() and self.accepted - self._taken < self.max_batch
+                if streaming and gather:
+                    time.sleep(self.gather_s)
                 try:
-                    first = q.get(timeout=self.poll_s)
+                    first = q.get_nowait() if streaming else q.get(timeout=self.poll_s)
                 except queue.Empty:
+                    if streaming:
+                        streaming = False
+                        continue
                     try:
                         transport.poll()
                     except Exception as exc:           # keep the writer alive on odd errors
@@ -845,8 +854,9 @@ class Sink:
                     if self._stop.is_set():
                         break
                     continue
-                if self.gather_s > 0 and not self._stop.is_set() and self.accepted - self._taken < self.max_batch:
-                    time.sleep(self.gather_s)        # one wake-up per gathered batch, not per record (no wait for a backlog)
+                if not streaming and gather:
+                    time.sleep(self.gather_s)
+                streaming = True
                 batch = [first]
                 rows = _records_in(first)
                 while rows < self.max_batch:
