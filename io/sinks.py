@@ -31,8 +31,9 @@ NMEA_MNEMONIC = "XFV"        # our manufacturer mnemonic: proprietary sentences 
 NMEA_SENTENCES = "D"         # sentences sent per record by default (D only; "DM" adds the M sentence)
 NMEA_MAX_LENGTH = 82         # NMEA 0183: '$' to LF inclusive
 DEFAULT_QUEUE_SIZE = 4096
-# A logger's thread, woken by a record, waits this long (s) and then writes what has arrived: at 10 kHz, one
-# wake-up per ~20 records instead of per record, each of which took the interpreter from the live loop.
+# A logger's thread, woken by a record, waits this long (s) and then writes what has arrived, and while records
+# keep coming sleeps this long between batches: at 10 kHz, one wake-up per ~20 records instead of per record,
+# each of which took the interpreter from the live loop.
 DEFAULT_GATHER_S = 0.002
 DEFAULT_HOST = "127.0.0.1"
 
