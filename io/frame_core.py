@@ -182,8 +182,10 @@ def _drop(state, n, resync):
 def decode_stream(pending, state, data, out_i, out_t, out_f, out_v):
     """Feed data (bytes as uint8) to the decoder whose unfinished-frame buffer and state are given; write each
     complete valid frame as a row of out_i (seq, t_ns, status, n_values, restarted), out_t (t s), out_f (f_a, f_b
-    Hz) and out_v (8 values V, NaN past n_values); return how many. The outputs need a row per 0x00 in data.
-    Malformed input is counted, never raised."""
+    Hz) and out_v (8 values V, NaN past n_values); return how many. The outputs need a row per frame this call can
+    complete: at most one per 0x00 in data, and at most (pending bytes + len(data)) // MIN_FRAME_BYTES + 1
+    (io/wire.py: each frame takes at least that many bytes, its 0x00 included). Malformed input is counted, never
+    raised."""
     limit = state[ST_MAX_ENCODED_LEN]
     n = data.shape[0]
     state[ST_BYTES_FED] += n

@@ -839,8 +839,7 @@ class Sink:
             while True:
                 # One wake-up per gathered batch, not per record (no wait for a backlog): while records keep
                 # coming, the writer sleeps gather_s and takes what arrived; idle, it waits for the next record.
-                gather = self.gather_s > 0 and not self._stop.is_set() and self.accepted - self._taken < self.max_batch
-                if streaming and gather:
+                if streaming and self._gathers():
                     time.sleep(self.gather_s)
                 try:
                     first = q.get_nowait() if streaming else q.get(timeout=self.poll_s)
@@ -855,7 +854,7 @@ class Sink:
                     if self._stop.is_set():
                         break
                     continue
-                if not streaming and gather:
+                if not streaming and self._gathers():        # (asked after the wait: a backlog may have come)
                     time.sleep(self.gather_s)
                 streaming = True
                 batch = [first]
@@ -900,6 +899,10 @@ class Sink:
                 self.last_error = repr(exc)
             with self._cond:
                 self._cond.notify_all()
+
+    def _gathers(self) -> bool:
+        """Return True when the writer should wait gather_s before taking a batch (not stopping, no backlog)."""
+        return self.gather_s > 0 and not self._stop.is_set() and self.accepted - self._taken < self.max_batch
 
     def _write_header(self) -> None:
         self._header_done = True

@@ -113,7 +113,7 @@ JIT_RUN = textwrap.dedent("""
     block, _ = read_recording(sys.argv[1] + "/golden_stream.csv")
     rec = Tracker(cal, FilterSettings(), SnapshotSolver.from_calibration(cal).initiate).run_arrays(block)
     text = float_text.format_rows([rec.u[:, 0], rec.flags, None, rec.sigma_deg]).decode()
-    Tracker(cal, FilterSettings(), SnapshotSolver.from_calibration(cal).initiate).step_rows(block[:40])
+    rows_f, rows_i = Tracker(cal, FilterSettings(), SnapshotSolver.from_calibration(cal).initiate).step_rows(block[:40])
     exec(sys.argv[3])
     np.save(sys.argv[2] + "/magnitude.npy", magnitude_case())
     np.save(sys.argv[2] + "/frames.npy", frames_case())
@@ -132,6 +132,8 @@ JIT_RUN = textwrap.dedent("""
     np.save(sys.argv[2] + "/b.npy", rec.b_nT)
     np.save(sys.argv[2] + "/nis.npy", rec.nis)
     np.save(sys.argv[2] + "/flags.npy", rec.flags)
+    np.save(sys.argv[2] + "/rows_f.npy", rows_f)
+    np.save(sys.argv[2] + "/rows_i.npy", rows_i)
     json.dump({"text": text, "signatures": signatures}, open(sys.argv[2] + "/out.json", "w"))
 """)
 
@@ -144,7 +146,8 @@ def jit_run(tmp_path_factory):
                           capture_output=True, text=True, timeout=600)
     assert done.returncode == 0, done.stderr[-3000:]
     result = json.loads((out / "out.json").read_text())
-    result.update({k: np.load(out / f"{k}.npy") for k in ("u", "b", "nis", "flags", "magnitude", "frames")})
+    result.update({k: np.load(out / f"{k}.npy") for k in ("u", "b", "nis", "flags", "magnitude", "frames",
+                                                                "rows_f", "rows_i")})
     return result
 
 
@@ -172,6 +175,20 @@ def test_jit_and_this_process_give_the_same_estimates(jit_run, this_process_run)
     assert np.allclose(rec.u, jit_run["u"], rtol=0, atol=1e-9, equal_nan=True)
     assert np.allclose(rec.b_nT, jit_run["b"], rtol=1e-12, atol=0, equal_nan=True)
     assert np.allclose(rec.nis, jit_run["nis"], rtol=1e-9, atol=1e-9, equal_nan=True)
+
+
+def test_jit_and_this_process_make_the_same_live_rows(jit_run):
+    from fieldvane.estimator.filter_settings import FilterSettings
+    from fieldvane.estimator.snapshot import SnapshotSolver
+    from fieldvane.estimator.tracker import Tracker
+    from fieldvane.io.calfile import load_calibration
+    from fieldvane.io.recording import read_recording
+
+    cal = load_calibration(GOLDEN / "golden_cal.json")
+    block, _ = read_recording(GOLDEN / "golden_stream.csv")
+    floats, ints = Tracker(cal, FilterSettings(), SnapshotSolver.from_calibration(cal).initiate).step_rows(block[:40])
+    assert np.array_equal(ints, jit_run["rows_i"]) and np.isfinite(floats[1:, :13]).all()     # (row 0: the start)
+    assert np.allclose(floats, jit_run["rows_f"], rtol=1e-9, atol=1e-12, equal_nan=True)   # (as the estimates above)
 
 
 def test_jit_and_this_process_correct_magnitudes_alike(jit_run):

@@ -226,6 +226,120 @@ def test_reads_decoded_in_one_call_equal_them_decoded_one_by_one(stream, cuts, m
     for name in ("ints", "t", "f", "values"):
         want = np.concatenate([getattr(p, name) for p in parts])
         assert getattr(arrays, name).tobytes() == want.tobytes(), name      # NaN payloads too
+    # and the samples are the whole stream's frames (the reference of the test above)
     live = BinarySampleDecoder()
     samples, live_counts = live.feed_many(reads)
-    assert live_counts == counts and len(samples) == len(arrays)
+    assert live_counts == counts
+    reference = [f.to_sample() for f in FrameDecoder().feed(stream)]
+    assert len(samples) == len(reference)
+    for sample, ref in zip(samples, reference):
+        assert (sample.channels, sample.status, sample.restarted) == (ref.channels, ref.status, ref.restarted)
+        assert struct.pack("<3d", sample.t, sample.f_a, sample.f_b) == struct.pack("<3d", ref.t, ref.f_a, ref.f_b)
+        assert np.asarray(sample.z).tobytes() == np.asarray(ref.z).tobytes()
+
+
+def test_the_loop_decodes_reads_and_events_in_one_batch_as_one_by_one():
+    """LiveLoop._process_many (reads decoded in one call, link-open and bytes-lost events between them, a sequence
+    reset, one- and two-probe frames) hands on the samples, receive times and decoder counters that processing
+    each chunk alone gives."""
+    from fieldvane.io.capture import EVENT_LINK_OPEN, EVENT_LOST, Chunk
+    from fieldvane.io.live import LiveLoop
+    from fieldvane.io.serial_link import SerialLink
+
+    rng = np.random.default_rng(1)
+    frames = []
+    seq = 0
+    for k in range(300):
+        seq = 3 if k == 150 else seq + 1                     # the sensor restarts half way
+        vals = tuple(float(np.float32(v)) for v in rng.normal(0, 0.3, 4 if rng.random() < 0.3 else 8))
+        frames.append(Frame(seq, 10**9 + k * 10**6, 0, 1e5, 7e4, vals))
+    stream = b"".join(encode_frame(f) for f in frames)
+
+    def chunks(seed):
+        r = np.random.default_rng(seed)
+        bounds = [0] + sorted(set(r.integers(0, len(stream), 40).tolist())) + [len(stream)]
+        out = []
+        for i, (a, b) in enumerate(zip(bounds, bounds[1:])):
+            out.append(Chunk(1000 + i, stream[a:b]))
+            if r.random() < 0.15:
+                out.append(Chunk(5000 + i, b"", EVENT_LINK_OPEN if r.random() < 0.5 else EVENT_LOST, 3))
+        return out
+
+    def run(together, seed):
+        seen = []
+
+        def batch(samples):
+            seen.extend((s.t, s.f_a, np.asarray(s.z).tobytes(), tuple(s.channels), bool(s.restarted), host)
+                        for s, host in zip(samples, loop.sample_host_times_ns))
+            return [None] * len(samples)
+
+        loop = LiveLoop(SerialLink("loop://"), BinarySampleDecoder(), lambda s: None, [], None, log=None,
+                        estimate_batch=batch)
+        cs = chunks(seed)
+        if together:
+            for i in range(0, len(cs), 7):
+                loop._process_many(cs[i:i + 7])
+        else:
+            for c in cs:
+                loop._process(c)
+        return seen, loop.decoder.counters()
+
+    for seed in range(12):
+        (a, ca), (b, cb) = run(True, seed), run(False, seed)
+        assert a == b and ca == cb, seed
+        assert len(a) > 200 and any(row[4] for row in a)
+
+
+BOUNDS_RUN = """
+import sys
+import numpy as np
+from fieldvane.io import frame_core as fc
+from fieldvane.io.wire import Frame, FrameDecoder, encode_frame
+rng = np.random.default_rng(0)
+frame = lambda seq, nv: encode_frame(Frame(seq, 5, 0, 1.0, 2.0, (0.0,) * nv))
+# the check is live: one valid frame into outputs of no rows must raise
+try:
+    fc.decode_stream(np.zeros(600, np.uint8), FrameDecoder()._state.copy(), np.frombuffer(b"\\x00" + frame(1, 4), np.uint8),
+                     np.empty((0, fc.N_OUT_INT), np.int64), np.empty(0), np.empty((0, 2)), np.empty((0, 8)))
+    sys.exit("no IndexError: bounds are not checked")
+except IndexError:
+    pass
+total = 0
+for trial in range(1500):
+    parts, seq = [], 0
+    for k in range(int(rng.integers(0, 30))):
+        r = rng.random()
+        if r < 0.2:
+            parts.append(frame(seq, 4))                                   # a duplicate
+        elif r < 0.3:
+            parts.append(b"\\x00" * int(rng.integers(1, 4)))
+        elif r < 0.35:
+            parts.append(bytes(rng.integers(0, 256, int(rng.integers(1, 80)), dtype=np.uint8)))
+        else:
+            seq += 1
+            parts.append(frame(seq, 4 if rng.random() < 0.7 else 8))        # the shortest frames, mostly
+    s = b"".join(parts)
+    d = FrameDecoder()
+    pre = int(rng.integers(0, len(s) + 1)) if s else 0
+    d.feed_arrays(s[:pre])                                                 # bytes pending from an earlier call
+    s = s[pre:]
+    cuts = sorted(set(rng.integers(0, len(s) + 1, int(rng.integers(0, 10))).tolist())) if s else []
+    bounds = [0] + cuts + [len(s)]
+    total += len(d.feed_many([s[a:b] for a, b in zip(bounds, bounds[1:])])[0])
+print(total)
+"""
+
+
+def test_the_decoders_row_allocation_is_never_overrun(tmp_path):
+    """feed_many allocates rows for at most min(0x00 bytes, bytes // MIN_FRAME_BYTES + reads); the built kernels do
+    not check bounds, so the decoder runs here under numba's JIT with bounds checking on (NUMBA_BOUNDSCHECK=1, its
+    own cache), on streams of the shortest frames, duplicates, runs of 0x00, garbage and pending bytes, cut at
+    random: an overrun raises IndexError."""
+    import os
+    import subprocess
+    import sys
+
+    env = dict(os.environ, FIELDVANE_JIT="1", NUMBA_BOUNDSCHECK="1", NUMBA_CACHE_DIR=str(tmp_path / "numba"))
+    done = subprocess.run([sys.executable, "-c", BOUNDS_RUN], env=env, capture_output=True, text=True, timeout=600)
+    assert done.returncode == 0, done.stderr[-3000:]
+    assert int(done.stdout.split()[-1]) > 5000           # frames decoded: the streams were not all garbage

@@ -137,3 +137,22 @@ def test_a_live_blocks_utc_column_is_the_added_ones(calibrated, readouts):
     assert lines == [formatter.format(row) for w in want for row in w.rows()]
     # the utc text, ISO 8601 (reference: Python's datetime)
     assert "," + datetime.fromtimestamp(1.8e9, timezone.utc).strftime("%Y-%m-%dT%H:%M:%S.") in lines[0]
+
+
+def test_run_with_a_site_adds_the_columns_the_record_gives(calibrated):
+    """`run --site`: the geographic columns added to a live block (read from its own columns) equal those of its
+    TrackRecord (GeoOutput.for_record, replay's path), value for value."""
+    from fieldvane.io.geo_output import setup
+
+    cal, initiate = calibrated
+    block, settings = _stream("probe2_dropout", 2)
+    geo = setup(str(EXAMPLES / "pier" / "pier_site_angles.toml"), host_clock=True)
+    assert not geo.host_utc_only
+    a, b = Tracker(cal, settings, initiate), Tracker(cal, settings, initiate)
+    for lo, hi in _batches(len(block)):
+        utc = 1.8e9 + np.arange(lo, hi) * 1e-3
+        got = geo.add_to_block(live_block(a, block[lo:hi]), utc)
+        rec = b.step_record(block[lo:hi])
+        want = record_block(rec).with_columns(geo.for_record(rec, utc))
+        _assert_same_block(got, want, f"samples {lo}..{hi}")
+    assert {"D_deg", "X_nT", "sigma_F_nT", "utc"} <= set(got.keys())

@@ -463,3 +463,86 @@ def test_documented_nmea_example_is_what_the_formatter_writes():
     assert f"Example ({len(shown[0]) + 2} characters with CR LF" in doc.replace("\n", " ")
     for x in shown:
         parse_proprietary(x + "\r\n")
+
+
+class _RecordingTransport(Transport):
+    """A logger that notes each write in a shared list of events."""
+
+    description = "recording"
+
+    def __init__(self, events):
+        super().__init__()
+        self.events, self.lines = events, []
+
+    def write(self, lines):
+        self.events.append("write")
+        self.lines += lines
+        return len(lines)
+
+
+def _wait_until(done, timeout=TIMEOUT) -> bool:
+    """Return True as soon as done() holds, False after timeout s."""
+    pause = threading.Event()
+    for _ in range(int(timeout / 0.002)):
+        if done():
+            return True
+        pause.wait(0.002)
+    return done()
+
+
+def _watch_the_writer(monkeypatch, events, during_sleep=None):
+    """Note the writer's blocking waits for a record ("wait") and its gathering sleeps ("sleep") in events."""
+    import queue
+    import time
+    from types import SimpleNamespace
+
+    from fieldvane.io import sinks
+
+    class WatchedQueue(queue.SimpleQueue):
+        def get(self, block=True, timeout=None):
+            if block:
+                events.append("wait")
+            return super().get(block, timeout)
+
+    def sleep(seconds):
+        events.append("sleep")
+        if during_sleep is not None:
+            during_sleep()
+        time.sleep(seconds)
+
+    monkeypatch.setattr(sinks.queue, "SimpleQueue", WatchedQueue)
+    monkeypatch.setattr(sinks, "time", SimpleNamespace(sleep=sleep, monotonic=time.monotonic))
+
+
+def test_a_streaming_writer_wakes_once_per_batch(monkeypatch):
+    # While records keep coming the writer sleeps its gather time and takes what arrived, without waiting for the
+    # next record in between: each wake-up takes Python's lock from the live loop (two per batch before).
+    events, sent = [], []
+
+    def one_arrives():           # a record arrives during each of the first 20 gathering sleeps
+        if len(sent) < 20:
+            sent.append(len(sent) + 1)
+            sink.emit(record(sent[-1]))
+
+    _watch_the_writer(monkeypatch, events, one_arrives)
+    transport = _RecordingTransport(events)
+    sink = Sink(JsonlFormatter(), transport, max_batch=64)
+    sink.emit(record(0))
+    assert _wait_until(lambda: len(sent) == 20) and sink.flush(TIMEOUT)
+    assert sink.close(TIMEOUT)
+    streaming = events[events.index("write"):len(events) - events[::-1].index("write")]
+    assert streaming.count("write") >= 10 and "wait" not in streaming, streaming
+    assert [json.loads(x)["t"] for x in transport.lines] == [record(i)["t"] for i in range(21)]
+
+
+def test_a_backlog_at_an_idle_writer_is_written_without_the_gather_wait(monkeypatch):
+    events = []
+    _watch_the_writer(monkeypatch, events)
+    transport = _RecordingTransport(events)
+    sink = Sink(JsonlFormatter(), transport, max_batch=16)
+    assert _wait_until(lambda: "wait" in events)          # the writer idles in its wait for a record
+    assert sink.emit_block(_block(0, 40)) == 40          # a catch-up batch of more than max_batch records
+    assert sink.flush(TIMEOUT) and sink.close(TIMEOUT)
+    first_write = events.index("write")
+    assert "sleep" not in events[:first_write], events
+    assert len(transport.lines) == 40
