@@ -179,8 +179,7 @@ def test_live_latency_frame_to_sink(calibration, tmp_path, rate, outputs):
     from fieldvane.estimator.tracker import Tracker
     from fieldvane.io.calfile import load_calibration
     from fieldvane.io.capture import CaptureWriter
-    from fieldvane.io.estimates_csv import live_block
-    from fieldvane.io.geo_output import HostClock
+    from fieldvane.io import geo_output
     from fieldvane.io.live import BinarySampleDecoder, LiveLoop
     from fieldvane.io.serial_link import SerialLink
     from fieldvane.io.sinks import Sink, open_sink
@@ -191,7 +190,8 @@ def test_live_latency_frame_to_sink(calibration, tmp_path, rate, outputs):
     table, _ = load_or_build_table(cal, cache_dir_for(calibration))
     solver = SnapshotSolver.from_calibration(cal, table)
     tracker = Tracker(cal, None, solver.initiate, sample_rate_hz=rate)
-    host_clock = HostClock()        # utc from the host's receive times
+    geo = geo_output.setup(None, None, calibration, host_clock=True)     # utc from the host's receive times
+    host_clock = geo_output.HostClock()
     sent_path = tmp_path / "sent.npy"
     proc = subprocess.Popen([sys.executable, "-c", SENSOR_PROCESS, "2.0", str(sent_path)], stdin=subprocess.PIPE,
                             stdout=subprocess.PIPE, text=True)
@@ -237,7 +237,7 @@ def test_live_latency_frame_to_sink(calibration, tmp_path, rate, outputs):
             handed(len(samples))
             return [None] * len(samples)
         wall, cpu = time.perf_counter(), time.thread_time()
-        rows = live_block(tracker, samples, host_clock.utc(len(samples)))     # as `fieldvane run` does
+        rows = geo.live_block(tracker, samples, host_clock.utc(len(samples)))     # as `fieldvane run` does
         in_situ.append((time.perf_counter() - wall, time.thread_time() - cpu))
         if not sinks:
             handed(len(samples))

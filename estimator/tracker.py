@@ -43,7 +43,7 @@ import numpy as np
 
 from fieldvane.estimator import chi_square, filter_core as core, prepare_core
 from fieldvane.estimator.blind import median_bound_deg
-from fieldvane.estimator.estimate import Estimate
+from fieldvane.estimator.estimate import ESTIMATE_COLUMNS, Estimate
 from fieldvane.estimator.filter_settings import FilterSettings
 from fieldvane.estimator.flags import EstimateFlag as F
 from fieldvane.estimator.lockin_noise import (autocorrelation, correlation_factor, group_delay_s,
@@ -231,9 +231,9 @@ def gate_thresholds(settings: FilterSettings, n_meas: int) -> np.ndarray:
 
 # The columns of Tracker.step_rows' two matrices (filter_core.record_rows writes them), and the extra
 # columns' written order (TrackRecord.extra_columns without channel readouts).
-ROW_FLOAT_COLUMNS = ("t", "ux", "uy", "uz", "b_nT", "bx_nT", "by_nT", "bz_nT", "sigma_deg", "nis", "b_a_nT", "b_b_nT",
-                     "bound_deg", "sigma_b_nT", "noise_scale")
+ROW_FLOAT_COLUMNS = ESTIMATE_COLUMNS[:-1] + ("nis", "b_a_nT", "b_b_nT", "bound_deg", "sigma_b_nT", "noise_scale")
 ROW_INT_COLUMNS = ("flags", "nis_dof", "probes_used")
+_DISAGREE_BIT = int(F.MAGNITUDE_DISAGREE)
 ROW_EXTRAS = ("nis", "nis_dof", "b_a_nT", "b_b_nT", "bound_deg", "sigma_b_nT", "noise_scale", "probes_used")
 
 
@@ -642,7 +642,7 @@ class Tracker:
         mm = getattr(self.calibration, "magnitude_model", None)
         if mm is not None and n and evaluated_per_sample(n):     # the usual live batch: one compiled call
             mm.row_corrector(of_core=True)(f, fout, iout, self.settings.magnitude_tolerance, DISAGREE_SIGMAS,
-                                           int(F.MAGNITUDE_DISAGREE), b, per, sigma_b)
+                                           _DISAGREE_BIT, b, per, sigma_b)
         else:
             u = fout[:, core.O_UX:core.O_UZ + 1].copy()
             b, per, sigma_b, iout[:, core.J_FLAGS] = self._magnitude(f, u, fout[:, core.O_SIGMA], b, per,

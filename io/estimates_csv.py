@@ -42,7 +42,7 @@ def estimate_columns(t, u, b_nT, sigma_deg, flags, extras: Mapping[str, np.ndarr
     return cols
 
 
-_FLOAT_BASE = ("t", "ux", "uy", "uz", "b_nT", "bx_nT", "by_nT", "bz_nT", "sigma_deg")   # the matrix's first columns
+_FLOAT_BASE = ESTIMATE_COLUMNS[:-1]      # the float matrix's first columns: t .. sigma_deg (flags are ints)
 
 
 _BLOCK_PLANS: dict[tuple, tuple | None] = {}     # the extras' (name, dtype, rank) -> (floats, ints, layout)

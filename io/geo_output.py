@@ -22,6 +22,7 @@ import numpy as np
 
 from fieldvane.estimator.geomagnetic import GEO_COLUMNS, checked_rotation, geographic_columns
 from fieldvane.io.errors import InputError
+from fieldvane.io.estimates_csv import live_block
 from fieldvane.io.sitefile import Site, format_utc, parse_utc, read_site_file
 
 # What the geographic output adds, in the order documented (files sort extra columns by name).
@@ -171,10 +172,13 @@ class GeoOutput:
         sb = np.array([e.extras.get("sigma_b_nT", math.nan) for e in estimates], float)
         return self.columns(t, u, b, s, sb, host_utc)
 
-    @property
-    def host_utc_only(self) -> bool:
-        """Return True when the only added column is utc from the host's receive times (`run` without a site)."""
-        return self.site is None and self.start_utc is None and self.host_clock
+    def live_block(self, tracker, samples, host_utc=None):
+        """Return a few live samples' estimates as a RowBlock with the added columns (`run`'s batch for the loggers):
+        utc alone, from the host's receive times (N,) POSIX s, goes into the block's own float matrix; a site's
+        columns are added to it."""
+        if self.site is None and self.start_utc is None and self.host_clock:
+            return live_block(tracker, samples, host_utc)
+        return self.add_to_block(live_block(tracker, samples), host_utc)
 
     def add_to_block(self, block, host_utc=None):
         """Return an estimates RowBlock (the live loggers' batch) with the added columns (its own t, u, |B|, sigmas)."""

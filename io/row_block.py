@@ -55,14 +55,6 @@ class RowBlock(Sequence):
         self._n, self._rows = floats.shape[0], None
 
     @classmethod
-    def of_matrices(cls, float_names: Sequence[str], floats: np.ndarray, int_names: Sequence[str], ints: np.ndarray,
-                    names: Sequence[str] | None = None) -> RowBlock:
-        """Return a block of float64 (N, F) and int64 (N, I) matrices whose columns are these names (row keys in
-        `names` order, by default the floats' then the ints')."""
-        order = tuple(names) if names is not None else tuple(float_names) + tuple(int_names)
-        return cls.of_layout(matrix_layout(order, float_names, int_names), floats, ints)
-
-    @classmethod
     def of_layout(cls, layout: tuple[tuple[str, ...], dict], floats: np.ndarray, ints: np.ndarray) -> RowBlock:
         """Return a block of float64 (N, F) and int64 (N, I) matrices laid out as matrix_layout() said (the live
         path: the layout made once, the block per batch)."""

@@ -113,24 +113,25 @@ def test_the_row_columns_are_the_records_columns(calibrated):
 
 @pytest.mark.parametrize("readouts", [False, True])
 def test_a_live_blocks_utc_column_is_the_added_ones(calibrated, readouts):
-    """`run`'s utc written into the block's spare column gives the columns and the CSV logger's bytes that adding
-    it afterwards gives (GeoOutput.add_to_block). Reference: the per-record CsvFormatter.format of each row."""
+    """`run`'s utc written into the block's spare column (GeoOutput.live_block) gives the columns and the CSV
+    logger's bytes that adding it afterwards gives (GeoOutput.add_to_block). Reference: the per-record
+    CsvFormatter.format of each row."""
     from fieldvane.io.geo_output import setup
     from fieldvane.io.sinks import CsvFormatter
 
     cal, initiate = calibrated
     block, settings = _stream("dropouts", 3)
     geo = setup(None, None, str(GOLDEN / "golden_cal.json"), host_clock=True)
-    assert geo.host_utc_only
     a = Tracker(cal, settings, initiate, report_channels=readouts)
     b = Tracker(cal, settings, initiate, report_channels=readouts)
     got, want = [], []
     for lo, hi in _batches(len(block)):
         utc = 1.8e9 + np.arange(lo, hi) * 1e-3 + 1e-7
-        got.append(live_block(a, block[lo:hi], utc))
+        got.append(geo.live_block(a, block[lo:hi], utc))
         want.append(geo.add_to_block(record_block(b.step_record(block[lo:hi])), utc))
         _assert_same_block(got[-1], want[-1], f"samples {lo}..{hi}")
     assert got[0].keys()[-1] == "utc"
+    assert got[0]._where["utc"][0] == ("o" if readouts else "f")          # the spare float column, without readouts
     formatter = CsvFormatter()
     formatter.bind(want[0].keys())
     lines = formatter.format_items(got)
@@ -147,11 +148,10 @@ def test_run_with_a_site_adds_the_columns_the_record_gives(calibrated):
     cal, initiate = calibrated
     block, settings = _stream("probe2_dropout", 2)
     geo = setup(str(EXAMPLES / "pier" / "pier_site_angles.toml"), host_clock=True)
-    assert not geo.host_utc_only
     a, b = Tracker(cal, settings, initiate), Tracker(cal, settings, initiate)
     for lo, hi in _batches(len(block)):
         utc = 1.8e9 + np.arange(lo, hi) * 1e-3
-        got = geo.add_to_block(live_block(a, block[lo:hi]), utc)
+        got = geo.live_block(a, block[lo:hi], utc)
         rec = b.step_record(block[lo:hi])
         want = record_block(rec).with_columns(geo.for_record(rec, utc))
         _assert_same_block(got, want, f"samples {lo}..{hi}")

@@ -64,4 +64,4 @@ def test_blocks_of_one_layout_join_into_their_records_in_order():
     assert RowBlock.join(blocks[:1]) is blocks[0] and RowBlock.join([]) is None
     other = RowBlock.of_layout(matrix_layout(names, ("b_nT", "t"), ("flags",)), np.zeros((1, 2)), np.zeros((1, 1), np.int64))
     assert RowBlock.join([blocks[0].with_columns({}), other]) is None                # another layout: not joined
-    assert RowBlock.of_matrices(("t",), np.zeros((2, 1)), ("flags",), np.ones((2, 1), np.int64))[1] == {"t": 0.0, "flags": 1}
+    assert RowBlock.of_layout(matrix_layout(("t", "flags"), ("t",), ("flags",)), np.zeros((2, 1)), np.ones((2, 1), np.int64))[1] == {"t": 0.0, "flags": 1}

@@ -158,7 +158,6 @@ def run(args) -> int:
     from fieldvane.estimator.tracker import Tracker
     from fieldvane.io.calfile import load_calibration
     from fieldvane.io.errors import EXIT_CAPTURE_LOST, EXIT_FAILURE, EXIT_LINK
-    from fieldvane.io.estimates_csv import live_block
     from fieldvane.io.estimation import counters_table, lockin_line, noise_line, settings_for_stream
     from fieldvane.io.filterfile import read_filter_settings
     from fieldvane.io.live import run_live
@@ -183,10 +182,7 @@ def run(args) -> int:
     status = StatusLine(sys.stderr, interval_s=args.log_interval)
 
     def estimate_batch(samples):
-        utc = host_clock.utc(len(samples))
-        if geo.host_utc_only:           # the utc column written into the block itself
-            return live_block(tracker, samples, utc)
-        return geo.add_to_block(live_block(tracker, samples), utc)
+        return geo.live_block(tracker, samples, host_clock.utc(len(samples)))
 
     def estimate(sample):
         return estimate_batch([sample])[0]
