@@ -851,7 +851,9 @@ class Sink:
                         transport.poll()
                     except Exception as exc:           # keep the writer alive on odd errors
                         self.last_error = repr(exc)
-                    if self._stop.is_set():
+                    # Records may have come (and the close after them) since the queue looked empty: write them
+                    # first. Closing refuses new records before the stop is set, so an empty queue now stays so.
+                    if self._stop.is_set() and q.empty():
                         break
                     continue
                 if not streaming and self._gathers():        # (asked after the wait: a backlog may have come)

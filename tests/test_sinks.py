@@ -297,6 +297,41 @@ def test_blocked_writer_never_blocks_caller_and_counts_drops():
     assert [json.loads(x)["t"] for x in t.lines] == [record(i)["t"] for i in range(33)]
 
 
+class _PollHeldUntilStop(Transport):
+    """A logger whose periodic poll holds the idle writer until the sink is told to stop."""
+
+    description = "poll held"
+
+    def __init__(self):
+        super().__init__()
+        self.polling = threading.Event()
+        self.sink = None
+        self.lines = []
+
+    def write(self, lines):
+        self.lines += lines
+        return len(lines)
+
+    def poll(self):
+        self.polling.set()
+        _wait_until(lambda: self.sink._stop.is_set())
+
+
+def test_records_queued_while_the_idle_writer_polled_are_written_by_close():
+    # The writer found the queue empty and was in the transport's poll when a burst of records came and close()
+    # right after them (a replay's last records, then its close, on a loaded machine): they are written, not left
+    # in the queue because the writer saw the stop on its way back (the sink reported success and wrote nothing).
+    t = _PollHeldUntilStop()
+    sink = Sink(JsonlFormatter(), t)
+    t.sink = sink
+    assert t.polling.wait(TIMEOUT)
+    assert all(sink.emit(record(i)) for i in range(50))
+    assert sink.close(TIMEOUT)
+    c = sink.counters()
+    assert c["written"] == 50 and c["queued"] == 0
+    assert [json.loads(x)["t"] for x in t.lines] == [record(i)["t"] for i in range(50)]
+
+
 def _block(lo, hi):
     rows = [record(i) for i in range(lo, hi)]
     return RowBlock({k: np.array([r[k] for r in rows]) for k in rows[0]})

@@ -48,6 +48,14 @@ def _say(text: str) -> None:
     print(text, flush=True)
 
 
+def _first_difference(live: list[bytes], replayed: list[bytes]) -> str:
+    """Return where the replay's CSV lines first differ from the live ones (both with their header line)."""
+    for k, (a, b) in enumerate(zip(live, replayed)):
+        if a != b:
+            return f"first difference at line {k + 1} of estimates.csv and replay.csv"
+    return f"estimates.csv has {max(len(live) - 1, 0)} rows, replay.csv {max(len(replayed) - 1, 0)}"
+
+
 def check_options(args):
     """Return the demo's new output folder (not created yet) after checking the options; raise InputError."""
     import datetime as dt
@@ -180,9 +188,13 @@ def run(args) -> int:
         for k in range(0, len(samples), 8192):
             for est in replay_tracker.step_record(samples[k:k + 8192]).estimates():
                 replay_sink.emit_wait(est.row(), timeout=60.0)
-    close_sinks([replay_sink])
-    same = (out / "replay.csv").read_bytes() == live_csv.read_bytes()
+    if not close_sinks([replay_sink], timeout=60.0):
+        raise JobError("the replay's logger did not finish writing replay.csv in 60 s")
+    replayed, lived = (out / "replay.csv").read_bytes(), live_csv.read_bytes()
+    same = replayed == lived
     _say(f"\n[5/6] replay of the capture reproduces the live estimates exactly: {'yes' if same else 'NO'}")
+    if not same:
+        _say("  " + _first_difference(lived.splitlines(), replayed.splitlines()))
 
     # 6. summary against truth
     from fieldvane.io.estimates_csv import read_estimates
