@@ -9,6 +9,7 @@ import threading
 import time
 
 from fieldvane.io.capture import EVENT_LINK_OPEN, EVENT_LOST, CaptureWriter, Chunk
+from fieldvane.io.worker_thread import WorkerThread
 
 DEFAULT_CAPTURE_BUFFER_BYTES = 64 * 1024 * 1024
 MAX_BATCH_BYTES = 256 * 1024          # bytes handed to the writer at once (what a forced stop may leave in flight)
@@ -53,7 +54,7 @@ class CaptureThread:
         self.failing = False                # the last write failed
         self.failures = 0                   # separate stretches of failed writes
         self._events: collections.deque[tuple[str, str]] = collections.deque(maxlen=1000)
-        self._thread = threading.Thread(target=self._run, name="fieldvane-capture", daemon=True)
+        self._thread = WorkerThread(self._run, name="fieldvane-capture")
         self._started = False
 
     # -- producer side (the link's reader thread): never blocks, never raises
@@ -109,8 +110,7 @@ class CaptureThread:
         if not self._started:
             self._run()
             return True
-        self._thread.join(timeout)
-        return not self._thread.is_alive()
+        return self._thread.join(timeout)
 
     def abandon(self) -> int:
         """Give up on the buffered bytes (counted lost); return the bytes still being written."""
@@ -125,8 +125,7 @@ class CaptureThread:
     def join(self, timeout: float) -> bool:
         """Wait for the writer thread to end; return True if it did."""
         if self._started:
-            self._thread.join(timeout)
-            return not self._thread.is_alive()
+            return self._thread.join(timeout)
         return True
 
     def events(self) -> list[tuple[str, str]]:

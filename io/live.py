@@ -164,16 +164,18 @@ class LiveSummary:
     capture_bytes_unconfirmed: int = 0   # bytes still being written when the run was forced to end
     failed_sinks: list[str] = field(default_factory=list)   # sinks whose file or stream broke
     forced: bool = False                 # a second Ctrl-C cut the shutdown short
+    capture_failures: list[str] = field(default_factory=list)   # the capture's last writes or its close failed
 
     def text(self) -> str:
         """Return the final counter summary as one line."""
         return "fieldvane live: final " + format_counters(self.counters)
 
     def exit_code(self) -> int:
-        """Return the exit code: 4 raw bytes lost, 1 a logger failed, 130 stopped by a signal, else 0."""
-        if self.capture_bytes_lost or self.capture_bytes_unconfirmed:
+        """Return the exit code: 4 raw bytes lost or the capture not finished, 1 a logger failed or did not finish
+        writing, 130 stopped by a signal, else 0."""
+        if self.capture_bytes_lost or self.capture_bytes_unconfirmed or self.capture_failures:
             return EXIT_CAPTURE_LOST
-        if self.failed_sinks:
+        if self.failed_sinks or not (self.sinks_closed or self.forced):     # (forced: the user let them go)
             return EXIT_FAILURE
         return EXIT_INTERRUPTED if self.interrupted else 0
 
@@ -547,21 +549,25 @@ class LiveLoop:
         self._phase(self._drain)
         unconfirmed = 0
         files: list[str] = []
+        capture_failures: list[str] = []
         if self.capture is not None:
             unconfirmed = self._close_capture()
             files = [str(p) for p in self.capture.writer.files]
-        closed = True
+            # (the events of the last writes and of the close: the loop no longer looks at them)
+            capture_failures = [message for kind, message in self.capture.events() if kind == "failed"]
+        closed = False              # (until close_sinks says so: a Ctrl-C may cut it short)
 
         def _sinks():
             nonlocal closed
             closed = close_sinks(self.sinks, 0.0 if self._forced else self.sink_close_timeout_s)
         self._phase(_sinks)
+        closed = closed or all(s.join(0.0) for s in self.sinks)
         if not closed:
             self.log("fieldvane live: some loggers did not finish writing in time")
         lost = self.capture.bytes_lost if self.capture is not None else 0
         failed = [s.name for s in self.sinks if s.failed]
         summary = LiveSummary(self.counters(), interrupted or self._signals > 0, closed, files,
-                              lost, unconfirmed, failed, self._forced)
+                              lost, unconfirmed, failed, self._forced, capture_failures)
         if self.counters_report is not None:
             self.counters_report(self, True)
         else:
@@ -570,6 +576,8 @@ class LiveLoop:
             self.log(f"fieldvane live: stopped with {self.not_estimated_samples} samples and "
                      f"{self.not_estimated_bytes} bytes not estimated live; they are in the capture "
                      "(replay it to finish the job)")
+        for message in capture_failures:
+            self.log(f"fieldvane live: CAPTURE PROBLEM: {message}")
         if lost or unconfirmed:
             extra = f", {unconfirmed} more may be incomplete" if unconfirmed else ""
             self.log(f"fieldvane live: RAW BYTES LOST: {lost} of {self.capture.bytes_in} received "
@@ -633,6 +641,9 @@ class LiveLoop:
             self._stop.set()
             if self._signals > 1:
                 self._forced = True
+                if getattr(self.link, "consumer_reading", False):
+                    self.link.interrupt_deferred = True     # raised as soon as the bytes read are handed on
+                    return
                 raise KeyboardInterrupt
 
         for sig in (signal.SIGINT, signal.SIGTERM):

@@ -13,6 +13,8 @@ import queue
 import threading
 from collections.abc import Iterable, Iterator
 
+from fieldvane.io.worker_thread import WorkerThread
+
 _END = object()
 
 
@@ -23,7 +25,7 @@ class ReadAhead:
     def __init__(self, iterable: Iterable, depth: int = 1, name: str = "fieldvane-read"):
         self._queue: queue.Queue = queue.Queue(maxsize=depth)
         self._stop = threading.Event()
-        self._thread = threading.Thread(target=self._work, args=(iterable,), name=name, daemon=True)
+        self._thread = WorkerThread(self._work, iterable, name=name)
         self._thread.start()
 
     def _put(self, entry) -> bool:
@@ -64,7 +66,7 @@ class ReadAhead:
                 self._queue.get_nowait()
             except queue.Empty:
                 break
-        if self._thread is not threading.current_thread():
+        if not self._thread.is_current():
             self._thread.join(timeout)
 
 
@@ -80,7 +82,7 @@ class Background:
             except BaseException as exc:       # handed to the thread that asks for the result
                 self._error = exc
 
-        self._thread = threading.Thread(target=run, name=name, daemon=True)
+        self._thread = WorkerThread(run, name=name)
         self._thread.start()
 
     def result(self):

@@ -24,6 +24,7 @@ import time
 from collections.abc import Callable
 
 from fieldvane.io.capture import EVENT_LINK_OPEN, EVENT_LOST, Chunk
+from fieldvane.io.worker_thread import WorkerThread
 
 DEFAULT_MAX_QUEUED_BYTES = 16 * 1024 * 1024
 # With shared reads, the thread reads what the consumer left in the port this long (s): the kernel
@@ -174,7 +175,9 @@ class SerialLink:
         self._consumer_waiting = False  # the consumer is in take()'s wait for the port
         self._consumer_at = 0.0         # time.monotonic() the consumer last left take()
         self._in_hand = b""             # bytes read and not yet given to the capture
-        self._thread: threading.Thread | None = None
+        self.consumer_reading = False   # the consumer is reading the port in take(): bytes between port and capture
+        self.interrupt_deferred = False  # a Ctrl-C that came meanwhile, raised once the bytes are handed on
+        self._thread: WorkerThread | None = None
         self.opens = 0
         self.open_failures = 0
         self.disconnects = 0
@@ -246,8 +249,7 @@ class SerialLink:
         """Start the reader thread (it opens the port, retrying with back-off); return self."""
         if self._thread is not None:
             raise RuntimeError("link already started")
-        self._thread = threading.Thread(target=self._run, name=f"fieldvane-link {self.url}",
-                                        daemon=True)
+        self._thread = WorkerThread(self._run, name=f"fieldvane-link {self.url}")
         self._thread.start()
         return self
 
@@ -268,8 +270,7 @@ class SerialLink:
                 pass
         if self._thread is None:
             return True
-        self._thread.join(timeout)
-        return not self._thread.is_alive()
+        return self._thread.join(timeout)
 
     def get(self, timeout: float | None = None) -> Chunk | None:
         """Return the next received Chunk (host_time_ns, bytes), or None after timeout s."""
@@ -328,8 +329,21 @@ class SerialLink:
         if ready:
             with self._io:
                 if generation == self._generation:
-                    self._read_waiting()         # (readiness asked again: the thread may have read it meanwhile)
+                    self._read_in_consumer()     # (readiness asked again: the thread may have read it meanwhile)
         return queue.get_many(0, limit)
+
+    def _read_in_consumer(self) -> None:
+        """_read_waiting in the consumer's thread, which takes Ctrl-C: a signal handler that would interrupt it sets
+        interrupt_deferred instead (LiveLoop's does), and the KeyboardInterrupt comes once every byte read is in
+        the capture and the queue -- raised between a read and its hand-off it lost them, or gave them twice."""
+        self.consumer_reading = True
+        try:
+            self._read_waiting()
+        finally:
+            self.consumer_reading = False
+        if self.interrupt_deferred:
+            self.interrupt_deferred = False
+            raise KeyboardInterrupt
 
     def _handoff(self, data: bytes) -> None:
         """Stamp, count and hand on one read (the capture first: it must see every byte); caller holds _io."""

@@ -23,6 +23,7 @@ from dataclasses import dataclass, replace
 from fieldvane.estimator.estimate import ESTIMATE_COLUMNS  # one definition of the columns
 from fieldvane.io.errors import InputError
 from fieldvane.io.row_block import RowBlock
+from fieldvane.io.worker_thread import WorkerThread
 
 FORMATS = ("csv", "jsonl", "nmea")
 TRANSPORTS = ("stdout", "file", "tcp", "udp", "serial")
@@ -568,8 +569,8 @@ class TcpServerTransport(Transport):
 
     def set_header(self, line: str) -> None:
         """Remember the header: it goes first to every client, now and on connect."""
+        self.poll()                 # (before the header is set: a client accepted here gets it once, below)
         self.header = line
-        self.poll()
         data = line.encode("utf-8")
         for c in self.clients:
             c.pending[:0] = data
@@ -659,15 +660,68 @@ class TcpServerTransport(Transport):
             except (OSError, ValueError):
                 break
             self._send_all()
+        self._hang_up(deadline)
         for c in list(self.clients):
             self._drop(c)
         self.server.close()
+
+    def _hang_up(self, deadline: float) -> None:
+        """End each client's stream after what it was sent, and wait until deadline for it to take every byte.
+
+        Closing a socket that holds unread input resets the connection, and the kernel then throws away what the
+        client has not received yet: lines counted as written would vanish. So the input is read and discarded
+        until the client hangs up or has acknowledged everything (Linux's outgoing-queue count)."""
+        import socket
+
+        waiting = []
+        for c in self.clients:
+            try:
+                c.sock.shutdown(socket.SHUT_WR)
+                waiting.append(c)
+            except OSError:
+                pass
+        while waiting:
+            waiting = [c for c in waiting if not _client_done(c.sock)]
+            left = deadline - time.monotonic()
+            if not waiting or left <= 0:
+                break
+            try:
+                select.select([c.sock for c in waiting], [], [], min(0.01, left))
+            except (OSError, ValueError):
+                break
 
     def counters(self) -> dict[str, int]:
         """Return client counts and the lines dropped for clients that fell behind."""
         return {"clients": len(self.clients), "clients_accepted": self.clients_accepted,
                 "clients_refused": self.clients_refused, "clients_closed": self.clients_closed,
                 "client_lines_dropped": self.client_lines_dropped}
+
+
+def _client_done(sock) -> bool:
+    """Discard what a half-closed client sent; return True once it hung up or acknowledged every byte sent."""
+    try:
+        while sock.recv(65536):
+            pass
+        return True                     # its end of stream
+    except (BlockingIOError, InterruptedError):
+        pass
+    except OSError:
+        return True                     # reset or gone: nothing more to deliver
+    return _unacknowledged_bytes(sock) == 0
+
+
+def _unacknowledged_bytes(sock) -> int:
+    """Return the bytes of a TCP socket's send queue the peer has not acknowledged (Linux), -1 when unknown."""
+    try:
+        import array
+        import fcntl
+        import termios
+
+        count = array.array("i", [0])
+        fcntl.ioctl(sock.fileno(), termios.TIOCOUTQ, count)      # SIOCOUTQ on a socket
+        return count[0]
+    except (ImportError, AttributeError, OSError):
+        return -1                       # (wait for the client's hang-up or the deadline)
 
 
 class UdpTransport(Transport):
@@ -730,8 +784,8 @@ class Sink:
         self._taken = 0          # records the writer took out of the queue
         self._processed = 0      # records taken out of the queue and handled
         self.last_error: str | None = None
-        self._thread = threading.Thread(target=self._run, name=f"fieldvane-sink {self.name}",
-                                        daemon=True)
+        self._writer_done = False   # the writer has ended (set under _cond, before its waiters are woken)
+        self._thread = WorkerThread(self._run, name=f"fieldvane-sink {self.name}")
         self._thread.start()
 
     def _offer(self, record: Mapping) -> bool | None:
@@ -781,20 +835,20 @@ class Sink:
             if done is not None:
                 return done
             left = deadline - time.monotonic()
-            if left <= 0 or not self._thread.is_alive():
+            if left <= 0 or self._writer_done:
                 with self._lock:
                     self.dropped += 1
                 return False
             with self._cond:              # the writer notifies after each batch
                 self._cond.wait_for(lambda: not 0 < self.queue_size <= self.accepted - self._taken
-                                    or not self._thread.is_alive(), min(left, self.poll_s))
+                                    or self._writer_done, min(left, self.poll_s))
 
     def flush(self, timeout: float = 5.0) -> bool:
         """Return True once every record accepted so far has been handed to the transport."""
         target = self.accepted
         with self._cond:
             return self._cond.wait_for(lambda: self._processed >= target or
-                                       not self._thread.is_alive(), timeout) and \
+                                       self._writer_done, timeout) and \
                 self._processed >= target
 
     def close(self, timeout: float = 5.0) -> bool:
@@ -804,8 +858,7 @@ class Sink:
         # The transport gets most of the time; the rest is left for the thread to end.
         self._deadline = time.monotonic() + 0.8 * timeout
         self._stop.set()
-        self._thread.join(timeout)
-        return not self._thread.is_alive()
+        return self._thread.join(timeout)
 
     @property
     def failed(self) -> bool:
@@ -819,8 +872,7 @@ class Sink:
 
     def join(self, timeout: float) -> bool:
         """Wait for the writer thread to end; return True if it did."""
-        self._thread.join(timeout)
-        return not self._thread.is_alive()
+        return self._thread.join(timeout)
 
     def counters(self) -> dict[str, int]:
         """Return accepted, dropped, written, write_errors, format_errors, queued and transport counts."""
@@ -900,6 +952,7 @@ class Sink:
             except Exception as exc:
                 self.last_error = repr(exc)
             with self._cond:
+                self._writer_done = True
                 self._cond.notify_all()
 
     def _gathers(self) -> bool:

@@ -469,6 +469,41 @@ def test_full_disk_is_reported_at_once_counted_exactly_and_ends_with_exit_4(tmp_
     assert len(replayed) == counters["frames_ok"] < len(frames)
 
 
+def test_a_capture_file_that_fails_to_close_is_reported_and_ends_with_exit_4(tmp_path, monkeypatch):
+    # close() of the capture file can fail (EIO on a network or write-back file system: the bytes may not be on
+    # the disk). The run ended with exit 0 and said nothing: the failure waited, unread, for the loop's next look.
+    import types
+
+    class ClosingFails(types.ModuleType):
+        def __getattr__(self, name):
+            return getattr(os, name)
+
+        @staticmethod
+        def close(fd):
+            os.close(fd)
+            raise OSError(errno.EIO, os.strerror(errno.EIO))
+
+    monkeypatch.setattr(capture_module, "os", ClosingFails("os"))
+    frames, stream = frames_stream(200, seed=3)
+    port = serial.serial_for_url("loop://", timeout=0.05)
+    link = SerialLink("loop://", opener=lambda: port)
+    logs = []
+    loop = LiveLoop(link, make_decoder("binary"), toy_estimate, [],
+                    CaptureWriter(tmp_path / "cap", {"input_format": "binary"}), log=logs.append)
+    th, result = start_loop(loop)
+    try:
+        assert link.connected.wait(TIMEOUT)
+        port.write(stream)
+        assert loop.wait_for(lambda l: l.samples == len(frames), TIMEOUT)
+    finally:
+        loop.stop()
+        th.join(TIMEOUT)
+    summary = result["summary"]
+    assert summary.capture_bytes_lost == 0 and summary.exit_code() == EXIT_CAPTURE_LOST
+    assert summary.capture_failures == ["capture close failed: Input/output error"]
+    assert "fieldvane live: CAPTURE PROBLEM: capture close failed: Input/output error" in logs
+
+
 class BrokenFile:
     """A text stream whose writes fail like a full disk."""
 
@@ -500,6 +535,43 @@ def test_logger_write_errors_are_reported_at_once_and_fail_the_run(tmp_path):
     assert "No space left on device" in next(x for x in logs if "write failed" in x)
     st = summary.counters["sink[est.csv]"]
     assert st["written"] == 0 and st["write_errors"] == st["accepted"] == 50
+
+
+class StuckTransport(Transport):
+    """A logger whose writes hang until released (a stalled network file system)."""
+
+    description = "stuck"
+
+    def __init__(self):
+        super().__init__()
+        self.entered, self.release = threading.Event(), threading.Event()
+
+    def write(self, lines):
+        self.entered.set()
+        self.release.wait(TIMEOUT)
+        return len(lines)
+
+
+def test_a_logger_that_does_not_finish_writing_fails_the_run():
+    # Its records may never reach the file: the run said so in a log line but ended with exit 0.
+    frames, stream = frames_stream(50, seed=14)
+    port = serial.serial_for_url("loop://", timeout=0.05)
+    link = SerialLink("loop://", opener=lambda: port)
+    logs, stuck = [], StuckTransport()
+    loop = LiveLoop(link, make_decoder("binary"), toy_estimate, [Sink(CsvFormatter(), stuck, name="nfs.csv")],
+                    None, log=logs.append, sink_close_timeout_s=0.2)
+    th, result = start_loop(loop)
+    try:
+        assert link.connected.wait(TIMEOUT)
+        port.write(stream)
+        assert stuck.entered.wait(TIMEOUT) and loop.wait_for(lambda l: l.samples == len(frames), TIMEOUT)
+    finally:
+        loop.stop()
+        th.join(TIMEOUT)
+        stuck.release.set()
+    summary = result["summary"]
+    assert not summary.sinks_closed and summary.exit_code() == EXIT_FAILURE
+    assert "fieldvane live: some loggers did not finish writing in time" in logs
 
 
 def test_tcp_port_zero_is_printed_and_capture_checked_before_the_port_opens(tmp_path):

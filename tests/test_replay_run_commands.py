@@ -220,6 +220,43 @@ def test_replay_stops_cleanly_when_writing_fails_mid_file(calibrated, monkeypatc
     assert not [t for t in threading.enumerate() if t.name.startswith("fieldvane-")]
 
 
+def test_replay_exits_1_when_an_output_does_not_get_every_estimate(calibrated, monkeypatch, capsys):
+    # The disk fills up under a --out logger: the replay names the output and how many estimates it did not get,
+    # and exits 1 (it exited 0 with that output cut short).
+    from fieldvane.io import sinks
+
+    class FullDisk:
+        def write(self, data):
+            raise OSError(28, "No space left on device")
+
+        def flush(self):
+            pass
+
+        def close(self):
+            pass
+
+    real_write, calls = sinks.FileTransport.write, []
+
+    def write(self, lines):
+        calls.append(len(lines))
+        if len(calls) == 3:
+            self.stream.close()
+            self.stream = FullDisk()
+        return real_write(self, lines)
+
+    monkeypatch.setattr(sinks.FileTransport, "write", write)
+    d = calibrated
+    out, extra = d / "est_out_full.csv", d / "est_out_full.jsonl"
+    assert main(["replay", str(d / "rot.csv"), "-c", str(d / "cal.json"), "-o", str(out),
+                 "--out", f"jsonl:file:{extra}", "--no-progress"]) == 1
+    err = capsys.readouterr().err
+    n = len(read_estimates(out)["t"])
+    written = len(extra.read_text().splitlines())
+    assert 0 < written < n
+    assert f"error: output jsonl:file:{extra}: {n - written} of {n} estimates not written (No space left on device)" \
+        in err
+
+
 def test_replay_writes_blocks_in_order_behind_the_estimator_and_hands_on_a_write_error():
     from fieldvane.io.pipeline import WriteBehind
 

@@ -391,6 +391,77 @@ def _read_lines(sock, n, out, stop, cond=None):
                     cond.notify_all()
 
 
+def _receive_all(sock) -> tuple[bytes, str]:
+    """Return (every byte a client receives until the stream ends, how it ended: 'end of stream' or the error)."""
+    got = b""
+    sock.settimeout(TIMEOUT)
+    try:
+        while True:
+            data = sock.recv(65536)
+            if not data:
+                return got, "end of stream"
+            got += data
+    except OSError as exc:
+        return got, repr(exc)
+
+
+def test_tcp_close_delivers_every_line_to_a_client_that_sent_something_meanwhile():
+    # A client's bytes that came after the writer's last poll were unread when the transport closed its socket:
+    # the connection was reset and the lines still in the kernel's send queue, counted as written, never arrived
+    # (195 of 4000). Now the stream ends after the last line and the client gets all of them.
+    tr = TcpServerTransport("127.0.0.1", 0, client_sndbuf=4 << 20)
+    in_close, client_sent = threading.Event(), threading.Event()
+    closing = tr.close
+
+    def close(deadline):                  # the writer reached close(), past its last poll: the client speaks first
+        in_close.set()
+        assert client_sent.wait(TIMEOUT)
+        _wait_until(lambda: select.select([c.sock for c in tr.clients], [], [], 0)[0])    # its bytes are here
+        closing(deadline)
+
+    tr.close = close
+    sink = Sink(CsvFormatter(), tr, queue_size=0, gather_s=0)
+    client = socket.socket()
+    client.setsockopt(socket.SOL_SOCKET, socket.SO_RCVBUF, 4096)     # most lines wait in the server's send queue
+    client.connect(tr.address)
+    assert tr.wait_clients(1, TIMEOUT)
+    n = 4000
+    assert all(sink.emit(record(i)) for i in range(n))
+    assert sink.flush(TIMEOUT)
+    closed = []
+    closer = threading.Thread(target=lambda: closed.append(sink.close(TIMEOUT)))
+    closer.start()
+    assert in_close.wait(TIMEOUT)
+    client.sendall(b"hello\n")
+    client_sent.set()
+    got, end = _receive_all(client)
+    closer.join(TIMEOUT)
+    client.close()
+    lines = got.decode().splitlines()
+    assert end == "end of stream" and closed == [True]
+    assert lines[0].startswith("t,ux,uy") and [float(x.split(",")[0]) for x in lines[1:]] == \
+        [record(i)["t"] for i in range(n)]
+
+
+def test_tcp_client_accepted_with_the_first_record_gets_one_header():
+    # A client still waiting to be accepted when the first record came was accepted while the header was being
+    # set, and got it twice (from the accept and from the header's hand-out to every client).
+    tr = TcpServerTransport("127.0.0.1", 0)
+    polls = tr.poll
+    accepting = threading.Event()
+    tr.poll = lambda: polls() if accepting.is_set() else None        # idle polls accept no one
+    sink = Sink(CsvFormatter(), tr, gather_s=0)
+    client = socket.create_connection(tr.address)
+    accepting.set()
+    sink.emit(record(1))
+    assert sink.flush(TIMEOUT) and sink.close(TIMEOUT)
+    got, end = _receive_all(client)
+    client.close()
+    assert end == "end of stream"
+    lines = got.decode().splitlines()
+    assert len(lines) == 2 and lines[0].startswith("t,ux,uy") and lines[1].startswith(repr(record(1)["t"]) + ",")
+
+
 def test_tcp_server_slow_client_does_not_hurt_others():
     tr = TcpServerTransport("127.0.0.1", 0, client_backlog_bytes=16384, client_sndbuf=4096)
     sink = Sink(CsvFormatter(), tr, queue_size=100000)

@@ -5,6 +5,8 @@ from __future__ import annotations
 import sys
 import time
 
+from fieldvane.io.errors import EXIT_FAILURE, EXIT_OK
+
 DESCRIPTION = """Estimate field directions from a recording CSV or a raw capture folder.
 
 INPUT is a recording CSV (docs/recording_format.md), or a capture folder / capture file written by
@@ -33,6 +35,7 @@ extra columns (nis, nis_dof, b_a_nT, b_b_nT, bound_deg, noise_scale, probes_used
 docs/estimates_columns.md). The output's format follows its suffix (.csv, .jsonl, .nmea); --out adds
 more outputs with the grammar of `run --out`. The lookup table is cached beside the calibration in
 .fieldvane-tables/. An existing output is refused unless --force; an input is never overwritten.
+Exit 1 when an output did not get every estimate (a full disk, a broken stream): each is named.
 
 examples:
   fieldvane replay rec.csv -c cal.json -o est.csv
@@ -147,7 +150,8 @@ class _Outputs:
             for est in estimates:
                 sink.emit_wait(est.row(), timeout=60.0)
 
-    def close(self, ok: bool):
+    def close(self, ok: bool) -> list[str]:
+        """Close every output; return one line per output that did not get every estimate (none: all did)."""
         from fieldvane.io.sinks import close_sinks
 
         if self._specs:
@@ -158,8 +162,17 @@ class _Outputs:
             else:                          # a failed replay leaves no partial file behind
                 failure = RuntimeError("replay failed")
                 self.writer.__exit__(type(failure), failure, None)
+        problems = []
         if self.sinks and not close_sinks(self.sinks, 30.0):
-            print("warning: some outputs did not finish writing in time", file=sys.stderr)
+            problems.append("some outputs did not finish writing in 30 s")
+        for sink in self.sinks:
+            c = sink.counters()
+            missing = c["dropped"] + c["write_errors"] + c["format_errors"] + c["queued"]
+            if missing or sink.failed:
+                why = f" ({sink.last_error})" if sink.last_error else ""
+                problems.append(f"output {sink.name}: {missing} of {c['accepted'] + c['dropped']} estimates "
+                                f"not written{why}")
+        return problems
 
 
 def run(args) -> int:
@@ -298,7 +311,7 @@ def _replay(args, reader, blocks) -> int:
     finally:
         if not ok:
             behind.finish(raise_error=False)     # the block being written ends before the file is dropped
-        outputs.close(ok)
+        problems = outputs.close(ok)
     seconds = time.perf_counter() - start
     rows = sum(flag_words.values())
     for w in warnings:
@@ -322,7 +335,9 @@ def _replay(args, reader, blocks) -> int:
         print("\n".join(resets_lines(tracker.resets)))
         for w in health_warnings(tracker.counters, tracker.counters.samples):
             print(f"warning: {w}", file=sys.stderr)
-    return 0
+    for line in problems:
+        print(f"error: {line}", file=sys.stderr)
+    return EXIT_FAILURE if problems else EXIT_OK
 
 
 def _recording_tracker(cal, settings, solver, args, reader, channels):

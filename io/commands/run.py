@@ -35,7 +35,8 @@ exit 4. An existing --out file is refused unless --force; --out never replaces a
 Stop with Ctrl-C or SIGTERM: within about 1.5 s every sink is flushed and the final counters
 printed (exit 130); samples not estimated by then are in the capture (replay it). A second
 Ctrl-C abandons the capture's last writes too. Exit 3 when the port never opened within
---link-timeout; exit 4 when raw bytes were lost; exit 1 when a logger file failed.
+--link-timeout; exit 4 when raw bytes were lost or the capture could not be closed; exit 1 when a
+logger's file or stream failed or did not finish writing.
 
 Every estimate carries utc: the host clock's receive time of the bytes that completed its frame
 (POSIX seconds in records, ISO 8601 in CSV and JSON lines, hhmmss.sss in NMEA; as good as the host
@@ -226,11 +227,15 @@ def run(args) -> int:
         return EXIT_LINK
     code = summary.exit_code()
     if code == EXIT_CAPTURE_LOST:
-        print(f"fieldvane run: raw bytes lost: {summary.capture_bytes_lost} bytes are not in the capture "
-              f"(exit {EXIT_CAPTURE_LOST}); see the CAPTURE PROBLEM lines above", file=sys.stderr)
-    elif code == EXIT_FAILURE:
+        print(f"fieldvane run: raw bytes lost: {summary.capture_bytes_lost} bytes are not in the capture"
+              f"{', and it may be incomplete' if summary.capture_failures else ''} (exit {EXIT_CAPTURE_LOST}); "
+              "see the CAPTURE PROBLEM lines above", file=sys.stderr)
+    elif code == EXIT_FAILURE and summary.failed_sinks:
         print(f"fieldvane run: failed: logger output(s) {', '.join(summary.failed_sinks)} could not be "
               "written", file=sys.stderr)
+    elif code == EXIT_FAILURE:
+        print("fieldvane run: failed: logger output(s) did not finish writing; their last records may be "
+              "missing", file=sys.stderr)
     return code
 
 
