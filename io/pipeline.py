@@ -114,14 +114,20 @@ class WriteBehind:
 
     def finish(self, raise_error: bool = True) -> None:
         """Wait for the write in progress; raise the error it met (when raise_error). Without raise_error (the clean-up
-        after a failure) it waits even through Ctrl-C: the file must not be closed under a running write."""
+        after a failure) it waits through one Ctrl-C, so the file is not closed under a running write, and gives up
+        at the next (a write stuck on a dead file system; the output is then dropped as after any failure)."""
+        interrupts = 0
         while self._job is not None:
             job = self._job
             try:
                 job.result()
+            except KeyboardInterrupt:
+                interrupts += 1
+                if raise_error or interrupts > 1:
+                    raise
+                continue
             except BaseException:
-                if job.done():              # the write's own error: it has ended
-                    self._job = None
+                self._job = None            # the write's own error: it has ended
                 if raise_error:
                     raise
                 continue

@@ -365,6 +365,7 @@ class Transport:
     """Base transport: header handling and no-op poll/close."""
 
     description = "transport"
+    delivers_every_line = True          # False: a lost line is the medium's way (UDP), not a failure
 
     def __init__(self):
         self.header: str | None = None
@@ -666,29 +667,31 @@ class TcpServerTransport(Transport):
         self.server.close()
 
     def _hang_up(self, deadline: float) -> None:
-        """End each client's stream after what it was sent, and wait until deadline for it to take every byte.
+        """End each client's stream after what it was sent; wait (until deadline) only for clients that speak.
 
         Closing a socket that holds unread input resets the connection, and the kernel then throws away what the
-        client has not received yet: lines counted as written would vanish. So the input is read and discarded
-        until the client hangs up or has acknowledged everything (Linux's outgoing-queue count)."""
+        client has not received yet: lines counted as written would vanish. A quiet client is closed at once (the
+        kernel goes on delivering); one that sent something is read and discarded until it hangs up or has
+        acknowledged every byte (Linux's outgoing-queue count)."""
         import socket
 
-        waiting = []
+        talking = []
         for c in self.clients:
             try:
                 c.sock.shutdown(socket.SHUT_WR)
-                waiting.append(c)
             except OSError:
-                pass
-        while waiting:
-            waiting = [c for c in waiting if not _client_done(c.sock)]
+                continue
+            if _drain_input(c.sock) is False:
+                talking.append(c)
+        while talking:
             left = deadline - time.monotonic()
-            if not waiting or left <= 0:
+            if left <= 0:
                 break
             try:
-                select.select([c.sock for c in waiting], [], [], min(0.01, left))
+                select.select([c.sock for c in talking], [], [], min(0.01, left))
             except (OSError, ValueError):
                 break
+            talking = [c for c in talking if not _client_done(c.sock)]
 
     def counters(self) -> dict[str, int]:
         """Return client counts and the lines dropped for clients that fell behind."""
@@ -697,17 +700,24 @@ class TcpServerTransport(Transport):
                 "client_lines_dropped": self.client_lines_dropped}
 
 
-def _client_done(sock) -> bool:
-    """Discard what a half-closed client sent; return True once it hung up or acknowledged every byte sent."""
+def _drain_input(sock) -> bool | None:
+    """Read and discard what a client sent; return None when it sent nothing, True when it hung up (or is gone),
+    False when it sent bytes and is still there."""
+    sent = None
     try:
-        while sock.recv(65536):
-            pass
-        return True                     # its end of stream
+        while True:
+            if not sock.recv(65536):
+                return True             # its end of stream
+            sent = False
     except (BlockingIOError, InterruptedError):
-        pass
+        return sent
     except OSError:
         return True                     # reset or gone: nothing more to deliver
-    return _unacknowledged_bytes(sock) == 0
+
+
+def _client_done(sock) -> bool:
+    """Discard what a half-closed client sent; return True once it hung up or acknowledged every byte sent."""
+    return _drain_input(sock) is True or _unacknowledged_bytes(sock) == 0
 
 
 def _unacknowledged_bytes(sock) -> int:
@@ -727,8 +737,11 @@ def _unacknowledged_bytes(sock) -> int:
 class UdpTransport(Transport):
     """One datagram per line to host:port (the CSV header is sent once, first)."""
 
+    delivers_every_line = False
+
     def __init__(self, host: str, port: int):
         super().__init__()
+        self.last_error: str | None = None       # why the last datagram that could not be sent was not
         import socket
 
         family = socket.AF_INET6 if ":" in host else socket.AF_INET
@@ -744,8 +757,8 @@ class UdpTransport(Transport):
             try:
                 self.sock.sendto(ln.encode("utf-8"), self.target)
                 sent += 1
-            except OSError:      # buffer full, or an earlier datagram was refused (ICMP)
-                pass
+            except OSError as exc:      # buffer full, or an earlier datagram was refused (ICMP)
+                self.last_error = exc.strerror or type(exc).__name__
         return sent
 
     def close(self, deadline: float) -> None:

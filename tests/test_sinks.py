@@ -443,16 +443,32 @@ def test_tcp_close_delivers_every_line_to_a_client_that_sent_something_meanwhile
         [record(i)["t"] for i in range(n)]
 
 
+def test_tcp_close_lets_a_quiet_client_that_has_not_read_yet_take_every_line_afterwards():
+    # A client that says nothing is closed at once (no waiting for it to read); the system goes on delivering.
+    tr = TcpServerTransport("127.0.0.1", 0, client_sndbuf=4 << 20)
+    sink = Sink(CsvFormatter(), tr, queue_size=0, gather_s=0)
+    client = socket.socket()
+    client.setsockopt(socket.SOL_SOCKET, socket.SO_RCVBUF, 4096)
+    client.connect(tr.address)
+    assert tr.wait_clients(1, TIMEOUT)
+    n = 3000
+    assert all(sink.emit(record(i)) for i in range(n))
+    assert sink.flush(TIMEOUT) and sink.close(TIMEOUT)
+    got, end = _receive_all(client)
+    client.close()
+    assert end == "end of stream"
+    assert [float(x.split(",")[0]) for x in got.decode().splitlines()[1:]] == [record(i)["t"] for i in range(n)]
+
+
 def test_tcp_client_accepted_with_the_first_record_gets_one_header():
     # A client still waiting to be accepted when the first record came was accepted while the header was being
     # set, and got it twice (from the accept and from the header's hand-out to every client).
     tr = TcpServerTransport("127.0.0.1", 0)
-    polls = tr.poll
-    accepting = threading.Event()
-    tr.poll = lambda: polls() if accepting.is_set() else None        # idle polls accept no one
+    polls, made = tr.poll, []
+    tr.poll = lambda: polls() if made and made[0].accepted else None     # no one accepted before the record
     sink = Sink(CsvFormatter(), tr, gather_s=0)
+    made.append(sink)
     client = socket.create_connection(tr.address)
-    accepting.set()
     sink.emit(record(1))
     assert sink.flush(TIMEOUT) and sink.close(TIMEOUT)
     got, end = _receive_all(client)

@@ -227,9 +227,12 @@ def run(args) -> int:
         return EXIT_LINK
     code = summary.exit_code()
     if code == EXIT_CAPTURE_LOST:
-        print(f"fieldvane run: raw bytes lost: {summary.capture_bytes_lost} bytes are not in the capture"
-              f"{', and it may be incomplete' if summary.capture_failures else ''} (exit {EXIT_CAPTURE_LOST}); "
-              "see the CAPTURE PROBLEM lines above", file=sys.stderr)
+        what = [f"raw bytes lost: {summary.capture_bytes_lost} bytes are not in the capture"] \
+            if summary.capture_bytes_lost or summary.capture_bytes_unconfirmed else []
+        if summary.capture_failures:
+            what.append("the capture may be incomplete: its last writes or its close failed")
+        print(f"fieldvane run: {'; '.join(what)} (exit {EXIT_CAPTURE_LOST}); see the CAPTURE PROBLEM lines above",
+              file=sys.stderr)
     elif code == EXIT_FAILURE and summary.failed_sinks:
         print(f"fieldvane run: failed: logger output(s) {', '.join(summary.failed_sinks)} could not be "
               "written", file=sys.stderr)
