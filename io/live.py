@@ -555,13 +555,8 @@ class LiveLoop:
             files = [str(p) for p in self.capture.writer.files]
             # (the events of the last writes and of the close: the loop no longer looks at them)
             capture_failures = [message for kind, message in self.capture.events() if kind == "failed"]
-        closed = False              # (until close_sinks says so: a Ctrl-C may cut it short)
-
-        def _sinks():
-            nonlocal closed
-            closed = close_sinks(self.sinks, 0.0 if self._forced else self.sink_close_timeout_s)
-        self._phase(_sinks)
-        closed = closed or all(s.join(0.0) for s in self.sinks)
+        self._phase(lambda: close_sinks(self.sinks, 0.0 if self._forced else self.sink_close_timeout_s))
+        closed = all(s.join(0.0) for s in self.sinks)      # (asked after: a Ctrl-C may have cut the close short)
         if not closed:
             self.log("fieldvane live: some loggers did not finish writing in time")
         lost = self.capture.bytes_lost if self.capture is not None else 0

@@ -92,10 +92,6 @@ class Background:
             raise self._error
         return self._value
 
-    def done(self) -> bool:
-        """True once the work has ended (with a value or an error)."""
-        return not self._thread.is_alive()
-
     def wait(self) -> None:
         """Wait for the work to end, whatever its outcome (the clean-up after another failure)."""
         self._thread.join()
